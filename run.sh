@@ -19,7 +19,7 @@ shift || true
 case "$cmd" in
     demo) exec "$VENV/bin/python" -m fcnkit demo "$@" ;;
     test)
-        "$VENV/bin/python" -m ruff check fcnkit tests scripts
+        "$VENV/bin/python" -m ruff check .  # the whole tree; .venv and git-ignored paths are skipped
         exec "$VENV/bin/python" -m pytest "$@" ;;
     *) echo "usage: ./run.sh demo|test [args]" >&2; exit 2 ;;
 esac

@@ -124,12 +124,15 @@ def load_config(path: str | Path) -> Config:
         raise ConfigError(f"{path}: no such config file") from None
     except IsADirectoryError:
         raise ConfigError(f"{path}: is a directory, expected a TOML config file") from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise ConfigError(f"{path}: cannot read config file ({e.__class__.__name__})") from None
+    except UnicodeDecodeError:
+        raise ConfigError(f"{path}: not a text file (not UTF-8), expected a TOML config file") from None
+    except OSError as e:
+        raise ConfigError(f"{path}: cannot read config file ({e.strerror or e.__class__.__name__})") from None
     try:
         table = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
-        raise ConfigError(f"{path}: not valid TOML ({e})") from None
+        detail = " ".join(str(e).split())
+        raise ConfigError(f"{path}: not valid TOML ({detail}); expected a TOML config file") from None
     try:
         return config_from_dict(table)
     except ConfigError as e:
@@ -224,7 +227,9 @@ def _check_scalar(value: Any, hint: type, rules: typing.Mapping[str, Any], path:
         raise ConfigError(f"{path}: expected {hint.__name__}, got {_show(value)}")
     if "choices" in rules and value not in rules["choices"]:
         allowed = ", ".join(str(c) for c in rules["choices"])
-        raise ConfigError(f"{path}: {value!r} is not one of: {allowed}")
+        close = difflib.get_close_matches(value, rules["choices"], n=1, cutoff=0.6) if isinstance(value, str) else []
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        raise ConfigError(f"{path}: {value!r} is not one of: {allowed}{hint}")
     if "min" in rules and value < rules["min"]:
         raise ConfigError(f"{path}: {value!r} is below the minimum {rules['min']}")
     if "max" in rules and value > rules["max"]:
@@ -248,14 +253,19 @@ def _check_model(m: ModelConfig) -> None:
                 )
     out = m.stage_output_strides()
     if out[-1] > m.min_size:
+        key = f"model.strides: {m.strides}" if m.strides is not None else f"model.widths: {n} stages"
         raise ConfigError(
-            f"model.widths: {n} stages down-sample by {out[-1]}, more than model.min_size={m.min_size} allows; "
-            f"use fewer stages or raise min_size to at least {out[-1]}"
+            f"{key} down-sample by {out[-1]}, more than model.min_size={m.min_size} allows; "
+            f"use fewer or smaller strides, or raise model.min_size to at least {out[-1]}"
         )
     if m.fusion == "none" and m.skips:
         raise ConfigError(f"model.skips: {m.skips} given but model.fusion is 'none'; use 'sum' or 'concat'")
     if m.fusion != "none":
         have = sorted({s for s in out if s < out[-1]})
+        if m.skips == [] and have:
+            allowed = ", ".join(str(x) for x in have)
+            raise ConfigError(f"model.skips: [] is empty but model.fusion is '{m.fusion}'; give one or more of: "
+                              f"{allowed} (or leave skips out for the default)")
         for s in m.skips or []:
             if s not in have:
                 allowed = ", ".join(str(x) for x in have) or "none (only one stride)"

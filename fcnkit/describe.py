@@ -11,7 +11,7 @@ from typing import Any
 from torch import nn
 
 from fcnkit import geometry
-from fcnkit.config import Config
+from fcnkit.config import Config, ModelConfig
 from fcnkit.geometry import Layer
 
 
@@ -70,7 +70,7 @@ def _breakdown(graph: Sequence[Layer], local: bool) -> list[dict[str, Any]]:
     return result
 
 
-def describe(cfg: Config | nn.Module) -> dict[str, Any]:
+def describe(cfg: Config | ModelConfig | nn.Module) -> dict[str, Any]:
     """Geometry and cost of the net a config (or an already built module) describes.
 
     Keys: ``output_stride`` (total down-sampling factor), ``receptive_field`` (pixels an output pixel can
@@ -80,7 +80,7 @@ def describe(cfg: Config | nn.Module) -> dict[str, Any]:
     """
     from fcnkit.nets import build_model, layer_graph
 
-    module = build_model(cfg) if isinstance(cfg, Config) else cfg
+    module = build_model(cfg) if isinstance(cfg, (Config, ModelConfig)) else cfg
     return describe_graph(layer_graph(module))
 
 
