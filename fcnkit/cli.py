@@ -39,7 +39,22 @@ def _add_describe(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_describe)
 
 
-COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_describe]
+def _export(args: argparse.Namespace) -> int:
+    from fcnkit import export_model
+
+    print(export_model(args.model, args.out, args.format).summary())
+    return 0
+
+
+def _add_export(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("export", help="write a model file as ONNX or TorchScript (any height and width), checked")
+    p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")
+    p.add_argument("--format", choices=("onnx", "torchscript"), default="onnx", help="output format (default onnx)")
+    p.add_argument("--out", required=True, metavar="FILE", help="where to write the exported net")
+    p.set_defaults(run=_export)
+
+
+COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_describe, _add_export]
 
 
 def build_parser() -> argparse.ArgumentParser:
