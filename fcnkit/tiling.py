@@ -1,0 +1,341 @@
+"""Tiled inference on images of any size: tile plans, exact mode, blending, on-disk score accumulation.
+
+An image is cut into overlapping tiles whose origins lie on multiples of the net's down-sampling factor,
+so every tile sees the same pooling grid as the whole image. Tiles are read one batch at a time (the next
+batch is read while the net runs), and each tile's class scores, weighted by a blending window
+(:mod:`fcnkit.windows`), are added into a float32 H×W×C array kept on disk (:class:`~fcnkit.data.raster.RowStore`)
+so memory does not grow with the image. Because the tiles form a grid and the weights are outer products,
+the total weight at a pixel is the product of two 1-D sums: no weight array is stored.
+
+Tiles end at the image border instead of running past it, and a tile side lying on the border gets no taper,
+so the net sees the same border the whole image has and weights never vanish there.
+
+Exact mode keeps from each tile only the pixels at least the receptive-field radius (``tile margin`` of
+:mod:`fcnkit.geometry`) away from any interior tile edge, centre-crop style: the result then equals
+whole-image inference (to float rounding), which is impossible for nets with global layers.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+from torch import nn
+
+from fcnkit.data.raster import ArrayRaster, Raster, RowStore
+from fcnkit.errors import ConfigError
+from fcnkit.windows import check_window, window
+
+Engine = Callable[[torch.Tensor], torch.Tensor]
+IN_MEMORY_PIXELS = 16_000_000  # predict_scores keeps scores of smaller images in memory when given no folder
+
+
+# --- geometry of the net ----------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class NetGeometry:
+    """What tiling needs to know about a net: its down-sampling factor, the margin exact tiles need (None when
+    global layers make outputs depend on the whole input) and those layers' names."""
+
+    factor: int
+    margin: int | None
+    global_layers: tuple[str, ...] = ()
+
+
+def net_geometry(model: nn.Module) -> NetGeometry:
+    """Read the geometry off ``model`` (any module whose graph :func:`fcnkit.nets.layer_graph` can trace)."""
+    from fcnkit.describe import describe_graph
+    from fcnkit.nets import layer_graph
+
+    try:
+        d = describe_graph(layer_graph(model), parts=False)
+    except Exception as e:  # tracing errors come in many types; all mean the graph cannot be read
+        raise ConfigError(f"model: cannot read the net's geometry for tiling ({' '.join(str(e).split())})") from None
+    return NetGeometry(int(d["output_stride"]), d["tile_margin"], tuple(d["global_layers"]))
+
+
+def default_overlap(geom: NetGeometry, tile: int) -> int:
+    """Blend-mode overlap: the receptive-field radius rounded up to the factor, at most a quarter tile
+    (a quarter tile when the net has global layers)."""
+    f = geom.factor
+    cap = max(f, tile // 4 // f * f)
+    return cap if geom.margin is None else min(cap, math.ceil(geom.margin / f) * f)
+
+
+# --- tile plans (pure) ------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Span:
+    """One tile along one axis: pixels start..stop, overlapping the previous tile by ``rise`` pixels and the
+    next one by ``fall`` (0 at the image border)."""
+
+    start: int
+    stop: int
+    rise: int
+    fall: int
+
+
+def plan_axis(length: int, tile: int, step: int, factor: int) -> tuple[Span, ...]:
+    """Tiles of ``tile`` pixels covering 0..length, origins on multiples of ``factor``, spread evenly with
+    gaps of at most ``step``; the last tile ends at the image end (up to factor−1 pixels longer)."""
+    if length <= tile:
+        return (Span(0, length, 0, 0),)
+    last = (length - tile) // factor * factor
+    n = math.ceil(last / step) + 1
+    origins = [k * (last // factor) // max(n - 1, 1) * factor for k in range(n)]
+    stops = [o + tile for o in origins[:-1]] + [length]
+    return tuple(Span(o, s, stops[k - 1] - o if k else 0, s - origins[k + 1] if k + 1 < n else 0)
+                 for k, (o, s) in enumerate(zip(origins, stops, strict=True)))
+
+
+@dataclass(frozen=True)
+class Tile:
+    row: Span
+    col: Span
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.row.stop - self.row.start, self.col.stop - self.col.start
+
+
+@dataclass(frozen=True)
+class TilePlan:
+    """A grid of tiles over an image and the window that blends them."""
+
+    height: int
+    width: int
+    tile: int
+    overlap: int
+    factor: int
+    window: str
+    rows: tuple[Span, ...]
+    cols: tuple[Span, ...]
+
+    def tiles(self) -> list[Tile]:
+        return [Tile(r, c) for r in self.rows for c in self.cols]
+
+    def weights(self, tile: Tile) -> np.ndarray:
+        """h×w float32 blending weights of one tile."""
+        wy = window(self.window, tile.row.stop - tile.row.start, tile.row.rise, tile.row.fall)
+        wx = window(self.window, tile.col.stop - tile.col.start, tile.col.rise, tile.col.fall)
+        return np.outer(wy, wx).astype(np.float32)
+
+    def total_weight(self, axis: int) -> np.ndarray:
+        """Sum of all tiles' 1-D windows along ``axis`` (0 = rows, 1 = columns), float64."""
+        spans, length = (self.rows, self.height) if axis == 0 else (self.cols, self.width)
+        total = np.zeros(length)
+        for s in spans:
+            total[s.start:s.stop] += window(self.window, s.stop - s.start, s.rise, s.fall)
+        return total
+
+
+def plan_tiles(geom: NetGeometry, height: int, width: int, *, tile: int = 512, overlap: int | None = None,
+               window: str = "hann", exact: bool = False) -> TilePlan:
+    """Plan the tiles for an image; ConfigError naming the option when the request cannot be met.
+
+    ``exact`` forces centre-crop tiles with an overlap of twice the tile margin, so every kept pixel has its
+    whole receptive field inside its tile.
+    """
+    try:
+        check_window(window)
+    except ValueError as e:
+        raise ConfigError(str(e)) from None
+    f = geom.factor
+    if tile < f:
+        raise ConfigError(f"tile: {tile} is smaller than the net's down-sampling factor {f}")
+    tile = tile // f * f
+    if exact:
+        if geom.margin is None:
+            raise ConfigError("exact tiling is impossible: layers " + ", ".join(geom.global_layers)
+                              + " make every output depend on the whole image; use a blending window instead")
+        need = 2 * geom.margin
+        if overlap is not None and overlap < need:
+            raise ConfigError(f"overlap: {overlap} is below the {need} px (twice the tile margin {geom.margin}) "
+                              "that exact tiling needs")
+        overlap, window = max(overlap or 0, need), "none"
+        if tile - overlap < f:
+            raise ConfigError(f"tile: {tile} px is too small for exact tiling: the net needs a margin of "
+                              f"{geom.margin} px on each side; use tile >= {math.ceil((need + f) / f) * f}")
+    elif overlap is None:
+        overlap = default_overlap(geom, tile)
+    if overlap < 0:
+        raise ConfigError(f"overlap: {overlap} must be >= 0")
+    step = (tile - overlap) // f * f
+    if step < f:
+        raise ConfigError(f"overlap: {overlap} leaves no room in a tile of {tile} px (factor {f}); "
+                          f"use overlap <= {tile - f}")
+    return TilePlan(height, width, tile, overlap, f, window, plan_axis(height, tile, step, f),
+                    plan_axis(width, tile, step, f))
+
+
+def batches(tiles: Sequence[Tile], size: int) -> list[list[Tile]]:
+    """Group tiles of equal shape into batches of at most ``size``, keeping row-major order within a shape."""
+    pending: dict[tuple[int, int], list[Tile]] = {}
+    out: list[list[Tile]] = []
+    for t in tiles:
+        group = pending.setdefault(t.shape, [])
+        group.append(t)
+        if len(group) == size:
+            out.append(pending.pop(t.shape))
+    out.extend(pending.values())
+    return out
+
+
+# --- the forward pass -------------------------------------------------------------------------------------
+
+
+def fuse_conv_bn(model: nn.Module) -> nn.Module:
+    """A copy of ``model`` for inference in which each BatchNorm directly after a Conv2d in a Sequential is
+    folded into the convolution's weights (same function, one pass less over memory)."""
+    model = copy.deepcopy(model).eval()
+    for seq in [m for m in model.modules() if isinstance(m, nn.Sequential)]:
+        for i in range(len(seq) - 1):
+            conv, bn = seq[i], seq[i + 1]
+            if isinstance(conv, nn.Conv2d) and isinstance(bn, nn.BatchNorm2d) and bn.track_running_stats:
+                seq[i] = torch.nn.utils.fusion.fuse_conv_bn_eval(conv, bn)
+                seq[i + 1] = nn.Identity()
+    return model
+
+
+class TorchEngine:
+    """The per-batch forward pass: normalised N×B×h×w float32 in, N×C×h×w float32 class scores out.
+
+    Other engines (e.g. onnxruntime) are any callable with the same contract."""
+
+    def __init__(self, model: nn.Module, bf16: bool = False) -> None:
+        self.model = fuse_conv_bn(model).to(memory_format=torch.channels_last)
+        self.bf16 = bf16
+
+    def __call__(self, x: torch.Tensor) -> torch.Tensor:
+        with torch.inference_mode(), torch.autocast("cpu", torch.bfloat16, enabled=self.bf16):
+            return self.model(x).float()
+
+
+def _scores(engine: Engine, x: torch.Tensor, tta: bool, logits: bool) -> torch.Tensor:
+    """Class scores (probabilities, or logits) of a batch, averaged over the four flips when ``tta``."""
+    flips: list[tuple[int, ...]] = [(), (-1,), (-2,), (-2, -1)] if tta else [()]
+    total = None
+    for dims in flips:
+        y = engine(x.flip(dims) if dims else x)
+        y = y.flip(dims) if dims else y
+        y = y if logits else torch.softmax(y, dim=1)
+        total = y if total is None else total.add_(y)
+    return total / len(flips) if tta else total
+
+
+def _load(raster: Raster, tiles: Sequence[Tile], mean: torch.Tensor, std: torch.Tensor) -> torch.Tensor:
+    """Read and normalise a batch of equally shaped tiles as a channels-last N×B×h×w float32 tensor."""
+    arr = np.stack([raster.read(t.row.start, t.row.stop, t.col.start, t.col.stop) for t in tiles])
+    x = torch.from_numpy(arr.astype(np.float32, copy=False)).permute(0, 3, 1, 2)
+    return x.sub_(mean).div_(std)  # a fresh array, so normalising in place is safe
+
+
+def accumulate(engine: Engine, raster: Raster, plan: TilePlan, store: RowStore, *, mean: Sequence[float],
+               std: Sequence[float], batch: int = 4, tta: bool = False, logits: bool = False,
+               progress: bool = False, desc: str = "tiles") -> None:
+    """Run every tile of ``plan`` and add its window-weighted scores into ``store`` (H×W×C float32)."""
+    from tqdm import tqdm
+
+    bands = raster.shape[2]
+    m = torch.tensor(mean, dtype=torch.float32).view(1, bands, 1, 1)
+    s = torch.tensor(std, dtype=torch.float32).view(1, bands, 1, 1)
+    groups = batches(plan.tiles(), batch)
+    pixels = plan.height * plan.width / 1e6
+    bar = tqdm(total=sum(map(len, groups)), unit="tile", desc=desc, disable=not progress, leave=False)
+    start = time.perf_counter()
+    with ThreadPoolExecutor(1) as pool, bar:
+        nxt = pool.submit(_load, raster, groups[0], m, s)
+        for i, group in enumerate(groups):
+            x = nxt.result()
+            if i + 1 < len(groups):
+                nxt = pool.submit(_load, raster, groups[i + 1], m, s)
+            y = _scores(engine, x, tta, logits)
+            for tile, scores in zip(group, y, strict=True):
+                w = torch.from_numpy(plan.weights(tile))
+                add = (scores * w).permute(1, 2, 0).numpy()
+                rows = store.rows(tile.row.start, tile.row.stop)
+                rows[:, tile.col.start:tile.col.stop] += add
+                del rows
+            bar.update(len(group))
+            bar.set_postfix_str(f"{pixels * bar.n / bar.total / (time.perf_counter() - start):.2f} MP/s")
+
+
+def normalise_store(plan: TilePlan, store: RowStore, band: int = 256) -> None:
+    """Divide the accumulated sums by the total blending weight, in place, one band of rows at a time."""
+    wy = plan.total_weight(0).astype(np.float32)
+    wx = plan.total_weight(1).astype(np.float32)
+    for y0, y1 in store.bands(band):
+        rows = store.rows(y0, y1)
+        rows /= (wy[y0:y1, None] * wx[None, :])[..., None]
+        del rows
+
+
+def as_raster(image_or_reader: np.ndarray | Raster) -> Raster:
+    return ArrayRaster(image_or_reader) if isinstance(image_or_reader, np.ndarray) else image_or_reader
+
+
+def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None, std: Sequence[float] | None,
+              tile: int, overlap: int | None, batch: int, window: str, exact: bool, tta: bool, logits: bool,
+              bf16: bool, folder: Path | None, engine: Engine | None, progress: bool,
+              classes: int | None = None) -> tuple[TilePlan, RowStore]:
+    """Plan, run and normalise: the class scores of ``raster`` in a RowStore (H×W×C float32)."""
+    if batch < 1:
+        raise ConfigError(f"batch: {batch} must be >= 1")
+    if exact and tta:
+        raise ConfigError("tta: flip test-time augmentation cannot be combined with exact tiling "
+                          "(flipped tiles see different pooling grids)")
+    height, width, bands = raster.shape
+    plan = plan_tiles(net_geometry(model), height, width, tile=tile, overlap=overlap, window=window, exact=exact)
+    mean = [0.0] * bands if mean is None else list(mean)
+    std = [1.0] * bands if std is None else list(std)
+    engine = engine or TorchEngine(model, bf16)
+    if classes is None:
+        classes = int(getattr(model, "classes", 0)) or _probe_classes(engine, bands, plan.factor)
+    store = RowStore((height, width, classes), np.float32, folder, "scores")
+    accumulate(engine, raster, plan, store, mean=mean, std=std, batch=batch, tta=tta, logits=logits,
+               progress=progress)
+    normalise_store(plan, store)
+    return plan, store
+
+
+def _probe_classes(engine: Engine, bands: int, factor: int) -> int:
+    return int(engine(torch.zeros(1, bands, 2 * factor, 2 * factor)).shape[1])
+
+
+def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, mean: Sequence[float] | None = None,
+                   std: Sequence[float] | None = None, tile: int = 512, overlap: int | None = None,
+                   batch: int = 4, window: str = "hann", exact: bool = False, tta: bool = False,
+                   logits: bool = False, bf16: bool = False, workdir: str | Path | None = None,
+                   engine: Engine | None = None, progress: bool = False) -> np.ndarray:
+    """Class probabilities (or ``logits``) C×H×W float32 of an H×W×B image, by tiled inference.
+
+    ``mean``/``std`` normalise the raw bands (default none). Large results are a memory map on a file in
+    ``workdir`` (default: an unnamed temporary file). ``engine`` replaces the torch forward pass.
+    """
+    raster = as_raster(image_or_reader)
+    h, w, _ = raster.shape
+    folder = Path(workdir) if workdir is not None else None
+    if folder is None and h * w > IN_MEMORY_PIXELS:
+        import tempfile
+
+        folder = Path(tempfile.mkdtemp(prefix="fcnkit-scores-"))
+    try:
+        _, store = run_tiles(model, raster, mean=mean, std=std, tile=tile, overlap=overlap, batch=batch,
+                             window=window, exact=exact, tta=tta, logits=logits, bf16=bf16, folder=folder,
+                             engine=engine, progress=progress)
+        return store.whole().transpose(2, 0, 1)
+    finally:
+        if folder is not None and workdir is None:  # the open memory map keeps the data until it is dropped
+            for p in folder.iterdir():
+                p.unlink()
+            folder.rmdir()
+
