@@ -4,6 +4,7 @@ from fcnkit.config import Config, load_config
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError, FcnkitError, ModelFileError
 from fcnkit.export import export_model
+from fcnkit.modelfile import load_model, save_model
 from fcnkit.nets import build_model
 
 __version__ = "0.1.0"
@@ -12,4 +13,5 @@ __all__ = [
     "Config", "ConfigError", "DataError", "FcnkitError", "ModelFileError",
     "build_model", "describe", "load_config",
     "export_model",
+    "load_model", "save_model",
 ]
