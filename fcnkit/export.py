@@ -25,10 +25,11 @@ from torch import nn
 from torch.nn import functional as F
 
 from fcnkit.atomic import atomic_output
-from fcnkit.errors import FcnkitError, ModelFileError
+from fcnkit.errors import ConfigError, FcnkitError, ModelFileError
 from fcnkit.nets import SegNet
 
 FORMATS = ("onnx", "torchscript")
+ENGINES = ("torch", "onnxruntime")
 TOLERANCE = 1e-4
 ONNX_OPSET = 17
 
@@ -162,14 +163,16 @@ def _runner(fmt: str, path: Path) -> tuple[Callable[[torch.Tensor], np.ndarray],
     return (lambda x: loaded(x).detach().numpy()), f"torch.jit {torch.__version__}"
 
 
-def _check_writable(out: Path) -> None:
+def check_destination(out: str | Path, error: type[FcnkitError] = ModelFileError) -> None:
+    """Refuse, before any work, an output path whose folder is missing or not writable, or that is a folder."""
+    out = Path(out)
     folder = out.parent
     if not folder.is_dir():
-        raise ModelFileError(f"{out}: cannot export, folder {folder} does not exist")
+        raise error(f"{out}: cannot write here, folder {folder} does not exist")
     if out.is_dir():
-        raise ModelFileError(f"{out}: cannot export, it is a folder")
+        raise error(f"{out}: cannot write here, it is a folder")
     if not os.access(folder, os.W_OK):
-        raise ModelFileError(f"{out}: cannot export, folder {folder} is not writable")
+        raise error(f"{out}: cannot write here, folder {folder} is not writable")
 
 
 def export_model(model: nn.Module | str | Path, out: str | Path, format: str = "onnx", *,
@@ -184,7 +187,7 @@ def export_model(model: nn.Module | str | Path, out: str | Path, format: str = "
     if format not in FORMATS:
         raise ModelFileError(f"export format {format!r} is not one of: {', '.join(FORMATS)}")
     out = Path(out)
-    _check_writable(out)
+    check_destination(out)
     if isinstance(model, (str, Path)):
         from fcnkit.modelfile import load_model
 
@@ -234,3 +237,12 @@ class OnnxEngine:
     def __call__(self, x: torch.Tensor) -> torch.Tensor:
         x = x.contiguous(memory_format=torch.contiguous_format).float()
         return torch.from_numpy(self.session.run(None, {"image": x.numpy()})[0])
+
+
+def make_engine(name: str, model: nn.Module) -> Callable[[torch.Tensor], torch.Tensor] | None:
+    """The per-batch forward pass tiled inference should use: None means PyTorch (tiling's default)."""
+    if name == "torch":
+        return None
+    if name == "onnxruntime":
+        return OnnxEngine(model)
+    raise ConfigError(f"engine: {name!r} is not one of: {', '.join(ENGINES)}")

@@ -183,20 +183,23 @@ def read_curves(path: str | Path) -> dict[str, list[float]]:
 
 def _curves_chart(cols: dict[str, list[float]]) -> str | None:
     x_name = next((n for n in ("epoch", "step") if n in cols), None)
+    low = {n: n.lower() for n in cols}
     panels = [
-        ("loss", [n for n in cols if "loss" in n.lower()]),
-        ("validation score", [n for n in cols if any(t in n.lower() for t in ("iou", "acc"))]),
-        ("learning rate", [n for n in cols if n.lower() in ("lr", "learning_rate")]),
+        ("loss", [n for n, lo in low.items() if "loss" in lo]),
+        ("validation scores", [n for n, lo in low.items() if lo.startswith("val_") and "loss" not in lo]),
+        ("per-class validation IoU", [n for n, lo in low.items() if lo.startswith("iou_")]),
+        ("learning rate", [n for n, lo in low.items() if lo in ("lr", "learning_rate")]),
     ]
     panels = [(title, names) for title, names in panels if names]
     if not panels:
         return None
-    fig = Figure(figsize=(3.3 * len(panels), 2.8))
+    fig = Figure(figsize=(3.2 * len(panels), 2.8))
     for i, (title, names) in enumerate(panels):
         ax = fig.add_subplot(1, len(panels), i + 1)
         for name in names:
             x = cols[x_name] if x_name else list(range(1, len(cols[name]) + 1))
-            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=name)
+            label = name[4:] if name.lower().startswith(("val_", "iou_")) else name
+            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=label)
         ax.set_title(title, fontsize=9, loc="left")
         ax.set_xlabel(x_name or "row")
         ax.grid(alpha=0.3)

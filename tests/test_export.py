@@ -113,7 +113,7 @@ def test_failed_check_leaves_nothing(tmp_path):
 @pytest.mark.parametrize("where", ["missing/net.onnx", "afolder"])
 def test_unwritable_destination_is_refused(tmp_path, where):
     (tmp_path / "afolder").mkdir()
-    with pytest.raises(ModelFileError, match="cannot export"):
+    with pytest.raises(ModelFileError, match="cannot write here"):
         export_model(_net(), tmp_path / where, "onnx")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["afolder"]
     assert list((tmp_path / "afolder").iterdir()) == []
