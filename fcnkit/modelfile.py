@@ -94,7 +94,12 @@ def build_from_meta(meta: ModelMeta, path: str | Path) -> nn.Module:
             return build_model(config_from_dict(meta.config))
         except FcnkitError as e:
             raise ModelFileError(f"{path}: metadata 'config': {e}") from None
-    raise ModelFileError(f"{path}: unknown model kind {meta.kind!r}; expected one of: segnet")
+    if meta.kind in ("dense-classifier", "grown-segmenter"):  # converted classifiers (fcnkit.convert)
+        from fcnkit.convert.grow import rebuild
+
+        return rebuild(meta.extra, path)
+    raise ModelFileError(f"{path}: unknown model kind {meta.kind!r}; expected one of: segnet, dense-classifier, "
+                         f"grown-segmenter")
 
 
 def normalise(image: np.ndarray, meta: ModelMeta) -> np.ndarray:

@@ -1,0 +1,256 @@
+"""Grow a segmenter out of a classifier (the FCN recipe of Long et al. 2015) and rebuild converted nets
+from model files.
+
+The classifier's trunk and converted hidden dense layers are kept; its last dense layer is replaced by a
+1×1 score layer for the new classes (zero-initialised, as in the paper) or by a subset of its own rows;
+class scores are brought to full resolution by learnable transposed convolutions initialised to bilinear
+interpolation, optionally fusing 1×1 scores of shallower trunk stages on the way (FCN-16s, FCN-8s).
+
+A model file names how to rebuild the net in its ``extra`` metadata (a :class:`Recipe` and the classifier's
+source). Only torchvision architecture names and plain ``nn.Sequential`` layer lists are rebuilt; nothing
+named in a file is imported.
+"""
+
+from __future__ import annotations
+
+import colorsys
+import copy
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import fx, nn
+
+from fcnkit.convert.dense import (
+    AlignedNet,
+    Certificate,
+    ConvertError,
+    Plan,
+    build_dense,
+    conv_head,
+    cut_graph,
+    keep_rows,
+    node_shapes,
+    offset,
+    plan,
+    score_map,
+    sliding_pool,
+    trunk_stride,
+)
+from fcnkit.convert.sources import build_torchvision, sequential_from_spec
+from fcnkit.data.classes import ClassInfo, ClassTable
+from fcnkit.errors import FcnkitError, ModelFileError
+from fcnkit.modelfile import ModelMeta, save_model
+from fcnkit.nets.blocks import BilinearUp
+
+DENSE_KIND = "dense-classifier"  # model-file kind: a converted classifier's score maps
+GROWN_KIND = "grown-segmenter"  # model-file kind: a segmenter grown from a classifier
+
+
+@dataclass(frozen=True)
+class Recipe:
+    """How a net is made from a classifier. ``keep``: classifier outputs kept as classes (their score
+    rows reused); ``classes``: number of new classes (grown segmenters only, when ``keep`` is None);
+    ``skips``: strides of trunk stages fused into a grown segmenter, deepest first; ``bands``: input bands
+    (more than the classifier's widens its first convolution)."""
+
+    native_size: int
+    grow: bool = False
+    global_pool: str = "auto"
+    keep: tuple[int, ...] | None = None
+    classes: int | None = None
+    skips: tuple[int, ...] = ()
+    bands: int | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> Recipe:
+        d = dict(d)
+        d["keep"] = tuple(d["keep"]) if d.get("keep") is not None else None
+        d["skips"] = tuple(d.get("skips", ()))
+        return cls(**d)
+
+
+def _zero_score(like: nn.Conv2d, cin: int, classes: int) -> nn.Conv2d:
+    """A new score layer shaped like ``like`` with ``classes`` outputs, zero-initialised (Long et al. 2015
+    initialise their new score layers to zero)."""
+    new = nn.Conv2d(cin, classes, like.kernel_size, padding=like.padding, dilation=like.dilation)
+    nn.init.zeros_(new.weight)
+    nn.init.zeros_(new.bias)
+    return new
+
+
+def _split_final(layers: list[nn.Module]) -> tuple[list[nn.Module], nn.Conv2d]:
+    """The converted head without its last dense layer (and what followed it), and that layer."""
+    last = max(i for i, m in enumerate(layers) if isinstance(m, nn.Conv2d))
+    return layers[:last], layers[last]
+
+
+def _widen(gm: fx.GraphModule, bands: int) -> None:
+    """Give the first convolution ``bands`` inputs; new bands start with the mean of the existing filters
+    (common practice when adding bands to a pretrained net)."""
+    first = next(n for n in gm.graph.nodes if n.op == "call_module" and isinstance(gm.get_submodule(n.target),
+                                                                                   nn.Conv2d))
+    conv: nn.Conv2d = gm.get_submodule(first.target)
+    if bands < conv.in_channels:
+        raise ConvertError(f"bands: {bands} is fewer than the classifier's {conv.in_channels} input bands")
+    if bands == conv.in_channels:
+        return
+    if conv.groups != 1:
+        raise ConvertError(f"bands: cannot widen the grouped first convolution {first.target}")
+    w = conv.weight.detach()
+    extra = w.mean(dim=1, keepdim=True).expand(-1, bands - conv.in_channels, -1, -1)
+    conv.in_channels = bands
+    conv.weight = nn.Parameter(torch.cat([w, extra], dim=1))
+
+
+def _taps(p: Plan, strides: tuple[int, ...], stride: int, delta: int) -> list[fx.Node]:
+    """For each skip stride, the deepest trunk node at that stride; its grid must line up with the
+    deepest features' (same offset), or the fused scores would be shifted."""
+    small = node_shapes(p.gm, p.bands, p.native_size)
+    large = node_shapes(p.gm, p.bands, 2 * p.native_size)
+    order = list(p.gm.graph.nodes)
+    before = order[:order.index(p.head.trunk)]
+    taps = []
+    for t in strides:
+        if not (0 < t < stride and stride % t == 0):
+            raise ConvertError(f"skips: {t} is not a stride finer than and dividing the trunk's {stride}")
+        found = [n for n in before if len(small.get(n, ())) == 4 and len(large.get(n, ())) == 4
+                 and large[n][-1] - small[n][-1] == p.native_size // t and p.native_size % t == 0]
+        if not found:
+            raise ConvertError(f"skips: the trunk has no feature map at stride {t}")
+        node = found[-1]
+        window = p.native_size - (small[node][-1] - 1) * t
+        if window - t != delta:
+            raise ConvertError(f"skips: stride-{t} features at {node.name} sit {window - t} px off their grid but "
+                               f"the deepest ones {delta} px; this classifier cannot fuse them (grow without skips)")
+        taps.append(node)
+    return taps
+
+
+class GrownBody(nn.Module):
+    """Trunk → [sliding pool] → converted hidden layers → 1×1 scores → (up-sample, add skip scores)* →
+    up-sample to full resolution."""
+
+    def __init__(self, trunk: nn.Module, pool: nn.Module, hidden: nn.Sequential, score: nn.Conv2d,
+                 skip_scores: list[nn.Conv2d], ups: list[BilinearUp], final_up: BilinearUp) -> None:
+        super().__init__()
+        self.trunk, self.pool, self.hidden, self.score = trunk, pool, hidden, score
+        self.skip_scores, self.ups, self.final_up = nn.ModuleList(skip_scores), nn.ModuleList(ups), final_up
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        feats = self.trunk(x)
+        if isinstance(feats, torch.Tensor):
+            feats = (feats,)
+        y = self.score(self.hidden(self.pool(feats[0])))
+        for tap, up, score in zip(feats[1:], self.ups, self.skip_scores, strict=True):
+            y = up(y) + score(tap)
+        return self.final_up(y)
+
+
+def make_net(module: nn.Module, r: Recipe) -> AlignedNet:
+    """The net a recipe describes, made from ``module`` (a converted classifier or a grown segmenter)."""
+    module.eval()
+    p = plan(module, r.native_size, global_pool=r.global_pool)
+    s = trunk_stride(p)
+    if not r.grow:
+        if r.skips or r.classes is not None or (r.bands is not None and r.bands != p.bands):
+            raise ConvertError("new classes, skips and extra bands need a grown segmenter")
+        return score_map(p, build_dense(p), s, r.keep)
+    if (r.keep is None) == (r.classes is None):
+        raise ConvertError("a grown segmenter needs either new classes or a subset (keep) of the classifier's")
+    delta = offset(p, s, same=True)
+    skips = tuple(sorted(set(r.skips), reverse=True))
+    taps = _taps(p, skips, s, delta)
+    shapes = node_shapes(p.gm, p.bands, p.native_size)
+    trunk = copy.deepcopy(cut_graph(p.gm, [p.head.trunk, *taps]))  # training it must not change the classifier
+    if r.bands is not None:
+        _widen(trunk, r.bands)
+    hidden, final = _split_final(conv_head(p, same=True))
+    score = keep_rows(final, r.keep) if r.keep is not None else _zero_score(final, final.in_channels, r.classes)
+    k = score.out_channels
+    skip_scores = [_zero_score(nn.Conv2d(1, 1, 1), shapes[t][1], k) for t in taps]
+    ups, prev = [], s
+    for t in skips:
+        ups.append(BilinearUp(k, prev // t))
+        prev = t
+    body = GrownBody(trunk, sliding_pool(p, same=True), nn.Sequential(*hidden), score, skip_scores, ups,
+                     BilinearUp(k, prev))
+    return AlignedNet(body, s, r.bands or p.bands, k, delta)
+
+
+def classifier_from_source(source: dict[str, Any], where: str) -> nn.Module:
+    """The classifier architecture a model file's source names (random weights): a torchvision
+    architecture or a plain layer list. Nothing else is rebuilt, so no code named in a file is imported."""
+    kind = source.get("source")
+    if kind == "torchvision":
+        try:
+            return build_torchvision(str(source["arch"]), int(source.get("num_classes", 1000)))
+        except FcnkitError as e:
+            raise ModelFileError(f"{where}: {e}") from None
+    if kind == "sequential":
+        return sequential_from_spec(source.get("layers", []), where).eval()
+    if kind == "factory":
+        raise ModelFileError(f"{where}: grown from the user factory {source.get('factory')!r}; rebuild it with "
+                             f"fcnkit.convert.rebuild(meta, classifier=...) giving that classifier")
+    raise ModelFileError(f"{where}: unknown classifier source {kind!r}")
+
+
+def rebuild(extra: dict[str, Any], where: str | Path = "model file", classifier: nn.Module | None = None) -> AlignedNet:
+    """An untrained net of the architecture a converted model file describes (its ``extra`` metadata)."""
+    try:
+        recipe = Recipe.from_dict(extra["recipe"])
+        module = classifier if classifier is not None else classifier_from_source(extra["source"], str(where))
+    except (KeyError, TypeError, ValueError) as e:
+        raise ModelFileError(f"{where}: metadata 'extra' does not describe a converted net ({e})") from None
+    try:
+        with torch.random.fork_rng():
+            return make_net(module, recipe)
+    except ConvertError as e:
+        raise ModelFileError(f"{where}: {e}") from None
+
+
+IMAGENET_MEAN = [0.485 * 255, 0.456 * 255, 0.406 * 255]  # torchvision's ImageNet statistics, 8-bit units
+IMAGENET_STD = [0.229 * 255, 0.224 * 255, 0.225 * 255]  # (torchvision model docs; common practice)
+
+
+def class_table(names: list[str]) -> ClassTable:
+    """A class table for ``names`` with distinct display colours (hues a golden angle apart)."""
+    colors = []
+    for i in range(len(names)):
+        r, g, b = colorsys.hsv_to_rgb((i * 0.618034) % 1.0, 0.65, 0.95 - 0.25 * (i % 2))
+        colors.append((round(r * 255), round(g * 255), round(b * 255)))
+    return ClassTable(tuple(ClassInfo(i, n, c) for i, (n, c) in enumerate(zip(names, colors, strict=True))))
+
+
+def save_converted(path: str | Path, net: AlignedNet, recipe: Recipe, source: dict[str, Any], *,
+                   classes: ClassTable | None = None, mean: list[float] | None = None, std: list[float] | None = None,
+                   certificate: Certificate | None = None) -> ModelMeta:
+    """Write a converted classifier or grown segmenter as a model file (kind ``dense-classifier`` or
+    ``grown-segmenter``) that load_model, tiled inference and ``fcnkit train --init`` read. Classes default
+    to "class I" names (I = the classifier's output index); normalisation to torchvision's ImageNet
+    statistics for torchvision sources (extra bands get their mean), else none."""
+    from fcnkit import __version__
+
+    if classes is None:
+        idx = recipe.keep if recipe.keep is not None else range(net.classes)
+        classes = class_table([f"class {i}" for i in idx])
+    if classes.num_classes != net.classes:
+        raise ConvertError(f"classes: the table lists {classes.num_classes} classes but the net has {net.classes}")
+    if mean is None or std is None:
+        rgb = source.get("source") == "torchvision" and net.bands >= 3
+        pad = net.bands - 3
+        mean = IMAGENET_MEAN + [sum(IMAGENET_MEAN) / 3] * pad if rgb else [0.0] * net.bands
+        std = IMAGENET_STD + [sum(IMAGENET_STD) / 3] * pad if rgb else [1.0] * net.bands
+    if len(mean) != net.bands or len(std) != net.bands:
+        raise ConvertError(f"mean/std: expected {net.bands} values each (one per band)")
+    extra = {"recipe": recipe.to_dict(), "source": source}
+    if certificate is not None:
+        extra["certificate"] = certificate.to_dict()
+    meta = ModelMeta(GROWN_KIND if recipe.grow else DENSE_KIND, {"model": {"bands": net.bands, "classes": net.classes}},
+                     classes, [float(v) for v in mean], [float(v) for v in std], __version__, extra)
+    save_model(path, net, meta)
+    return meta
