@@ -3,15 +3,17 @@
 from fcnkit.config import Config, load_config
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError, FcnkitError, ModelFileError
+from fcnkit.evaluate import evaluate
 from fcnkit.export import export_model
 from fcnkit.modelfile import load_model, save_model
 from fcnkit.nets import build_model
+from fcnkit.report import write_report
 
 __version__ = "0.1.0"
 
 __all__ = [
     "Config", "ConfigError", "DataError", "FcnkitError", "ModelFileError",
     "build_model", "describe", "load_config",
-    "export_model",
+    "evaluate", "export_model", "write_report",
     "load_model", "save_model",
 ]

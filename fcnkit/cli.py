@@ -54,7 +54,100 @@ def _add_export(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_export)
 
 
-COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [_add_describe, _add_export]
+def _train(args: argparse.Namespace) -> int:
+    import math
+    import os
+
+    from fcnkit import load_config, train
+    from fcnkit.config import replace_section
+
+    cfg = load_config(args.config)
+    changes = {k: v for k, v in (("epochs", args.epochs), ("threads", args.threads)) if v is not None}
+    if changes:
+        cfg = replace_section(cfg, "train", **changes)
+    r = train(cfg, args.data, args.out, resume=args.resume, init=args.init, progress=not args.quiet)
+    if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
+        best = "no validation images, model of the last epoch kept" if math.isnan(r.best_miou) else \
+            f"best val mIoU {r.best_miou:.4f} at epoch {r.best_epoch}"
+        stop = ", stopped early" if r.stopped_early else ""
+        print(f"{r.epochs} epochs{stop}; {best}; model: {r.model_path}; metrics: {r.run_dir / 'metrics.csv'}")
+    return 0
+
+
+def _add_train(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("train", help="train a net on a dataset folder; resumable, best model kept by val mIoU")
+    p.add_argument("config", metavar="CONFIG", help="TOML config file ([model] and [train] tables)")
+    p.add_argument("--data", required=True, metavar="DIR", help="dataset folder (images/, masks/, classes.toml)")
+    p.add_argument("--out", required=True, metavar="RUN_DIR", help="run folder: model, resume point, metrics.csv")
+    p.add_argument("--resume", action="store_true", help="continue the run in RUN_DIR exactly where it stopped")
+    p.add_argument("--init", metavar="MODEL", help="start from this model file (its net replaces [model])")
+    p.add_argument("--epochs", type=int, metavar="N", help="override train.epochs")
+    p.add_argument("--threads", type=int, metavar="N", help="override train.threads (0 = torch's default)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(run=_train)
+
+
+def add_tile_options(p: argparse.ArgumentParser) -> None:
+    """Options of tiled inference shared by the commands that run it."""
+    p.add_argument("--tile", type=int, default=512, metavar="PX", help="tile side in pixels (default 512)")
+    p.add_argument("--overlap", type=int, metavar="PX", help="tile overlap (default: from the net's receptive field)")
+    p.add_argument("--batch", type=int, default=4, metavar="N", help="tiles per forward pass (default 4)")
+    p.add_argument("--window", choices=("hann", "linear", "none"), default="hann",
+                   help="blending window over tile overlaps (default hann)")
+    p.add_argument("--exact", action="store_true", help="exact tiling: equal to whole-image inference")
+    p.add_argument("--tta", action="store_true", help="average over horizontal and vertical flips")
+    p.add_argument("--engine", choices=("torch", "onnxruntime"), default="torch",
+                   help="runtime of the forward pass (onnxruntime: optional extra fcnkit[onnx])")
+    p.add_argument("--max-pixels", type=int, default=2**27, metavar="N",
+                   help="refuse images with more pixels than this (default 134217728)")
+
+
+def _evaluate(args: argparse.Namespace) -> int:
+    from fcnkit import evaluate
+
+    r = evaluate(args.model, args.data, json_path=args.json, report=args.report, curves=args.curves,
+                 examples=args.examples, tile=args.tile, overlap=args.overlap, batch=args.batch,
+                 window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
+                 max_pixels=args.max_pixels, progress=not args.quiet)
+    print(r.table())
+    for what, path in r.paths.items():
+        print(f"{what}: {path}")
+    return 0
+
+
+def _add_evaluate(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("evaluate", help="score a model on a labelled folder; JSON scores and an HTML report")
+    p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")
+    p.add_argument("--data", required=True, metavar="DIR", help="labelled folder (images/, masks/, classes.toml)")
+    p.add_argument("--json", default="evaluation.json", metavar="FILE",
+                   help="where to write the scores (default evaluation.json)")
+    p.add_argument("--report", metavar="FILE", help="also write a self-contained HTML report here")
+    p.add_argument("--curves", metavar="CSV", help="training metrics for the report (default: metrics.csv beside "
+                   "the model file, if any)")
+    p.add_argument("--examples", type=int, default=3, metavar="N", help="worst-scoring images in the report")
+    add_tile_options(p)
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(run=_evaluate)
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from fcnkit.demo import run_demo
+
+    run_demo(args.out, quick=args.quick, progress=not args.quiet)
+    return 0
+
+
+def _add_demo(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("demo", help="synthetic scenes -> training -> evaluation report -> mapping a large mosaic")
+    p.add_argument("--out", default="fcnkit-demo", metavar="DIR", help="output folder (default fcnkit-demo)")
+    p.add_argument("--quick", action="store_true", help="toy sizes: the same steps in seconds")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(run=_demo)
+
+
+COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
+    _add_describe, _add_export, _add_train, _add_evaluate, _add_demo,
+]
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -80,6 +173,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         where = f"{e.filename}: " if getattr(e, "filename", None) else ""
         sys.stderr.write(f"fcnkit {args.command}: error: {where}{e.strerror or e}\n")
         return 2
-    except KeyboardInterrupt:
-        sys.stderr.write(f"fcnkit {args.command}: interrupted\n")
+    except KeyboardInterrupt as e:  # the message, when there is one, says what was saved
+        sys.stderr.write(f"fcnkit {args.command}: {e or 'interrupted'}\n")
         return 130
