@@ -122,3 +122,27 @@ def test_unwritable_destination_is_refused(tmp_path, where):
 def test_unknown_format_is_refused(tmp_path):
     with pytest.raises(ModelFileError, match="not one of: onnx, torchscript"):
         export_model(_net(), tmp_path / "x", "tflite")
+
+
+def test_cli_exports_a_model_file_with_its_metadata(tmp_path, capsys):
+    import json
+
+    from fcnkit.cli import main
+    from fcnkit.config import config_to_dict
+    from fcnkit.data.classes import ClassInfo, ClassTable
+    from fcnkit.modelfile import ModelMeta, save_model
+
+    cfg = config_from_dict({"model": {"bands": 3, "classes": 2, "widths": [8, 16], "min_size": 8}})
+    classes = ClassTable((ClassInfo(0, "bare", (90, 80, 70)), ClassInfo(1, "crack", (250, 20, 20))))
+    path = tmp_path / "model.safetensors"
+    save_model(path, build_model(cfg), ModelMeta("segnet", config_to_dict(cfg), classes, MEAN, STD, "t", {}))
+    assert main(["export", str(path), "--out", str(tmp_path / "m.onnx")]) == 0
+    assert "checked with onnxruntime" in capsys.readouterr().out
+    props = {p.key: p.value for p in onnx.load(str(tmp_path / "m.onnx")).metadata_props}
+    meta = json.loads(props["fcnkit"])
+    assert meta["mean"] == MEAN and [c["name"] for c in meta["classes"]["classes"]] == ["bare", "crack"]
+    # an unwritable destination: one line, exit 2, nothing written
+    assert main(["export", str(path), "--format", "torchscript", "--out", str(tmp_path / "no" / "m.pt")]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "does not exist" in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.onnx", "model.safetensors"]
