@@ -239,10 +239,12 @@ class OnnxEngine:
         return torch.from_numpy(self.session.run(None, {"image": x.numpy()})[0])
 
 
-def make_engine(name: str, model: nn.Module) -> Callable[[torch.Tensor], torch.Tensor] | None:
-    """The per-batch forward pass tiled inference should use: None means PyTorch (tiling's default)."""
+def make_engine(name: str, model: nn.Module) -> Callable[[torch.Tensor], torch.Tensor]:
+    """The per-batch forward pass of tiled inference by runtime name (built once, reused for every image)."""
     if name == "torch":
-        return None
+        from fcnkit.tiling import TorchEngine
+
+        return TorchEngine(model)
     if name == "onnxruntime":
         return OnnxEngine(model)
     raise ConfigError(f"engine: {name!r} is not one of: {', '.join(ENGINES)}")
