@@ -65,15 +65,16 @@ class ModelConfig:
         return out
 
     def skip_strides(self) -> list[int]:
-        """Strides fused into the output, deepest first (empty for fusion = none)."""
+        """Strides fused into the output, deepest first (empty for fusion = none). By default ``sum`` fuses
+        the two encoder strides next below the deepest (16 and 8 under 32, as FCN-8s) and ``concat`` every
+        shallower stride (U-Net)."""
         if self.fusion == "none":
             return []
         if self.skips is not None:
             return sorted(set(self.skips), reverse=True)
         deepest = self.stage_output_strides()[-1]
-        if self.fusion == "concat":
-            return sorted({s for s in self.stage_output_strides() if s < deepest}, reverse=True)
-        return [s for s in (deepest // 2, deepest // 4) if s >= 1 and s in self.stage_output_strides()]
+        shallower = sorted({s for s in self.stage_output_strides() if s < deepest}, reverse=True)
+        return shallower if self.fusion == "concat" else shallower[:2]
 
 
 @dataclass(frozen=True)

@@ -111,6 +111,9 @@ def test_defaults_and_resolved_values() -> None:
     assert m.skip_strides() == [2, 1]  # the two finest halvings, deepest first
     assert ModelConfig(widths=[8, 16, 32], fusion="concat").skip_strides() == [2, 1]
     assert ModelConfig(widths=[8, 16, 32], fusion="sum", skips=[1, 2, 1]).skip_strides() == [2, 1]
+    # strides that are not powers of two still get a default skip (regression: there was none for 3 x 3)
+    assert ModelConfig(widths=[4, 4], strides=[3, 3], fusion="sum").skip_strides() == [3]
+    assert ModelConfig(widths=[4, 4, 4, 4], strides=[1, 4, 1, 2], fusion="sum").skip_strides() == [4, 1]
 
 
 @pytest.mark.parametrize("path", CONFIGS, ids=lambda p: p.name)
