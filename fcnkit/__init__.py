@@ -8,6 +8,7 @@ from fcnkit.export import export_model
 from fcnkit.modelfile import load_model, save_model
 from fcnkit.nets import build_model
 from fcnkit.report import write_report
+from fcnkit.tiling import predict_scores, segment_image, segment_images
 
 __version__ = "0.1.0"
 
@@ -16,4 +17,5 @@ __all__ = [
     "build_model", "describe", "load_config",
     "evaluate", "export_model", "write_report",
     "load_model", "save_model",
+    "predict_scores", "segment_image", "segment_images",
 ]

@@ -87,7 +87,7 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_train)
 
 
-def add_tile_options(p: argparse.ArgumentParser) -> None:
+def add_tile_options(p: argparse.ArgumentParser, max_pixels: int = 2**27) -> None:
     """Options of tiled inference shared by the commands that run it."""
     p.add_argument("--tile", type=int, default=512, metavar="PX", help="tile side in pixels (default 512)")
     p.add_argument("--overlap", type=int, metavar="PX", help="tile overlap (default: from the net's receptive field)")
@@ -98,8 +98,8 @@ def add_tile_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--tta", action="store_true", help="average over horizontal and vertical flips")
     p.add_argument("--engine", choices=("torch", "onnxruntime"), default="torch",
                    help="runtime of the forward pass (onnxruntime: optional extra fcnkit[onnx])")
-    p.add_argument("--max-pixels", type=int, default=2**27, metavar="N",
-                   help="refuse images with more pixels than this (default 134217728)")
+    p.add_argument("--max-pixels", type=int, default=max_pixels, metavar="N",
+                   help=f"refuse images with more pixels than this (default {max_pixels})")
 
 
 def _evaluate(args: argparse.Namespace) -> int:
@@ -130,6 +130,32 @@ def _add_evaluate(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_evaluate)
 
 
+def _segment(args: argparse.Namespace) -> int:
+    from fcnkit import segment_images
+
+    segment_images(args.model, args.inputs, args.out, tile=args.tile, overlap=args.overlap, batch=args.batch,
+                   window=args.window, exact=args.exact, tta=args.tta, engine=args.engine, bf16=args.bf16,
+                   pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
+                   progress=not args.quiet, echo=print)
+    return 0
+
+
+def _add_segment(sub: argparse._SubParsersAction) -> None:
+    from fcnkit.tiling import SEGMENT_MAX_PIXELS
+
+    p = sub.add_parser("segment", help="map images of any size: labels, confidence, uncertainty, overlay, areas")
+    p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")
+    p.add_argument("inputs", nargs="+", metavar="INPUT", help="image files (PNG, JPEG, TIFF/BigTIFF) or folders")
+    p.add_argument("--out", required=True, metavar="DIR", help="output folder (created if missing)")
+    add_tile_options(p, max_pixels=SEGMENT_MAX_PIXELS)
+    p.add_argument("--bf16", action="store_true", help="bfloat16 forward pass (faster on CPUs with AMX/AVX-512 BF16)")
+    p.add_argument("--pixel-size", type=float, metavar="M",
+                   help="pixel side in metres, for areas (default: from the GeoTIFF's pixel scale, if any)")
+    p.add_argument("--preview", type=int, default=1024, metavar="PX", help="longest side of the overlay preview")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.set_defaults(run=_segment)
+
+
 def _demo(args: argparse.Namespace) -> int:
     from fcnkit.demo import run_demo
 
@@ -146,7 +172,7 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
 
 
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
-    _add_describe, _add_export, _add_train, _add_evaluate, _add_demo,
+    _add_describe, _add_export, _add_train, _add_evaluate, _add_demo, _add_segment,
 ]
 
 

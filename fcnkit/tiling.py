@@ -308,7 +308,8 @@ def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
 
 
 def _probe_classes(engine: Engine, bands: int, factor: int) -> int:
-    return int(engine(torch.zeros(1, bands, 2 * factor, 2 * factor)).shape[1])
+    with torch.inference_mode():
+        return int(engine(torch.zeros(1, bands, 2 * factor, 2 * factor)).shape[1])
 
 
 def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, mean: Sequence[float] | None = None,
@@ -338,4 +339,165 @@ def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, me
             for p in folder.iterdir():
                 p.unlink()
             folder.rmdir()
+
+
+
+# --- whole images to files --------------------------------------------------------------------------------
+
+SEGMENT_MAX_PIXELS = 2**31  # 2.1 gigapixels; the decoded-pixel guard for segment (raise it for larger files)
+_GENERIC_COLOURS = ((230, 159, 0), (86, 180, 233), (0, 158, 115), (240, 228, 66), (0, 114, 178), (213, 94, 0),
+                    (204, 121, 167), (120, 120, 120))  # a colour-blind-safe set (Okabe & Ito 2008), then grey
+
+
+@dataclass
+class SegmentResult:
+    """The files written for one image (by kind: labels, confidence, uncertainty, overlay, areas_csv,
+    areas_json) and its per-class area rows (id, name, pixels, fraction, area_m2)."""
+
+    paths: dict[str, Path]
+    areas: list[dict]
+    size: tuple[int, int] = (0, 0)  # height, width
+
+
+def _as_loaded(model_or_path: object):
+    """A LoadedModel from a model file path, a LoadedModel, or a bare module (no normalisation, generic classes)."""
+    from fcnkit.data.classes import ClassInfo, ClassTable
+    from fcnkit.modelfile import LoadedModel, ModelMeta, load_model
+
+    if isinstance(model_or_path, LoadedModel):
+        return model_or_path
+    if isinstance(model_or_path, nn.Module):
+        k = int(getattr(model_or_path, "classes", 0)) or _probe_classes(model_or_path, _bands(model_or_path), 32)
+        bands = _bands(model_or_path)
+        table = ClassTable(tuple(ClassInfo(i, f"class {i}", _GENERIC_COLOURS[min(i, len(_GENERIC_COLOURS) - 1)])
+                                 for i in range(k)))
+        return LoadedModel(model_or_path.eval(), ModelMeta("module", {}, table, [0.0] * bands, [1.0] * bands, ""))
+    return load_model(model_or_path)
+
+
+def _bands(model: nn.Module) -> int:
+    first = next((m for m in model.modules() if isinstance(m, nn.Conv2d)), None)
+    if first is None:
+        raise ConfigError("model: no convolution found to tell the number of input bands")
+    return int(getattr(model, "bands", first.in_channels))
+
+
+def _prepare_folder(out_dir: Path) -> None:
+    from fcnkit.errors import DataError
+
+    if out_dir.exists() and not out_dir.is_dir():
+        raise DataError(f"{out_dir}: is a file, expected an output folder")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise DataError(f"{out_dir}: cannot create the output folder ({e.strerror})") from None
+
+
+def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | Path, *, tile: int = 512,
+                  overlap: int | None = None, batch: int = 4, window: str = "hann", exact: bool = False,
+                  tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
+                  max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
+                  engine: Engine | None = None, preview: int = 1024) -> SegmentResult:
+    """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
+
+    ``model_or_path`` is a model file, a :class:`~fcnkit.modelfile.LoadedModel` or a bare module. Writes
+    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG, or TIFF for TIFF inputs and large images),
+    ``STEM.overlay`` and ``STEM.areas.csv``/``.json``. Scores are accumulated in a hidden work folder inside
+    ``out_dir``; every output is first completed there and only then moved to its final name, so a run that
+    is stopped leaves no output at all for the image rather than some of them.
+    """
+    import shutil
+    import tempfile
+
+    from fcnkit.data.raster import open_raster
+    from fcnkit.errors import DataError
+    from fcnkit.outputs import write_outputs
+
+    loaded = _as_loaded(model_or_path)
+    image_path, out_dir = Path(image_path), Path(out_dir)
+    _prepare_folder(out_dir)
+    raster = open_raster(image_path, max_pixels)
+    work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
+    try:
+        height, width, bands = raster.shape
+        if bands != len(loaded.meta.mean):
+            raise DataError(f"{image_path}: has {bands} bands but the model expects {len(loaded.meta.mean)}")
+        large = height * width > IN_MEMORY_PIXELS
+        _, store = run_tiles(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, tile=tile,
+                             overlap=overlap, batch=batch, window=window, exact=exact, tta=tta, logits=False,
+                             bf16=bf16, folder=work if large else None, engine=engine, progress=progress,
+                             classes=loaded.meta.classes.num_classes)
+        done = work / "done"
+        done.mkdir()
+        paths, areas = write_outputs(store, raster, loaded.meta.classes, done, image_path.stem,
+                                     work=work if large else None, pixel_size=pixel_size, preview=preview)
+        final = {k: out_dir / p.name for k, p in paths.items()}
+        for k, p in paths.items():  # renames within one file system: each is atomic, all follow at once
+            p.replace(final[k])
+        return SegmentResult(final, areas, (height, width))
+    finally:
+        raster.close()
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def find_images(inputs: Sequence[str | Path]) -> list[Path]:
+    """Image files named directly or found (not recursively) in folders, sorted; DataError for a missing input
+    or two inputs whose outputs would share a name."""
+    from fcnkit.data.raster import RASTER_SUFFIXES
+    from fcnkit.errors import DataError
+
+    found: list[Path] = []
+    for item in map(Path, inputs):
+        if item.is_dir():
+            found += sorted(p for p in item.iterdir() if p.is_file() and p.suffix.lower() in RASTER_SUFFIXES
+                            and not p.name.startswith("."))
+        elif item.exists():
+            found.append(item)
+        else:
+            raise DataError(f"{item}: no such image file or folder")
+    stems: dict[str, Path] = {}
+    for p in found:
+        if p.stem in stems:
+            raise DataError(f"{p}: its outputs would overwrite those of {stems[p.stem]} (same name stem)")
+        stems[p.stem] = p
+    return found
+
+
+def shard(items: Sequence, rank: int | None = None, world: int | None = None) -> list:
+    """Every ``world``-th item from ``rank`` on; by default the rank and world size torchrun sets
+    (RANK / WORLD_SIZE), or everything when not launched by it."""
+    import os
+
+    rank = int(os.environ.get("RANK", 0)) if rank is None else rank
+    world = int(os.environ.get("WORLD_SIZE", 1)) if world is None else world
+    if not 0 <= rank < world:
+        raise ConfigError(f"rank: {rank} is not in 0..{world - 1}")
+    return list(items[rank::world])
+
+
+def segment_images(model_or_path: object, inputs: Sequence[str | Path], out_dir: str | Path, *,
+                   rank: int | None = None, world: int | None = None, echo: Callable[[str], None] | None = None,
+                   **options) -> list[SegmentResult]:
+    """Map many images (files and folders) with one model; under torchrun each process takes its own shard.
+    ``options`` are those of :func:`segment_image`; ``engine`` may also name a runtime ("torch",
+    "onnxruntime"), built once for all images."""
+    loaded = _as_loaded(model_or_path)
+    files = shard(find_images(inputs), rank, world)
+    engine = options.pop("engine", None)
+    if engine == "torch" or engine is None:
+        engine = TorchEngine(loaded.model, options.get("bf16", False))
+    elif isinstance(engine, str):
+        from fcnkit.export import make_engine
+
+        engine = make_engine(engine, loaded.model)
+    options["engine"] = engine
+    results = []
+    for path in files:
+        start = time.perf_counter()
+        res = segment_image(loaded, path, out_dir, **options)
+        if echo is not None:
+            h, w = res.size
+            echo(f"{path}: {w}x{h} mapped in {time.perf_counter() - start:.1f} s -> {res.paths['labels']}")
+        results.append(res)
+    return results
 
