@@ -1,6 +1,10 @@
 """fcnkit: fully convolutional segmentation nets, built from a short config, trained and run on a CPU."""
 
 from fcnkit.config import Config, load_config
+from fcnkit.data.classes import load_classes
+from fcnkit.data.dataset import band_stats, check_dataset, find_samples
+from fcnkit.data.imageio import read_image, read_mask
+from fcnkit.data.scenes import make_scenes, write_mosaic
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError, FcnkitError, ModelFileError
 from fcnkit.evaluate import evaluate
@@ -18,4 +22,6 @@ __all__ = [
     "evaluate", "export_model", "write_report",
     "load_model", "save_model",
     "predict_scores", "segment_image", "segment_images",
+    "load_classes", "read_image", "read_mask", "find_samples", "check_dataset", "band_stats",
+    "make_scenes", "write_mosaic",
 ]

@@ -171,8 +171,45 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_demo)
 
 
+def _check(args: argparse.Namespace) -> int:
+    from fcnkit import check_dataset
+    from fcnkit.data.dataset import format_check
+
+    report = check_dataset(args.data_dir, max_pixels=args.max_pixels)
+    print(format_check(report))
+    return 0 if report.ok else 2
+
+
+def _add_check(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("check", help="validate a dataset folder: sizes, bands, class pixel counts, every problem")
+    p.add_argument("data_dir", metavar="DATA_DIR", help="folder with images/, masks/ and classes.toml")
+    p.add_argument("--max-pixels", type=int, default=2**27, metavar="N",
+                   help="refuse images with more pixels than this (default 134217728)")
+    p.set_defaults(run=_check)
+
+
+def _scenes(args: argparse.Namespace) -> int:
+    from fcnkit import make_scenes
+
+    out = make_scenes(args.out_dir, args.count, args.size, args.seed, nir=not args.no_nir)
+    print(f"wrote {args.count} synthetic Kessmoor scenes of {args.size}×{args.size} px "
+          f"({'R, G, B' if args.no_nir else 'R, G, B, NIR'}) to {out}")
+    return 0
+
+
+def _add_scenes(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("scenes", help="write synthetic aerial land-cover scenes as a dataset folder")
+    p.add_argument("out_dir", metavar="OUT_DIR", help="new (or empty) folder to write")
+    p.add_argument("--count", type=int, default=16, metavar="N", help="number of scenes (default 16)")
+    p.add_argument("--size", type=int, default=256, metavar="S", help="side of each scene in pixels (default 256)")
+    p.add_argument("--seed", type=int, default=0, metavar="K", help="random seed; same seed, same scenes (default 0)")
+    p.add_argument("--no-nir", action="store_true", help="RGB only (default: a fourth, near-infrared band)")
+    p.set_defaults(run=_scenes)
+
+
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
     _add_describe, _add_export, _add_train, _add_evaluate, _add_demo, _add_segment,
+    _add_check, _add_scenes,
 ]
 
 
