@@ -35,6 +35,7 @@ from fcnkit.export import check_destination, make_engine
 from fcnkit.losses import pixel_cross_entropy
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.modelfile import LoadedModel, load_model
+from fcnkit.outputs import normalised_entropy
 from fcnkit.tiling import predict_scores
 
 if TYPE_CHECKING:
@@ -150,12 +151,6 @@ def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str
         raise DataError(f"{data_dir / 'classes.toml'}: classes ({shown}) differ from those of {model} ({want})")
 
 
-def normalised_entropy(probs: np.ndarray, axis: int = 0) -> np.ndarray:
-    """Entropy of class probabilities divided by log(C): 0 = certain, 1 = uniform (Shannon 1948)."""
-    p = np.clip(probs, 1e-12, 1.0)
-    return (-(p * np.log(p)).sum(axis=axis) / math.log(probs.shape[axis])).astype(np.float32)
-
-
 def _preview(raster: Raster, step: int, band: int = 512) -> np.ndarray:
     """Every ``step``-th pixel of a raster, read a band of rows at a time, as a display RGB image."""
     from fcnkit.report import display_rgb
@@ -192,7 +187,7 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
     s = segmentation_scores(cm)
     score = ImageScore(sample.stem, int(cm.sum()), s["pixel_accuracy"], s["mean_iou"])
     example = Example(sample.stem, s["mean_iou"], image, mask[::step, ::step], small.argmax(0),
-                      normalised_entropy(small))
+                      normalised_entropy(small, axis=0))
     return cm, score, example
 
 

@@ -17,7 +17,7 @@ from fcnkit.config import config_from_dict, config_to_dict
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
 from fcnkit.data.imageio import write_label_png
 from fcnkit.errors import DataError
-from fcnkit.evaluate import evaluate, normalised_entropy
+from fcnkit.evaluate import evaluate
 from fcnkit.modelfile import ModelMeta, save_model
 from fcnkit.tiling import predict_scores
 
@@ -129,15 +129,6 @@ def test_onnxruntime_engine_agrees_with_torch(tmp_path, model_file):
     b = evaluate(model_file, data, tile=64, engine="onnxruntime", progress=False)
     # the same net through another runtime: at most a handful of near-tie pixels may flip
     assert np.abs(a.confusion - b.confusion).sum() <= 4
-
-
-def test_normalised_entropy_bounds():
-    # Shannon entropy over C classes is 0 for a one-hot and log C for the uniform distribution (Shannon 1948)
-    c = 5
-    one_hot = np.eye(c)[:, :, None]
-    uniform = np.full((c, 1, 1), 1 / c)
-    assert np.allclose(normalised_entropy(one_hot), 0, atol=1e-6)
-    assert np.allclose(normalised_entropy(uniform), 1, atol=1e-6)
 
 
 def _one_line_exit_2(capsys, argv):

@@ -1,0 +1,196 @@
+"""The one-command demo: synthetic scenes → training → evaluation report → mapping a large mosaic.
+
+Everything happens in one output folder (default ``fcnkit-demo``), in the invented Kessmoor scenario of
+:mod:`fcnkit.data.scenes`:
+
+1. training and held-out test scenes are rendered as dataset folders;
+2. ``configs/demo.toml`` is trained on the training scenes (a validation split is held back by the trainer);
+3. the best model is evaluated on the test scenes, with the JSON scores and the HTML report;
+4. a large GeoTIFF mosaic (8192×8192 by default) and its true labels are written block by block;
+5. the mosaic is mapped by tiled inference (labels, confidence, uncertainty, overlay, area table), and the
+   map is scored against the mosaic's true labels.
+
+The ``quick`` plan runs the same steps at toy sizes in seconds (the test suite runs it).
+"""
+
+from __future__ import annotations
+
+import shutil
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from fcnkit.config import Config, load_config, replace_section
+from fcnkit.errors import ConfigError, DataError
+
+CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.toml"
+MARKER = ".fcnkit-demo"
+PARTS = ("scenes", "run", "map", "evaluation.json", "report.html", "mosaic.tif", "mosaic_truth.tif",
+         "mosaic_scores.json")
+
+
+@dataclass(frozen=True)
+class DemoPlan:
+    """Sizes of one demo run (the defaults are the full demo)."""
+
+    train_scenes: int = 40
+    test_scenes: int = 8
+    scene_size: int = 256
+    mosaic_size: int = 8192
+    tile: int = 512
+    batch: int = 4
+    seed: int = 2026
+    train: dict[str, Any] = field(default_factory=dict)  # overrides of the config's [train] table
+
+
+FULL = DemoPlan()
+QUICK = DemoPlan(train_scenes=5, test_scenes=2, scene_size=96, mosaic_size=640, tile=256, batch=2,
+                 train={"epochs": 1, "patches_per_epoch": 8, "batch": 4, "patch": 64})
+
+
+@dataclass
+class DemoResult:
+    """Where everything went, the figures printed, and the wall time of each step (seconds)."""
+
+    out_dir: Path
+    paths: dict[str, Path]
+    figures: dict[str, Any]
+    seconds: dict[str, float]
+
+
+def prepare(out: Path) -> None:
+    """Create ``out``, or clear the demo's own outputs from an earlier run; refuse any other non-empty folder."""
+    if out.exists() and not out.is_dir():
+        raise DataError(f"{out}: exists and is not a folder (choose another demo output folder)")
+    if out.is_dir() and any(out.iterdir()):
+        if not (out / MARKER).is_file():
+            raise DataError(f"{out}: not empty and not an earlier demo output (choose another folder; "
+                            "nothing was changed)")
+        for name in PARTS:
+            p = out / name
+            if p.is_dir():
+                shutil.rmtree(p)
+            elif p.exists():
+                p.unlink()
+    out.mkdir(parents=True, exist_ok=True)
+    (out / MARKER).write_text("made by `fcnkit demo`; the demo clears its own outputs here when re-run\n")
+
+
+def demo_config(plan: DemoPlan) -> Config:
+    if not CONFIG.is_file():
+        raise ConfigError(f"{CONFIG}: the demo config is missing (run the demo from a clone of the repository)")
+    cfg = load_config(CONFIG)
+    return replace_section(cfg, "train", **plan.train) if plan.train else cfg
+
+
+def _score_map(labels_path: Path, truth_path: Path, num_classes: int, ignore: int) -> dict[str, Any]:
+    """Scores of a label map against a true label raster of the same size, read a band of rows at a time."""
+    from fcnkit.data.raster import open_raster
+    from fcnkit.metrics import confusion_matrix, segmentation_scores
+
+    pred, truth = open_raster(labels_path, None), open_raster(truth_path, None)
+    try:
+        h, w, _ = truth.shape
+        cm = np.zeros((num_classes, num_classes), np.int64)
+        for y0 in range(0, h, 1024):
+            y1 = min(y0 + 1024, h)
+            cm += confusion_matrix(truth.read(y0, y1, 0, w)[..., 0], pred.read(y0, y1, 0, w)[..., 0],
+                                   num_classes, ignore)
+    finally:
+        pred.close()
+        truth.close()
+    return segmentation_scores(cm)
+
+
+def _area_table(areas: list[dict[str, Any]]) -> str:
+    has_m2 = any(a.get("area_m2") is not None for a in areas)
+    head = f"      {'class':<14}{'pixels':>14}{'share':>8}" + (f"{'area m²':>14}{'hectares':>10}" if has_m2 else "")
+    lines = [head]
+    for a in areas:
+        line = f"      {a['name']:<14}{a['pixels']:>14,}{a['fraction']:>8.1%}"
+        if has_m2:
+            line += f"{a['area_m2']:>14,.0f}{a['area_m2'] / 1e4:>10.2f}"
+        lines.append(line)
+    return "\n".join(lines)
+
+
+def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progress: bool = True,
+             echo: Callable[[str], None] = print) -> DemoResult:
+    """Run every demo step into ``out_dir`` and print what happened and where each output is."""
+    from fcnkit.data.scenes import SCENE_CLASSES, make_scenes, write_mosaic
+    from fcnkit.evaluate import evaluate
+    from fcnkit.tiling import segment_image
+    from fcnkit.train import train
+
+    plan = QUICK if quick else FULL
+    out = Path(out_dir)
+    cfg = demo_config(plan)
+    prepare(out)
+    paths: dict[str, Path] = {}
+    figures: dict[str, Any] = {}
+    seconds: dict[str, float] = {}
+    start = time.perf_counter()
+
+    def step(name: str, text: str) -> None:
+        seconds[name] = time.perf_counter() - start - sum(seconds.values())
+        echo(f"      done in {seconds[name]:.1f} s")
+        if text:
+            echo(text)
+
+    n = 5
+    echo(f"[1/{n}] rendering {plan.train_scenes} training and {plan.test_scenes} test scenes "
+         f"({plan.scene_size}x{plan.scene_size}, 4 bands: RGB + near-infrared) of the fictional Kessmoor district")
+    paths["train_scenes"] = make_scenes(out / "scenes" / "train", plan.train_scenes, plan.scene_size, plan.seed)
+    paths["test_scenes"] = make_scenes(out / "scenes" / "test", plan.test_scenes, plan.scene_size, plan.seed + 1)
+    step("scenes", "")
+
+    epochs = f"{cfg.train.epochs} epoch" + ("s" if cfg.train.epochs > 1 else "")
+    echo(f"[2/{n}] training {CONFIG.name} ({epochs} of {cfg.train.patches_per_epoch} patches of {cfg.train.patch} px)")
+    result = train(cfg, paths["train_scenes"], out / "run", progress=progress)
+    paths["model"], paths["curves"] = result.model_path, result.run_dir / "metrics.csv"
+    figures["best_epoch"], figures["val_miou"] = result.best_epoch, result.best_miou
+    step("train", f"      best validation mean IoU {result.best_miou:.4f} at epoch {result.best_epoch}")
+
+    echo(f"[3/{n}] evaluating the model on the {plan.test_scenes} held-out test scenes")
+    ev = evaluate(paths["model"], paths["test_scenes"], json_path=out / "evaluation.json",
+                  report=out / "report.html", curves=paths["curves"], tile=plan.tile, batch=plan.batch,
+                  progress=progress)
+    paths["evaluation"], paths["report"] = ev.paths["json"], ev.paths["report"]
+    figures["test"] = {k: ev.scores[k] for k in ("pixel_accuracy", "mean_accuracy", "mean_iou", "fw_iou")}
+    step("evaluate", "\n".join("      " + line for line in ev.table().splitlines()))
+
+    side = plan.mosaic_size
+    echo(f"[4/{n}] writing a {side}x{side} 4-band GeoTIFF mosaic ({side * side / 1e6:.3g} MP, 0.5 m pixels) "
+         "and its true labels")
+    paths["mosaic"] = write_mosaic(out / "mosaic.tif", side, plan.seed + 2, mask_path=out / "mosaic_truth.tif",
+                                   progress=progress)
+    paths["mosaic_truth"] = out / "mosaic_truth.tif"
+    step("mosaic", "")
+
+    echo(f"[5/{n}] mapping the mosaic by tiled inference ({plan.tile} px tiles, Hann blending)")
+    seg = segment_image(paths["model"], paths["mosaic"], out / "map", tile=plan.tile, batch=plan.batch,
+                        progress=progress)
+    paths.update({f"map_{k}": Path(v) for k, v in seg.paths.items()})
+    label_path = seg.paths["labels"]
+    mosaic_scores = _score_map(label_path, paths["mosaic_truth"], SCENE_CLASSES.num_classes, SCENE_CLASSES.ignore)
+    figures["mosaic"] = {k: mosaic_scores[k] for k in ("pixel_accuracy", "mean_iou")}
+    figures["mp_per_s"] = side * side / 1e6 / (time.perf_counter() - start - sum(seconds.values()))
+    step("map", f"      {figures['mp_per_s']:.2f} MP/s including writing the outputs; against the mosaic's "
+         f"true labels: pixel accuracy {mosaic_scores['pixel_accuracy']:.4f}, mean IoU "
+         f"{mosaic_scores['mean_iou']:.4f}\n      class areas:\n{_area_table(seg.areas)}")
+    figures["areas"] = seg.areas
+
+    total = sum(seconds.values())
+    echo("")
+    echo(f"fcnkit demo finished in {total / 60:.0f} min {total % 60:.0f} s "
+         f"({', '.join(f'{k} {v:.0f} s' for k, v in seconds.items())})")
+    width = max(len(k) for k in paths)
+    for key, p in paths.items():
+        echo(f"  {key:<{width}}  {p}")
+    echo("Open the report in a browser; open the map rasters (GeoTIFF) in any GIS viewer. The figures are "
+         "estimates on synthetic scenes.")
+    return DemoResult(out, paths, figures, seconds)
