@@ -13,6 +13,7 @@ from fcnkit.modelfile import load_model, save_model
 from fcnkit.nets import build_model
 from fcnkit.report import write_report
 from fcnkit.tiling import predict_scores, segment_image, segment_images
+from fcnkit.train import train
 
 __version__ = "0.1.0"
 
@@ -20,7 +21,7 @@ __all__ = [
     "Config", "ConfigError", "DataError", "FcnkitError", "ModelFileError",
     "build_model", "describe", "load_config",
     "evaluate", "export_model", "write_report",
-    "load_model", "save_model",
+    "load_model", "save_model", "train",
     "predict_scores", "segment_image", "segment_images",
     "load_classes", "read_image", "read_mask", "find_samples", "check_dataset", "band_stats",
     "make_scenes", "write_mosaic",

@@ -1,0 +1,113 @@
+"""A training run's folder: the resume point, the per-epoch metrics table, and the guard against mixing runs.
+
+RUN_DIR holds ``model.safetensors`` (best model, see :mod:`fcnkit.modelfile`), ``resume.pt`` (everything
+needed to continue exactly: weights, optimiser state, RNG states, epoch and batch, history, config) and
+``metrics.csv``. The resume point is written with ``torch.save`` and read back with
+``torch.load(weights_only=True)``, which accepts only tensors and plain containers, so nothing is unpickled.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+import random
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from fcnkit.atomic import write_bytes_atomic, write_text_atomic
+from fcnkit.errors import ModelFileError
+
+FORMAT = "fcnkit-resume/1"
+MODEL_FILE, RESUME_FILE, METRICS_FILE = "model.safetensors", "resume.pt", "metrics.csv"
+# settings that change speed but not the numbers a run produces, so a run may resume with other values
+_FREE_KEYS = ("threads", "workers")
+
+
+def config_hash(config: dict[str, Any]) -> str:
+    """Short hash of a resolved config (ignoring speed-only settings): a resume point fits only its own."""
+    train = {k: v for k, v in config.get("train", {}).items() if k not in _FREE_KEYS}
+    text = json.dumps({**config, "train": train}, sort_keys=True)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def claim_run_dir(run_dir: Path, resume: bool) -> None:
+    """Refuse to start a fresh run over another one, or to resume where there is nothing to resume (checks
+    only; the folder is created when the first resume point is written)."""
+    held = [name for name in (RESUME_FILE, MODEL_FILE, METRICS_FILE) if (run_dir / name).exists()]
+    if run_dir.exists() and not run_dir.is_dir():
+        raise ModelFileError(f"{run_dir}: is a file, expected a run folder")
+    if resume and not (run_dir / RESUME_FILE).is_file():
+        raise ModelFileError(f"{run_dir / RESUME_FILE}: no resume point to continue from")
+    if not resume and held:
+        raise ModelFileError(f"{run_dir}: already holds a run ({held[0]}); continue it with --resume "
+                             "or choose another output folder")
+
+
+def _first_difference(old: dict[str, Any], new: dict[str, Any], prefix: str = "") -> str:
+    for key in sorted(set(old) | set(new)):
+        a, b = old.get(key), new.get(key)
+        if isinstance(a, dict) and isinstance(b, dict):
+            found = _first_difference(a, b, f"{prefix}{key}.")
+            if found:
+                return found
+        elif a != b and key not in _FREE_KEYS:
+            return f"{prefix}{key} was {a!r}, now {b!r}"
+    return ""
+
+
+def load_resume(path: Path, config: dict[str, Any]) -> dict[str, Any]:
+    """Read a resume point and check it belongs to ``config``."""
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as e:  # noqa: BLE001 (any unreadable or foreign file gives the same one-line error)
+        raise ModelFileError(f"{path}: not a readable resume point ({str(e).splitlines()[0][:120]})") from None
+    if not isinstance(state, dict) or state.get("format") != FORMAT:
+        raise ModelFileError(f"{path}: not an fcnkit resume point (format {FORMAT} expected)")
+    if state["config_hash"] != config_hash(config):
+        diff = _first_difference(json.loads(state["config"]), config) or "config differs"
+        raise ModelFileError(f"{path}: resume point belongs to a different config ({diff}); "
+                             "use the run's own config or another output folder")
+    return state
+
+
+def save_resume(path: Path, state: dict[str, Any]) -> None:
+    buf = io.BytesIO()
+    torch.save({"format": FORMAT, **state}, buf)
+    write_bytes_atomic(path, buf.getvalue())
+
+
+def rng_states() -> dict[str, Any]:
+    """torch, numpy and python RNG states, as tensors and plain values (loadable with weights_only)."""
+    _, keys, pos, has_gauss, cached = np.random.get_state()
+    return {"torch": torch.get_rng_state(),
+            "numpy": {"keys": torch.from_numpy(keys.astype(np.int64)), "pos": int(pos),
+                      "has_gauss": int(has_gauss), "cached": float(cached)},
+            "python": random.getstate()}
+
+
+def set_rng_states(s: dict[str, Any]) -> None:
+    torch.set_rng_state(s["torch"])
+    n = s["numpy"]
+    np.random.set_state(("MT19937", n["keys"].numpy().astype(np.uint32), n["pos"], n["has_gauss"], n["cached"]))
+    random.setstate(s["python"])
+
+
+def write_metrics(path: Path, history: list[dict[str, Any]]) -> None:
+    """The whole per-epoch table as CSV (rewritten from the history each epoch, so a rerun epoch after a
+    crash replaces its row instead of adding a second one)."""
+    if not history:
+        return
+    columns = list(history[0])
+
+    def cell(v: Any) -> str:
+        if isinstance(v, float):
+            return "nan" if math.isnan(v) else f"{v:.6g}"
+        return str(v)
+
+    lines = [",".join(columns)] + [",".join(cell(row.get(c, "")) for c in columns) for row in history]
+    write_text_atomic(path, "\n".join(lines) + "\n")

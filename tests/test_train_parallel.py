@@ -1,0 +1,61 @@
+"""Data-parallel training: two processes on localhost through torchrun (gloo backend)."""
+
+import csv
+import subprocess
+import sys
+
+import pytest
+
+from fcnkit import load_model
+from fcnkit.data.dataset import find_samples
+from fcnkit.data.imageio import read_image, read_mask
+from fcnkit.data.scenes import make_scenes
+from fcnkit.evaluate import evaluate_images
+from fcnkit.metrics import segmentation_scores
+from fcnkit.train import split_samples
+
+CONFIG = """
+[model]
+bands = 4
+classes = 5
+widths = [8, 16]
+blocks = [1, 1]
+head = [16]
+fusion = "sum"
+min_size = 16
+
+[train]
+epochs = 2
+batch = 4
+patch = 32
+patches_per_epoch = 16
+lr = 0.005
+val_fraction = 0.5
+threads = 1
+"""
+
+
+def test_two_processes_train_and_reduce_metrics(tmp_path):
+    data = make_scenes(tmp_path / "data", count=4, size=48, seed=5)
+    cfg = tmp_path / "cfg.toml"
+    cfg.write_text(CONFIG)
+    out = tmp_path / "run"
+    # `torchrun --standalone --nproc_per_node=2 -m fcnkit train ...` (torchrun is torch.distributed.run)
+    proc = subprocess.run([sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node=2",
+                           "-m", "fcnkit", "train", str(cfg), "--data", str(data), "--out", str(out), "--quiet"],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert proc.stdout.count("best val mIoU") == 1  # rank 0 alone reports
+    assert sorted(p.name for p in out.iterdir()) == ["metrics.csv", "model.safetensors", "resume.pt"]
+    rows = list(csv.DictReader((out / "metrics.csv").open()))
+    assert [r["epoch"] for r in rows] == ["1", "2"]
+    # each process validated one of the two validation images; the CSV must hold the score of both together
+    loaded = load_model(out / "model.safetensors")
+    samples, classes = find_samples(data)
+    val = split_samples(samples, 0.5, 0)[1]
+    assert len(val) == 2
+    cm, _, _ = evaluate_images(loaded.model, [read_image(s.image) for s in val],
+                               [read_mask(s.mask, classes) for s in val], mean=loaded.meta.mean,
+                               std=loaded.meta.std, num_classes=5)
+    best = rows[loaded.meta.extra["epoch"] - 1]
+    assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best["val_miou"]), rel=1e-4)
