@@ -1,0 +1,168 @@
+"""Synthetic scenes: determinism, the dataset format, a real learning problem, NIR physics, the tiled mosaic."""
+
+from __future__ import annotations
+
+import tracemalloc
+
+import numpy as np
+import pytest
+import tifffile
+from sklearn.metrics import balanced_accuracy_score
+from sklearn.neighbors import KNeighborsClassifier
+from sklearn.tree import DecisionTreeClassifier
+
+from fcnkit.cli import main
+from fcnkit.data.classes import load_classes
+from fcnkit.data.dataset import check_dataset, find_samples
+from fcnkit.data.imageio import read_image, read_mask
+from fcnkit.data.scenes import (
+    ROOF,
+    SCENE_CLASSES,
+    TRACK,
+    VEGETATION,
+    WATER,
+    make_scenes,
+    render_scene,
+    write_mosaic,
+)
+from fcnkit.errors import ConfigError, DataError
+
+
+def test_render_is_deterministic_per_seed():
+    a_img, a_lab = render_scene(96, np.random.default_rng([5, 0]))
+    b_img, b_lab = render_scene(96, np.random.default_rng([5, 0]))
+    c_img, _ = render_scene(96, np.random.default_rng([5, 1]))
+    np.testing.assert_array_equal(a_img, b_img)
+    np.testing.assert_array_equal(a_lab, b_lab)
+    assert not np.array_equal(a_img, c_img)
+    assert a_img.shape == (96, 96, 4) and a_img.dtype == np.uint8 and a_lab.dtype == np.uint8
+    rgb, lab = render_scene(96, np.random.default_rng([5, 0]), nir=False)
+    np.testing.assert_array_equal(rgb, a_img[..., :3])  # the NIR switch only drops the band
+    np.testing.assert_array_equal(lab, a_lab)
+    assert render_scene((40, 70), np.random.default_rng(0))[0].shape == (40, 70, 4)
+
+
+def test_every_class_appears():
+    labels = np.concatenate([render_scene(128, np.random.default_rng([0, i]))[1].ravel() for i in range(8)])
+    counts = np.bincount(labels, minlength=256)
+    assert (counts[:5] > 0).all() and counts[5:].sum() == 0
+
+
+def test_make_scenes_writes_the_dataset_format(tmp_path, capsys):
+    out = make_scenes(tmp_path / "d", count=3, size=64, seed=9)
+    report = check_dataset(out)
+    assert report.ok, report.problems
+    assert load_classes(out / "classes.toml") == SCENE_CLASSES
+    samples, _ = find_samples(out)
+    for i, s in enumerate(samples):
+        img, lab = render_scene(64, np.random.default_rng([9, i]))
+        np.testing.assert_array_equal(read_image(s.image), img)
+        np.testing.assert_array_equal(read_mask(s.mask, SCENE_CLASSES), lab)
+    assert main(["scenes", str(tmp_path / "rgb"), "--count", "2", "--size", "48", "--seed", "9", "--no-nir"]) == 0
+    rgb_samples, _ = find_samples(tmp_path / "rgb")
+    assert [p.image.suffix for p in rgb_samples] == [".png", ".png"]
+    np.testing.assert_array_equal(read_image(rgb_samples[1].image),
+                                  render_scene(48, np.random.default_rng([9, 1]), nir=False)[0])
+
+
+def test_make_scenes_refuses_to_overwrite_and_bad_values(tmp_path, capsys):
+    (tmp_path / "full").mkdir()
+    (tmp_path / "full" / "keep.txt").write_text("mine")
+    with pytest.raises(DataError, match="not an empty folder"):
+        make_scenes(tmp_path / "full", 1, 32, 0)
+    assert main(["scenes", str(tmp_path / "full"), "--count", "1"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "full" in err and (tmp_path / "full" / "keep.txt").read_text() == "mine"
+    with pytest.raises(ConfigError, match="count = 0"):
+        make_scenes(tmp_path / "new", 0, 32, 0)
+
+
+def _pixels(seed, classes, bands, limit=4000):
+    """Single-pixel values and labels of ``classes`` from 10 scenes, at most ``limit`` of them (a random subset)."""
+    xs, ys = [], []
+    for i in range(10):
+        img, lab = render_scene(128, np.random.default_rng([seed, i]))
+        keep = np.isin(lab, classes)
+        xs.append(img[keep][:, :bands])
+        ys.append(lab[keep])
+    x, y = np.concatenate(xs).astype(np.float64), np.concatenate(ys)
+    pick = np.random.default_rng(seed).permutation(y.size)[:limit]
+    return x[pick], y[pick]
+
+
+@pytest.mark.parametrize("clf", [DecisionTreeClassifier(min_samples_leaf=5, random_state=0),
+                                 KNeighborsClassifier(n_neighbors=15)], ids=["tree", "knn"])
+def test_no_per_pixel_colour_rule_separates_roofs_from_tracks(clf):
+    # Reference classifiers: scikit-learn's decision tree and k-nearest neighbours on single-pixel values, fitted
+    # on scenes of one seed and scored on another. Roofs and tracks share one colour distribution, so they stay
+    # near chance (0.5 balanced accuracy); only shape and context tell them apart.
+    x_train, y_train = _pixels(1, (ROOF, TRACK), bands=4)
+    x_test, y_test = _pixels(2, (ROOF, TRACK), bands=4)
+    assert min(np.bincount(y_test)[[ROOF, TRACK]]) > 400
+    score = balanced_accuracy_score(y_test, clf.fit(x_train, y_train).predict(x_test))
+    assert score < 0.65, score
+    # The same classifier does separate classes that differ per pixel (water and vegetation, via NIR), so the
+    # low score above is a property of the scenes, not of the classifier.
+    x_train, y_train = _pixels(1, (WATER, VEGETATION), bands=4)
+    x_test, y_test = _pixels(2, (WATER, VEGETATION), bands=4)
+    assert balanced_accuracy_score(y_test, clf.fit(x_train, y_train).predict(x_test)) > 0.97
+
+
+def test_nir_is_bright_on_vegetation_and_dark_on_water():
+    # Physical fact of remote sensing (common practice, e.g. in the NDVI): leaves reflect strongly in the near
+    # infrared and water absorbs it. Checked on every scene that holds both classes.
+    checked = 0
+    for i in range(12):
+        img, lab = render_scene(128, np.random.default_rng([4, i]))
+        if (lab == WATER).sum() > 100 and (lab == VEGETATION).sum() > 100:
+            nir = img[..., 3].astype(float)
+            assert nir[lab == VEGETATION].mean() > 3 * nir[lab == WATER].mean()
+            red = img[..., 0].astype(float)
+            ndvi_veg = (nir - red)[lab == VEGETATION].mean() / (nir + red)[lab == VEGETATION].mean()
+            assert ndvi_veg > 0.3  # dense vegetation has NDVI well above bare soil (from memory: ~0.3–0.8)
+            checked += 1
+    assert checked >= 3
+
+
+def test_mosaic_blocks_tiles_and_geotiff_tags(tmp_path):
+    path, mask = tmp_path / "m.tif", tmp_path / "m_labels.tif"
+    write_mosaic(path, (600, 520), 3, block=256, distinct=None, mask_path=mask, pixel_size=0.25)
+    with tifffile.TiffFile(path) as tif:
+        page = tif.pages[0]
+        assert tif.is_bigtiff and page.is_tiled and (page.tilelength, page.tilewidth) == (256, 256)
+        image = page.asarray()
+        # GeoTIFF tags (numbers from the GeoTIFF 1.0 specification, recalled from memory); tifffile's own GeoTIFF
+        # decoder is the reference that the key directory is well formed.
+        assert page.tags[33550].value == (0.25, 0.25, 0.0)
+        assert page.tags[33922].value[:3] == (0.0, 0.0, 0.0)
+        assert 34735 in page.tags
+        geo = tif.geotiff_metadata
+        assert int(geo["GTModelTypeGeoKey"]) == 1 and int(geo["ProjLinearUnitsGeoKey"]) == 9001
+    assert image.shape == (600, 520, 4)
+    labels = read_mask(mask, SCENE_CLASSES)
+    with tifffile.TiffFile(mask) as tif:
+        assert tif.pages[0].compression == 8 and tif.pages[0].tags[33550].value == (0.25, 0.25, 0.0)
+    for by, bx in ((0, 0), (1, 1), (2, 2)):  # block (i, j) is the scene of (seed, i, j), edge blocks cropped
+        y, x = by * 256, bx * 256
+        img, lab = render_scene((min(256, 600 - y), min(256, 520 - x)), np.random.default_rng([3, by, bx]))
+        np.testing.assert_array_equal(image[y:y + 256, x:x + 256], img)
+        np.testing.assert_array_equal(labels[y:y + 256, x:x + 256], lab)
+    assert not list(tmp_path.glob(".*partial*"))
+
+
+def test_mosaic_memory_is_bounded(tmp_path):
+    # Peak Python-side allocations (numpy reports to tracemalloc) stay far below the image's own size.
+    side = 4096
+    tracemalloc.start()
+    try:
+        write_mosaic(tmp_path / "big.tif", side, 0, block=256, distinct=4, geo=False, mask_path=tmp_path / "l.tif")
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 0.25 * side * side * 4, peak  # one row of blocks and the scene pool, not the image
+    with tifffile.TiffFile(tmp_path / "big.tif") as tif:
+        assert tif.series[0].shape == (side, side, 4) and 33550 not in tif.pages[0].tags
+        corner = tif.pages[0].asarray()[:256, :256]
+    pool = [render_scene(256, np.random.default_rng([0, k]))[0] for k in range(4)]
+    variants = [np.rot90(p, t)[:, ::f] for p in pool for t in range(4) for f in (1, -1)]
+    assert any(np.array_equal(corner, v) for v in variants)  # each block is a pooled scene, flipped/turned
