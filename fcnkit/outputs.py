@@ -31,7 +31,7 @@ from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import TIFF_SUFFIXES, GeoTags, Raster, RasterSpec, RowStore, write_tiff_streamed
 
 PNG_MAX_PIXELS = 50_000_000  # maps of larger images are written as tiled TIFF
-BAND = 256  # rows per pass over the score store
+BAND = 64  # rows per pass over the score store (keeps the temporaries of one pass small)
 CAUTION = ("Statistical estimates from a model trained on few examples; verify with ground truth and qualified "
            "people before any medical, structural, flood or safety decision.")
 

@@ -89,6 +89,11 @@ def plan_axis(length: int, tile: int, step: int, factor: int) -> tuple[Span, ...
     gaps of at most ``step``; the last tile ends at the image end (up to factor−1 pixels longer)."""
     if length <= tile:
         return (Span(0, length, 0, 0),)
+    # shrink the tiles to the smallest size that needs no more tiles, so no thin extra tile is computed
+    overlap = tile - step
+    n = math.ceil((length - overlap) / step)
+    tile = min(tile, math.ceil((math.ceil((length - overlap) / n) + overlap) / factor) * factor)
+    step = min(step, tile - overlap)
     last = (length - tile) // factor * factor
     n = math.ceil(last / step) + 1
     origins = [k * (last // factor) // max(n - 1, 1) * factor for k in range(n)]
@@ -295,6 +300,7 @@ def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
                           "(flipped tiles see different pooling grids)")
     height, width, bands = raster.shape
     plan = plan_tiles(net_geometry(model), height, width, tile=tile, overlap=overlap, window=window, exact=exact)
+    check_plan_memory(model, plan, batch, bands)
     mean = [0.0] * bands if mean is None else list(mean)
     std = [1.0] * bands if std is None else list(std)
     engine = engine or TorchEngine(model, bf16)
@@ -305,6 +311,16 @@ def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
                progress=progress)
     normalise_store(plan, store)
     return plan, store
+
+
+def check_plan_memory(model: nn.Module, plan: TilePlan, batch: int, bands: int) -> None:
+    """Refuse a tile and batch size whose forward pass would not fit in the memory available (fcnkit.memory)."""
+    from fcnkit.memory import check_forward_memory
+    from fcnkit.nets import layer_graph
+
+    rows, cols = max(s.stop - s.start for s in plan.rows), max(s.stop - s.start for s in plan.cols)
+    check_forward_memory(layer_graph(model), rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,
+                         factor=plan.factor)
 
 
 def _probe_classes(engine: Engine, bands: int, factor: int) -> int:
@@ -413,6 +429,8 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
     from fcnkit.errors import DataError
     from fcnkit.outputs import write_outputs
 
+    if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
+        raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
     loaded = _as_loaded(model_or_path)
     image_path, out_dir = Path(image_path), Path(out_dir)
     _prepare_folder(out_dir)
@@ -449,8 +467,11 @@ def find_images(inputs: Sequence[str | Path]) -> list[Path]:
     found: list[Path] = []
     for item in map(Path, inputs):
         if item.is_dir():
-            found += sorted(p for p in item.iterdir() if p.is_file() and p.suffix.lower() in RASTER_SUFFIXES
+            images = sorted(p for p in item.iterdir() if p.is_file() and p.suffix.lower() in RASTER_SUFFIXES
                             and not p.name.startswith("."))
+            if not images:
+                raise DataError(f"{item}: no image files in this folder (expected {', '.join(RASTER_SUFFIXES)})")
+            found += images
         elif item.exists():
             found.append(item)
         else:

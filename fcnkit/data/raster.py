@@ -16,6 +16,8 @@ Writers stream a large raster to a tiled, deflate-compressed (Big)TIFF block by 
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import math
 import os
 import struct
@@ -142,15 +144,17 @@ class ArrayRaster:
 class TiffRaster:
     """Region reader for a TIFF or BigTIFF (first image), decoding only the tiles or strips a region needs."""
 
-    def __init__(self, path: str | Path, max_pixels: int | None, cache_bytes: int = 128 << 20) -> None:
+    def __init__(self, path: str | Path, max_pixels: int | None, cache_bytes: int = 64 << 20) -> None:
         self.path = Path(path)
         try:
-            self._tif = tifffile.TiffFile(self.path)
-            page = self._tif.pages.first
+            with quiet_tifffile():
+                self._tif = tifffile.TiffFile(self.path)
         except (tifffile.TiffFileError, ValueError, IndexError, EOFError, struct.error) as e:
             raise DataError(f"{self.path}: not a readable TIFF ({_one_line(e)})") from None
         try:
-            self._open(page, max_pixels)
+            if not len(self._tif.pages):
+                raise DataError(f"{self.path}: not a readable TIFF (it holds no image)")
+            self._open(self._tif.pages.first, max_pixels)
         except BaseException:
             self._tif.close()
             raise
@@ -161,6 +165,11 @@ class TiffRaster:
         sep, depth, height, width, contig = page.shaped
         if depth != 1 or page.dtype is None:
             raise DataError(f"{self.path}: unsupported TIFF layout (depth {depth}, dtype {page.dtype})")
+        if np.dtype(page.dtype).kind not in "buif":
+            raise DataError(f"{self.path}: pixel type {page.dtype} (expected integers or real floats)")
+        if not height * width * sep * contig:
+            raise DataError(f"{self.path}: image has no pixels ({height}x{width}, {sep * contig} bands; expected "
+                            "at least one pixel and one band)")
         if max_pixels is not None and height * width > max_pixels:
             raise DataError(f"{self.path}: {width}x{height} = {height * width:,} pixels is above the limit of "
                             f"{max_pixels:,}; raise the pixel limit if the file is trusted")
@@ -180,6 +189,13 @@ class TiffRaster:
         self._rows, self._cols = math.ceil(height / self._seg_h), math.ceil(width / self._seg_w)
 
     def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        out = self._read(y0, y1, x0, x1)
+        if out.dtype.kind == "f" and not np.isfinite(out).all():  # NaN scores would pass silently into a map
+            raise DataError(f"{self.path}: {int((~np.isfinite(out)).sum())} NaN or infinite pixel values in rows "
+                            f"{y0}..{y1 - 1} (expected finite numbers; fill no-data pixels before mapping)")
+        return out
+
+    def _read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         if self._contiguous:
             _, width, bands = self.shape
             dtype = self.dtype.newbyteorder(self._tif.byteorder)
@@ -226,6 +242,19 @@ class TiffRaster:
     def close(self) -> None:
         self._cache.clear()
         self._tif.close()
+
+
+@contextlib.contextmanager
+def quiet_tifffile() -> Iterator[None]:
+    """Silence tifffile's log warnings about damaged structures while opening a file: the DataError raised for
+    the file says what is wrong on one line."""
+    log = logging.getLogger("tifffile")
+    level = log.level
+    log.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        log.setLevel(level)
 
 
 def _one_line(e: BaseException) -> str:

@@ -1,0 +1,167 @@
+"""Benchmark of tiled inference: speed against whole-image inference, against the CPU's matmul peak, bf16,
+peak memory on a large mosaic, and time against image size. Random weights (speed does not depend on them).
+
+    .venv/bin/python scripts/bench_tiling.py [--quick] [--mosaic-side 16384] [--out DIR]
+
+Every figure is a ratio of timings taken in this one run, so a shared, noisy machine shifts both sides of
+each ratio alike. Targets (issue 4): tiled ÷ naive whole-image NCHW float32 ≥ 2.5; tiled ÷ whole-image
+channels_last ≥ 0.9; achieved FLOP/s ÷ float32 matmul peak ≥ 0.5; peak RSS on a 16384×16384 4-band mosaic
+≤ 1.5 GB; time per pixel for 1, 4, 16 and 64 MP within 10 % of each other.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from fcnkit import build_model, load_config
+from fcnkit.geometry import macs
+from fcnkit.nets import layer_graph
+from fcnkit.tiling import TorchEngine, net_geometry, plan_tiles, predict_scores
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def best_of(fn, repeats: int) -> float:
+    """Shortest wall time of ``repeats`` calls (after one warm-up call): the least disturbed measurement."""
+    fn()
+    times = []
+    for _ in range(repeats):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return min(times)
+
+
+def matmul_peak(n: int = 2048, repeats: int = 5) -> float:
+    """float32 FLOP/s of torch.mm on n×n matrices, the practical peak of this CPU with these threads."""
+    a, b = torch.randn(n, n), torch.randn(n, n)
+    return 2 * n**3 / best_of(lambda: torch.mm(a, b), repeats)
+
+
+def random_net(config: str) -> torch.nn.Module:
+    torch.manual_seed(0)
+    net = build_model(load_config(ROOT / config)).eval()
+    for m in net.modules():  # non-trivial statistics, as after training
+        if isinstance(m, torch.nn.BatchNorm2d):
+            m.running_mean.uniform_(-0.2, 0.2)
+            m.running_var.uniform_(0.5, 2.0)
+    return net
+
+
+def speed(config: str, side: int, repeats: int, peak: float) -> dict:
+    net = random_net(config)
+    bands = net.bands
+    img = np.random.default_rng(0).integers(0, 255, (side, side, bands), dtype=np.uint8)
+    x = torch.from_numpy(img).permute(2, 0, 1)[None].float().contiguous()
+    mp = side * side / 1e6
+
+    def naive():
+        with torch.no_grad():
+            net(x)
+
+    cl_engine = TorchEngine(net)  # whole image, channels_last, BN folded, inference mode
+    x_cl = x.contiguous(memory_format=torch.channels_last)
+
+    def whole_cl():
+        cl_engine(x_cl)
+
+    def tiled(bf16=False):
+        return lambda: predict_scores(net, img, bf16=bf16)
+
+    t_naive = best_of(naive, repeats)
+    t_cl = best_of(whole_cl, repeats)
+    t_tiled = best_of(tiled(), repeats)
+    t_bf16 = best_of(tiled(True), repeats)
+    agree = float((predict_scores(net, img).argmax(0) == predict_scores(net, img, bf16=True).argmax(0)).mean())
+    graph = layer_graph(net)
+    useful = 2 * macs(graph, side, side)
+    plan = plan_tiles(net_geometry(net), side, side)
+    executed = 2 * sum(macs(graph, *t.shape) for t in plan.tiles())
+    return {
+        "config": config, "image": f"{side}x{side}x{bands}", "tiles": len(plan.tiles()), "overlap": plan.overlap,
+        "naive_mp_s": mp / t_naive, "whole_cl_mp_s": mp / t_cl, "tiled_mp_s": mp / t_tiled,
+        "tiled_over_naive": t_naive / t_tiled, "tiled_over_whole_cl": t_cl / t_tiled,
+        "useful_flops_over_peak": useful / t_tiled / peak, "executed_flops_over_peak": executed / t_tiled / peak,
+        "whole_cl_flops_over_peak": useful / t_cl / peak,
+        "bf16_speedup": t_tiled / t_bf16, "bf16_label_agreement": agree,
+    }
+
+
+CHILD = """
+import json, resource, sys, time
+import torch
+sys.path.insert(0, {root!r})
+from fcnkit import build_model, load_config
+from fcnkit.tiling import segment_image
+torch.manual_seed(0)
+net = build_model(load_config({config!r})).eval()
+t = time.perf_counter()
+res = segment_image(net, {image!r}, {out!r}, progress=False)
+print(json.dumps({{"seconds": time.perf_counter() - t, "maxrss_kb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+                  "labels": str(res.paths["labels"])}}))
+"""
+
+
+def segment_child(config: str, image: Path, out: Path) -> dict:
+    """segment_image in a fresh process: its wall time and its own peak resident set size."""
+    code = CHILD.format(root=str(ROOT), config=str(ROOT / config), image=str(image), out=str(out))
+    run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return json.loads(run.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="small sizes, one repeat (a smoke run)")
+    ap.add_argument("--mosaic-side", type=int, default=16384)
+    ap.add_argument("--out", default=None, help="folder for mosaics and outputs (default: a temporary folder)")
+    args = ap.parse_args()
+    from fcnkit.data.scenes import write_mosaic
+
+    side, repeats = (1024, 1) if args.quick else (2048, 3)
+    scaling_sides = (256, 512, 1024) if args.quick else (1024, 2048, 4096, 8192)
+    mosaic_side = 2048 if args.quick else args.mosaic_side
+    print(f"torch {torch.__version__}, {torch.get_num_threads()} threads; the 2 cores may be shared with other "
+          "work, so absolute speeds are noisy; ratios are taken within this run")
+    peak = matmul_peak()
+    print(f"float32 matmul peak (torch.mm 2048^3): {peak / 1e9:.1f} GFLOP/s")
+    for config in ("configs/demo.toml", "configs/fcn8s.toml"):
+        r = speed(config, side, repeats, peak)
+        print(json.dumps(r))
+        print(f"  {config}: tiled {r['tiled_mp_s']:.2f} MP/s | tiled/naive NCHW {r['tiled_over_naive']:.2f} "
+              f"(target >= 2.5) | tiled/whole channels_last {r['tiled_over_whole_cl']:.2f} (target >= 0.9) | "
+              f"useful FLOP/s / peak {r['useful_flops_over_peak']:.2f} (target >= 0.5; executed incl. overlap "
+              f"{r['executed_flops_over_peak']:.2f}) | bf16 speed-up {r['bf16_speedup']:.2f}")
+
+    work = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="bench-tiling-"))
+    work.mkdir(parents=True, exist_ok=True)
+    per_mp = []
+    for s in scaling_sides:
+        img = write_mosaic(work / f"scale{s}.tif", s, 1)
+        r = segment_child("configs/demo.toml", img, work / f"scale{s}")
+        per_mp.append(r["seconds"] / (s * s / 1e6))
+        print(f"  time vs pixels: {s * s / 1e6:.0f} MP in {r['seconds']:.1f} s = {per_mp[-1]:.2f} s/MP")
+    mean = float(np.mean(per_mp))
+    print(f"  s/MP spread: max deviation from the mean {max(abs(v - mean) / mean for v in per_mp):.1%} "
+          "(target: linear within 10%)")
+
+    mosaic = write_mosaic(work / f"mosaic{mosaic_side}.tif", mosaic_side, 2)
+    r = segment_child("configs/demo.toml", mosaic, work / "mosaic_out")
+    print(f"  {mosaic_side}x{mosaic_side} 4-band mosaic: {r['seconds']:.0f} s "
+          f"({mosaic_side**2 / 1e6 / r['seconds']:.2f} MP/s incl. reading and writing outputs), peak RSS "
+          f"{r['maxrss_kb'] / 2**20:.2f} GB (ru_maxrss of the child process; target <= 1.5 GB)")
+    print(f"  (this process's own peak RSS: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20:.2f} GB)")
+    print(f"outputs in {work}")
+
+
+if __name__ == "__main__":
+    main()
