@@ -119,7 +119,7 @@ def _rivers_and_tracks(rng: np.random.Generator, img: np.ndarray, label: np.ndar
 def _roofs(rng: np.random.Generator, img: np.ndarray, label: np.ndarray, height: np.ndarray, scale: float) -> None:
     """Buildings in hamlets: rotated rectangles 8–26 px long with a gable (lit and shaded halves) and eaves."""
     h, w = label.shape
-    for _ in range(rng.poisson(2.0 * scale)):
+    for _ in range(rng.poisson(3.0 * scale)):
         cy, cx = rng.uniform(0, h), rng.uniform(0, w)
         angle = rng.uniform(0, np.pi)
         n = rng.integers(2, 10)
