@@ -1,0 +1,66 @@
+"""Per-pixel maps and area tables, checked against scipy's entropy, numpy's argmax and the csv module."""
+
+import csv
+import io
+import math
+
+import numpy as np
+import pytest
+from scipy.stats import entropy
+
+from fcnkit.data.classes import ClassInfo, ClassTable
+from fcnkit.outputs import area_rows, areas_csv, class_maps, normalised_entropy, overlay, to_byte
+
+CLASSES = ClassTable((ClassInfo(0, "open ground", (200, 180, 120)), ClassInfo(1, "water", (40, 100, 200)),
+                      ClassInfo(2, "roof", (210, 60, 50))))
+
+
+def _probs(shape, seed=0):
+    rng = np.random.default_rng(seed)
+    logits = rng.normal(scale=2.0, size=shape).astype(np.float32)
+    e = np.exp(logits - logits.max(-1, keepdims=True))
+    return e / e.sum(-1, keepdims=True)
+
+
+def test_normalised_entropy_is_shannon_entropy_in_base_c():
+    # scipy.stats.entropy(p, base=C) = -Σ p log_C p: Shannon entropy normalised to [0, 1] by log C.
+    p = _probs((40, 30, 3))
+    ref = entropy(p, base=3, axis=-1)
+    np.testing.assert_allclose(normalised_entropy(p), ref, atol=1e-5)
+    assert np.allclose(normalised_entropy(np.full((2, 2, 5), 0.2)), 1.0)
+    assert np.allclose(normalised_entropy(np.eye(4)[None]), 0.0, atol=1e-6)
+
+
+def test_class_maps_match_argmax_max_and_entropy():
+    p = _probs((25, 35, 3), 1)
+    labels, conf, unc = class_maps(p)
+    np.testing.assert_array_equal(labels, p.argmax(-1))  # numpy argmax: first maximum on ties, like torch
+    np.testing.assert_array_equal(conf, np.rint(p.max(-1) * 255).astype(np.uint8))
+    np.testing.assert_array_equal(unc, np.rint(entropy(p, base=3, axis=-1) * 255).astype(np.uint8))
+    assert conf.min() >= math.floor(255 / 3)  # the top class of 3 has probability >= 1/3
+
+
+def test_to_byte_rounds_to_nearest_and_clips():
+    np.testing.assert_array_equal(to_byte(np.array([0.0, 0.5 / 255, 0.499, 1.0, 1.2, -0.1])),
+                                  [0, 0, 127, 255, 255, 0])  # round-half-to-even at 0.5/255 (numpy rint)
+
+
+def test_areas_are_pixel_count_times_pixel_area():
+    counts = np.array([300, 0, 700])
+    rows = area_rows(counts, CLASSES, 0.25)
+    assert [r["pixels"] for r in rows] == [300, 0, 700]
+    assert [r["area_m2"] for r in rows] == [300 * 0.25, 0.0, 700 * 0.25]
+    assert sum(r["fraction"] for r in rows) == pytest.approx(1.0)
+    assert [r["area_m2"] for r in area_rows(counts, CLASSES, None)] == [None, None, None]
+    parsed = list(csv.DictReader(io.StringIO(areas_csv(rows))))  # read back with the standard csv module
+    assert [p["name"] for p in parsed] == CLASSES.names
+    assert [float(p["area_m2"]) for p in parsed] == [75.0, 0.0, 175.0]
+    assert [int(p["pixels"]) for p in parsed] == [300, 0, 700]
+
+
+def test_overlay_is_alpha_blend_of_class_colours():
+    rgb = np.full((2, 2, 3), 100, np.uint8)
+    labels = np.array([[0, 1], [2, 0]], np.uint8)
+    out = overlay(rgb, labels, CLASSES.colors, alpha=0.5)
+    want = np.rint(0.5 * 100 + 0.5 * np.array(CLASSES.colors, float)[labels]).astype(np.uint8)
+    np.testing.assert_array_equal(out, want)

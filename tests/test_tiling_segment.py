@@ -1,0 +1,217 @@
+"""segment_image / `fcnkit segment`: outputs, GeoTIFF tags, areas, bad input, and a run killed mid-image."""
+
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import tifffile
+import torch
+from PIL import Image
+from safetensors.torch import save_file
+
+from fcnkit import __version__, build_model, segment_image, segment_images
+from fcnkit.cli import main
+from fcnkit.config import config_from_dict, config_to_dict
+from fcnkit.data.classes import ClassInfo, ClassTable
+from fcnkit.data.raster import PIXEL_SCALE, TiffRaster, read_geotags
+from fcnkit.data.scenes import geotiff_tags
+from fcnkit.errors import DataError
+from fcnkit.modelfile import ModelMeta, save_model
+from fcnkit.outputs import to_byte
+from fcnkit.tiling import find_images, predict_scores, shard
+
+CLASSES = ClassTable((ClassInfo(0, "open ground", (200, 180, 120)), ClassInfo(1, "water", (40, 100, 200)),
+                      ClassInfo(2, "roof", (210, 60, 50))))
+MEAN, STD = [500.0, 600.0, 700.0, 800.0], [100.0, 120.0, 140.0, 160.0]
+
+
+def _model_file(folder: Path, bands: int = 4) -> Path:
+    cfg = config_from_dict({"model": {"bands": bands, "classes": 3, "widths": [6, 8], "fusion": "sum",
+                                      "min_size": 16}})
+    torch.manual_seed(0)
+    net = build_model(cfg)
+    path = folder / "model.safetensors"
+    save_model(path, net, ModelMeta("segnet", config_to_dict(cfg), CLASSES, MEAN[:bands], STD[:bands], __version__,
+                                    {}))
+    return path
+
+
+def _geotiff(path: Path, h: int = 150, w: int = 170, pixel: float = 0.5) -> np.ndarray:
+    img = np.random.default_rng(0).normal(650, 150, (h, w, 4)).clip(0, 65535).astype(np.uint16)
+    tifffile.imwrite(path, img, tile=(32, 32), compression="zlib", photometric="minisblack", planarconfig="contig",
+                     extratags=geotiff_tags(pixel))
+    return img
+
+
+def _tags(path: Path) -> dict:
+    with tifffile.TiffFile(path) as tif:
+        geo = read_geotags(tif.pages.first)
+    return {code: value for code, _, _, value in geo.tags}
+
+
+def _visible(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.iterdir() if not p.name.startswith("."))
+
+
+def test_geotiff_outputs_carry_the_input_tags_and_areas(tmp_path):
+    model = _model_file(tmp_path)
+    img = _geotiff(tmp_path / "field.tif")
+    res = segment_image(model, tmp_path / "field.tif", tmp_path / "out", tile=64, preview=64, progress=False)
+    assert set(res.paths) == {"labels", "confidence", "uncertainty", "overlay", "areas_csv", "areas_json"}
+    assert _visible(tmp_path / "out") == sorted(p.name for p in res.paths.values())
+    assert list((tmp_path / "out").iterdir()) == [p for p in (tmp_path / "out").iterdir() if p.name[0] != "."]
+
+    # every raster output carries the input's georeferencing tags (GeoTIFF 1.0 tags read back with tifffile);
+    # the overlay is down-sampled by `step`, so its pixel scale is `step` times larger
+    want = _tags(tmp_path / "field.tif")
+    for kind in ("labels", "confidence", "uncertainty"):
+        assert _tags(res.paths[kind]) == want, kind
+    step = math.ceil(170 / 64)
+    over = _tags(res.paths["overlay"])
+    assert over[PIXEL_SCALE] == (0.5 * step, 0.5 * step, 0.0)
+    assert {k: v for k, v in over.items() if k != PIXEL_SCALE} == {k: v for k, v in want.items() if k != PIXEL_SCALE}
+    with tifffile.TiffFile(res.paths["overlay"]) as tif:
+        assert tif.pages.first.shape == (math.ceil(150 / step - 0.5), math.ceil(170 / step - 0.5), 3)
+
+    # the maps are those of the API's probabilities
+    from fcnkit.modelfile import load_model
+
+    probs = predict_scores(load_model(model).model, img, mean=MEAN, std=STD, tile=64)
+    labels = tifffile.imread(res.paths["labels"])
+    np.testing.assert_array_equal(labels, probs.argmax(0))
+    np.testing.assert_array_equal(tifffile.imread(res.paths["confidence"]), to_byte(probs.max(0)))
+    with tifffile.TiffFile(res.paths["labels"]) as tif:
+        cmap = tif.pages.first.colormap
+    np.testing.assert_array_equal(cmap[:, :3].T // 257, np.array(CLASSES.colors))
+
+    # areas = pixel count × pixel area (0.5 m × 0.5 m from the GeoTIFF pixel scale)
+    counts = np.bincount(labels.ravel(), minlength=3)
+    doc = json.loads(res.paths["areas_json"].read_text())
+    assert doc["pixel_area_m2"] == 0.25 and doc["pixel_area_source"] == "GeoTIFF pixel scale"
+    assert [r["pixels"] for r in doc["classes"]] == counts.tolist()
+    assert [r["area_m2"] for r in doc["classes"]] == (counts * 0.25).tolist()
+    assert doc["classes"] == res.areas
+    assert res.size == (150, 170)
+
+
+def test_png_input_gives_palette_png_and_pixel_size_option(tmp_path):
+    model = _model_file(tmp_path, bands=3)
+    rgb = np.random.default_rng(1).integers(0, 255, (70, 90, 3), dtype=np.uint8)
+    Image.fromarray(rgb).save(tmp_path / "plot.png")
+    res = segment_image(model, tmp_path / "plot.png", tmp_path / "out", tile=32, pixel_size=0.1, progress=False)
+    with Image.open(res.paths["labels"]) as im:  # read back with Pillow
+        assert im.mode == "P" and res.paths["labels"].suffix == ".png"
+        assert [tuple(im.getpalette()[3 * i:3 * i + 3]) for i in range(3)] == CLASSES.colors
+        labels = np.asarray(im)
+    assert Image.open(res.paths["uncertainty"]).mode == "L"
+    counts = np.bincount(labels.ravel(), minlength=3)
+    assert [r["area_m2"] for r in res.areas] == pytest.approx((counts * 0.1 * 0.1).tolist())
+
+
+def test_cli_segment_prints_one_line_per_image(tmp_path, capsys):
+    model = _model_file(tmp_path, bands=3)
+    Image.fromarray(np.zeros((40, 40, 3), np.uint8)).save(tmp_path / "a.png")
+    assert main(["segment", str(model), str(tmp_path / "a.png"), "--out", str(tmp_path / "o"), "--quiet",
+                 "--tile", "32"]) == 0
+    out = capsys.readouterr().out.strip().splitlines()
+    assert len(out) == 1 and "a.png: 40x40 mapped" in out[0]
+
+
+def _bad(tmp_path: Path, case: str) -> tuple[list[str], str]:
+    model = _model_file(tmp_path)
+    _geotiff(tmp_path / "good.tif", 60, 60)
+    out = str(tmp_path / "out")
+    if case == "missing model":
+        return ["segment", str(tmp_path / "nope.safetensors"), str(tmp_path / "good.tif"), "--out", out], \
+            "nope.safetensors: no such model file"
+    if case == "unreadable model":
+        (tmp_path / "junk.safetensors").write_bytes(b"\x00\x01 not a model")
+        return ["segment", str(tmp_path / "junk.safetensors"), str(tmp_path / "good.tif"), "--out", out], \
+            "junk.safetensors: not a safetensors model file"
+    if case == "model from elsewhere":
+        save_file({"w": torch.zeros(2)}, str(tmp_path / "other.safetensors"))
+        return ["segment", str(tmp_path / "other.safetensors"), str(tmp_path / "good.tif"), "--out", out], \
+            "other.safetensors: metadata key 'fcnkit.kind' is missing"
+    if case == "wrong bands":
+        Image.fromarray(np.zeros((40, 40, 3), np.uint8)).save(tmp_path / "rgb.png")
+        return ["segment", str(model), str(tmp_path / "rgb.png"), "--out", out], \
+            "rgb.png: has 3 bands but the model expects 4"
+    if case == "truncated tiff":
+        data = (tmp_path / "good.tif").read_bytes()
+        (tmp_path / "cut.tif").write_bytes(data[: len(data) // 2])
+        return ["segment", str(model), str(tmp_path / "cut.tif"), "--out", out], "cut.tif: "
+    if case == "pixel limit":
+        return ["segment", str(model), str(tmp_path / "good.tif"), "--out", out, "--max-pixels", "3599"], \
+            "good.tif: 60x60 = 3,600 pixels is above the limit of 3,599"
+    if case == "out is a file":
+        (tmp_path / "out").write_text("keep me")
+        return ["segment", str(model), str(tmp_path / "good.tif"), "--out", out], "out: is a file"
+    if case == "tile below margin":
+        return ["segment", str(model), str(tmp_path / "good.tif"), "--out", out, "--exact", "--tile", "16"], \
+            "tile: 16 px is too small for exact tiling"
+    raise AssertionError(case)
+
+
+@pytest.mark.parametrize("case", ["missing model", "unreadable model", "model from elsewhere", "wrong bands",
+                                  "truncated tiff", "pixel limit", "out is a file", "tile below margin"])
+def test_bad_input_is_one_line_exit_2_and_nothing_written(tmp_path, capsys, case):
+    argv, expected = _bad(tmp_path, case)
+    assert main(argv) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("fcnkit segment: error: ") and expected in err, err
+    out = tmp_path / "out"
+    if case == "out is a file":
+        assert out.read_text() == "keep me"
+    elif out.exists():
+        assert list(out.iterdir()) == []  # not even the hidden work folder is left
+
+
+def test_folder_inputs_shard_over_ranks_and_refuse_clashing_names(tmp_path):
+    model = _model_file(tmp_path, bands=3)
+    (tmp_path / "imgs").mkdir()
+    for name in ("a", "b", "c"):
+        Image.fromarray(np.zeros((20, 20, 3), np.uint8)).save(tmp_path / "imgs" / f"{name}.png")
+    assert [p.name for p in shard(find_images([tmp_path / "imgs"]), 1, 2)] == ["b.png"]
+    res = segment_images(model, [tmp_path / "imgs"], tmp_path / "out", rank=0, world=2, tile=32, progress=False)
+    assert [r.paths["labels"].name for r in res] == ["a.labels.png", "c.labels.png"]
+    Image.fromarray(np.zeros((20, 20, 3), np.uint8)).save(tmp_path / "a.jpg")
+    with pytest.raises(DataError, match="a.jpg: its outputs would overwrite those of"):
+        find_images([tmp_path / "imgs", tmp_path / "a.jpg"])
+
+
+KILL_RUN = """
+import sys
+from fcnkit.tiling import segment_image
+segment_image(sys.argv[1], sys.argv[2], sys.argv[3], tile=64, batch=1, progress=False)
+"""
+
+
+def test_killed_run_leaves_no_file_under_a_final_name(tmp_path):
+    # SIGKILL (no clean-up possible) while the outputs are being written: nothing may appear under a final name.
+    model = _model_file(tmp_path)
+    _geotiff(tmp_path / "big.tif", 900, 900)
+    out = tmp_path / "out"
+    proc = subprocess.Popen([sys.executable, "-c", KILL_RUN, str(model), str(tmp_path / "big.tif"), str(out)],
+                            env={**os.environ, "OMP_NUM_THREADS": "1"})
+    deadline = time.monotonic() + 300
+    try:
+        while time.monotonic() < deadline and proc.poll() is None:
+            work = list(out.glob(".fcnkit-work-*/done")) if out.exists() else []
+            if work and any(work[0].iterdir()):  # the first output is complete in the work folder
+                break
+            time.sleep(0.005)
+        assert proc.poll() is None, "the run finished before it could be killed"
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert _visible(out) == []
+    assert TiffRaster(tmp_path / "big.tif", None).shape == (900, 900, 4)  # the input is untouched
