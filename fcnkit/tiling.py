@@ -34,7 +34,7 @@ from fcnkit.errors import ConfigError
 from fcnkit.windows import check_window, window
 
 Engine = Callable[[torch.Tensor], torch.Tensor]
-IN_MEMORY_PIXELS = 16_000_000  # predict_scores keeps scores of smaller images in memory when given no folder
+IN_MEMORY_PIXELS = 4_000_000  # scores of smaller images stay in memory, of larger ones go to disk
 
 
 # --- geometry of the net ----------------------------------------------------------------------------------
@@ -291,7 +291,7 @@ def as_raster(image_or_reader: np.ndarray | Raster) -> Raster:
 def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None, std: Sequence[float] | None,
               tile: int, overlap: int | None, batch: int, window: str, exact: bool, tta: bool, logits: bool,
               bf16: bool, folder: Path | None, engine: Engine | None, progress: bool,
-              classes: int | None = None) -> tuple[TilePlan, RowStore]:
+              classes: int | None = None, desc: str = "tiles") -> tuple[TilePlan, RowStore]:
     """Plan, run and normalise: the class scores of ``raster`` in a RowStore (H×W×C float32)."""
     if batch < 1:
         raise ConfigError(f"batch: {batch} must be >= 1")
@@ -308,7 +308,7 @@ def run_tiles(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
         classes = int(getattr(model, "classes", 0)) or _probe_classes(engine, bands, plan.factor)
     store = RowStore((height, width, classes), np.float32, folder, "scores")
     accumulate(engine, raster, plan, store, mean=mean, std=std, batch=batch, tta=tta, logits=logits,
-               progress=progress)
+               progress=progress, desc=desc)
     normalise_store(plan, store)
     return plan, store
 
@@ -444,7 +444,7 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
         _, store = run_tiles(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, tile=tile,
                              overlap=overlap, batch=batch, window=window, exact=exact, tta=tta, logits=False,
                              bf16=bf16, folder=work if large else None, engine=engine, progress=progress,
-                             classes=loaded.meta.classes.num_classes)
+                             classes=loaded.meta.classes.num_classes, desc=image_path.name)
         done = work / "done"
         done.mkdir()
         paths, areas = write_outputs(store, raster, loaded.meta.classes, done, image_path.stem,
