@@ -1,6 +1,7 @@
 """fcnkit: fully convolutional segmentation nets, built from a short config, trained and run on a CPU."""
 
 from fcnkit.config import Config, load_config
+from fcnkit.convert import convert_classifier, grow_segmenter
 from fcnkit.data.classes import load_classes
 from fcnkit.data.dataset import band_stats, check_dataset, find_samples
 from fcnkit.data.imageio import read_image, read_mask
@@ -22,6 +23,7 @@ __all__ = [
     "build_model", "describe", "load_config",
     "evaluate", "export_model", "write_report",
     "load_model", "save_model", "train",
+    "convert_classifier", "grow_segmenter",
     "predict_scores", "segment_image", "segment_images",
     "load_classes", "read_image", "read_mask", "find_samples", "check_dataset", "band_stats",
     "make_scenes", "write_mosaic",

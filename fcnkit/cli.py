@@ -171,6 +171,72 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_demo)
 
 
+def _csv_ints(text: str) -> tuple[int, ...]:
+    try:
+        return tuple(int(v) for v in text.split(","))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of whole numbers") from None
+
+
+def _csv_floats(text: str) -> list[float]:
+    try:
+        return [float(v) for v in text.split(",")]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of numbers") from None
+
+
+def _convert(args: argparse.Namespace) -> int:
+    from fcnkit.convert import convert_classifier, grow_segmenter, load_classifier, save_converted
+    from fcnkit.data.classes import load_classes
+
+    if args.grow and args.save is None:
+        raise FcnkitError("--grow: give --save MODEL for the segmenter's model file")
+    table = load_classes(args.classes) if args.classes else None
+    src = load_classifier(args.source, args.weights, random_weights=args.random_weights)
+    conv = convert_classifier(src.module, args.native, global_pool=args.pool, sizes=tuple(args.sizes),
+                              keep=None if args.grow else args.keep)
+    cert = conv.certificate
+    if args.json:
+        print(json.dumps({"source": args.source, **cert.to_dict()}))
+    else:
+        print(f"== {args.source} at {args.native} px\n{cert.format()}")
+    if args.save is None:
+        return 0
+    net = conv.net
+    if args.grow:
+        net = grow_segmenter(src.module, args.native, classes=table.num_classes if table and not args.keep else None,
+                             keep=args.keep, skips=tuple(args.skips), bands=args.bands, global_pool=args.pool)
+    save_converted(args.save, net, src.source, classes=table, mean=args.mean, std=args.std, certificate=cert)
+    if not args.json:
+        what = "segmenter" if args.grow else "dense classifier"
+        print(f"wrote {args.save} ({what}: {net.bands} bands, {net.classes} classes)")
+    return 0
+
+
+def _add_convert(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser("convert", help="turn a classifier's dense head into convolutions, check it, grow a segmenter")
+    p.add_argument("source", metavar="SOURCE",
+                   help="torchvision architecture name (e.g. vgg11), TorchScript file, or package.module:factory")
+    p.add_argument("--native", type=int, required=True, metavar="PX", help="input side the classifier was trained at")
+    p.add_argument("--weights", metavar="FILE", help="state dict (.safetensors, or torch file read weights-only)")
+    p.add_argument("--random-weights", action="store_true", help="torchvision architecture with random weights")
+    p.add_argument("--pool", choices=("auto", "cam", "window"), default="auto",
+                   help="what a global pool becomes: auto, cam (commuted with an affine head) or window (sliding)")
+    p.add_argument("--sizes", type=int, nargs="*", default=[], metavar="PX",
+                   help="also state the output size for these input sides")
+    p.add_argument("--save", metavar="MODEL", help="write a model file (dense classifier, or segmenter with --grow)")
+    p.add_argument("--keep", type=_csv_ints, metavar="I,J,...", help="classifier outputs kept as classes")
+    p.add_argument("--grow", action="store_true", help="grow a trainable segmenter (FCN recipe) instead")
+    p.add_argument("--classes", metavar="TOML", help="class table (classes.toml) of the model file's classes")
+    p.add_argument("--skips", type=int, nargs="*", default=[], metavar="STRIDE",
+                   help="with --grow: trunk strides whose scores are fused, e.g. 16 8 (FCN-8s)")
+    p.add_argument("--bands", type=int, metavar="N", help="with --grow: input bands (extra ones widen the first conv)")
+    p.add_argument("--mean", type=_csv_floats, metavar="M1,M2,...", help="per-band mean in raw pixel units")
+    p.add_argument("--std", type=_csv_floats, metavar="S1,S2,...", help="per-band std in raw pixel units")
+    p.add_argument("--json", action="store_true", help="print the certificate as one JSON object")
+    p.set_defaults(run=_convert)
+
+
 def _check(args: argparse.Namespace) -> int:
     from fcnkit import check_dataset
     from fcnkit.data.dataset import format_check
@@ -208,7 +274,7 @@ def _add_scenes(sub: argparse._SubParsersAction) -> None:
 
 
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
-    _add_describe, _add_export, _add_train, _add_evaluate, _add_demo, _add_segment,
+    _add_describe, _add_export, _add_train, _add_evaluate, _add_demo, _add_convert, _add_segment,
     _add_check, _add_scenes,
 ]
 

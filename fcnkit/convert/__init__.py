@@ -18,12 +18,13 @@ from fcnkit.convert.dense import (
     Certificate,
     ConvertError,
     DenseClassifier,
+    Recipe,
     build_dense,
     certify,
     plan,
     score_map,
 )
-from fcnkit.convert.grow import DENSE_KIND, GROWN_KIND, Recipe, class_table, make_net, rebuild, save_converted
+from fcnkit.convert.grow import DENSE_KIND, GROWN_KIND, class_table, make_net, rebuild, save_converted
 from fcnkit.convert.sources import Classifier, load_classifier
 
 
@@ -52,7 +53,8 @@ def convert_classifier(module: nn.Module, native_size: int, *, global_pool: str 
     if not cert.passed:
         raise ConvertError(f"the converted net differs from the classifier by {cert.max_abs_diff:.3g} at the native "
                            f"size (tolerance {cert.tolerance:g})")
-    return Conversion(score_map(p, dense, cert.stride, keep), dense, cert)
+    recipe = Recipe(native_size, global_pool=global_pool, keep=None if keep is None else tuple(keep))
+    return Conversion(score_map(p, dense, cert.stride, recipe), dense, cert)
 
 
 def grow_segmenter(module: nn.Module, native_size: int, *, classes: int | None = None,

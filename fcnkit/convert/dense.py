@@ -180,20 +180,29 @@ def trace(module: nn.Module) -> fx.GraphModule:
         raise ConvertError(f"cannot trace {type(module).__name__} with torch.fx: {msg}") from e
 
 
-def node_shapes(gm: fx.GraphModule, bands: int, side: int) -> dict[fx.Node, tuple[int, ...]]:
-    """Every node's output shape for a 1×bands×side×side input, computed without arithmetic on real data."""
-    from torch._subclasses.fake_tensor import FakeTensorMode
+class _ShapeRun(nn.Module):
+    """Runs shape propagation as a forward pass, so ``functional_call`` can swap in meta-device weights."""
 
-    mode = FakeTensorMode(allow_non_fake_inputs=True)
+    def __init__(self, gm: fx.GraphModule) -> None:
+        super().__init__()
+        self.gm = gm
+
+    def forward(self, x: torch.Tensor) -> Any:
+        return ShapeProp(self.gm).propagate(x)
+
+
+def node_shapes(gm: fx.GraphModule, upto: fx.Node, bands: int, side: int) -> dict[str, tuple[int, ...]]:
+    """Output shape of every node up to ``upto`` (by node name) for a 1×bands×side×side input, computed on
+    the meta device (shapes only, no arithmetic). Layers after ``upto`` are left out: a dense head only
+    takes the native size."""
+    run = _ShapeRun(cut_graph(gm, [upto]))
+    meta = {k: torch.empty_like(v, device="meta") for k, v in run.state_dict(keep_vars=True).items()}
     try:
-        ShapeProp(gm, fake_mode=mode).propagate(mode.from_tensor(torch.empty(1, bands, side, side)))
+        torch.func.functional_call(run, meta, (torch.empty(1, bands, side, side, device="meta"),))
     except Exception as e:  # noqa: BLE001 - a size the net cannot take
-        root = e
-        while root.__cause__ is not None:
-            root = root.__cause__
-        msg = str(root).splitlines()[0] if str(root) else type(root).__name__
+        msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         raise ConvertError(f"the classifier cannot run on a {side}x{side} input: {msg}") from e
-    return {n: tuple(n.meta["tensor_meta"].shape) for n in gm.graph.nodes
+    return {n.name: tuple(n.meta["tensor_meta"].shape) for n in run.gm.graph.nodes
             if isinstance(n.meta.get("tensor_meta"), TensorMetadata)}
 
 
@@ -219,6 +228,8 @@ class Plan:
     kernel: int  # first converted conv's kernel (feature cells)
     dilation: int  # its dilation (> 1 when an adaptive pool averaged cells of this size)
     pool_kernel: int  # sliding pool's side (0 = none)
+    small: dict[str, tuple[int, ...]]  # trunk node shapes at the native size
+    large: dict[str, tuple[int, ...]]  # and at twice the native size
 
 
 def plan(module: nn.Module, native_size: int, *, global_pool: str = "auto") -> Plan:
@@ -231,16 +242,18 @@ def plan(module: nn.Module, native_size: int, *, global_pool: str = "auto") -> P
     gm = trace(module)
     head = _read_head(gm)
     bands = input_bands(gm)
-    shapes = node_shapes(gm, bands, native_size)
-    shape = shapes.get(head.trunk)
+    small = node_shapes(gm, head.trunk, bands, native_size)
+    large = node_shapes(gm, head.trunk, bands, 2 * native_size)
+    shape = small.get(head.trunk.name)
     if shape is None or len(shape) != 4:
-        raise ConvertError(f"the input of the flatten/pool ({head.trunk.name}) is not an N×C×H×W feature map")
+        raise ConvertError(f"the input of the flatten/pool ({_node_name(head.trunk)}) is not an N×C×H×W feature map")
     _, channels, fh, fw = shape
     if fh != fw:
-        raise ConvertError(f"native size {native_size} gives a non-square {fh}x{fw} feature map at {head.trunk.name}")
-    big = node_shapes(gm, bands, 2 * native_size)[head.trunk]
+        raise ConvertError(f"native size {native_size} gives a non-square {fh}x{fw} feature map at "
+                           f"{_node_name(head.trunk)}")
+    big = large[head.trunk.name]
     if big[-1] <= fw:
-        raise ConvertError(f"the feature map at {head.trunk.name} does not grow with the input "
+        raise ConvertError(f"the feature map at {_node_name(head.trunk)} does not grow with the input "
                            f"({fw} at {native_size} px, {big[-1]} at {2 * native_size} px): nothing to slide")
     first = next(i for i, (_, m) in enumerate(head.layers) if isinstance(m, nn.Linear))
     linear = head.layers[first][1]
@@ -258,7 +271,7 @@ def plan(module: nn.Module, native_size: int, *, global_pool: str = "auto") -> P
     elif head.pool:
         o = head.pool_out
         if fw < o or fw % o:
-            raise ConvertError(f"native size {native_size} gives {fw}x{fw} features at {head.trunk.name}, which "
+            raise ConvertError(f"native size {native_size} gives {fw}x{fw} features at {_node_name(head.trunk)}, which "
                                f"{head.pool_name} cannot split into {o}x{o} equal windows; choose a native size "
                                f"giving a multiple of {o}")
         form, kernel, dilation = "kxk", o, fw // o
@@ -270,7 +283,7 @@ def plan(module: nn.Module, native_size: int, *, global_pool: str = "auto") -> P
         raise ConvertError(f"native size {native_size} gives {channels}x{kernel}x{kernel} = {expected} features but "
                            f"{head.layers[first][0]} expects {linear.in_features} inputs; give the size the "
                            f"classifier was trained at")
-    return Plan(gm, head, native_size, bands, channels, fw, form, kernel, dilation, pool_kernel)
+    return Plan(gm, head, native_size, bands, channels, fw, form, kernel, dilation, pool_kernel, small, large)
 
 
 def conv_head(p: Plan, same: bool = False) -> list[nn.Module]:
@@ -334,15 +347,42 @@ def build_dense(p: Plan) -> DenseClassifier:
                            p.form).eval()
 
 
+@dataclass(frozen=True)
+class Recipe:
+    """How a net is made from a classifier. ``keep``: classifier outputs kept as classes (their score
+    rows reused); ``classes``: number of new classes (grown segmenters only, when ``keep`` is None);
+    ``skips``: strides of trunk stages fused into a grown segmenter, deepest first; ``bands``: input bands
+    (more than the classifier's widens its first convolution)."""
+
+    native_size: int
+    grow: bool = False
+    global_pool: str = "auto"
+    keep: tuple[int, ...] | None = None
+    classes: int | None = None
+    skips: tuple[int, ...] = ()
+    bands: int | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> Recipe:
+        d = dict(d)
+        d["keep"] = tuple(d["keep"]) if d.get("keep") is not None else None
+        d["skips"] = tuple(d.get("skips", ()))
+        return cls(**d)
+
+
 class AlignedNet(SegNet):
     """A net whose body ends at full resolution but whose coarse outputs sit ``offset`` pixels off the
     stride grid (a window of w pixels at stride s has offset w − s). The input is padded (edge pixels
     repeated) by half the offset before and to a whole number of cells after, so each coarse score lands
     on the centre of the window it saw, and the result is cropped to the input's size."""
 
-    def __init__(self, body: nn.Module, factor: int, bands: int, classes: int, offset: int) -> None:
+    def __init__(self, body: nn.Module, factor: int, bands: int, classes: int, offset: int,
+                 recipe: Recipe | None = None) -> None:
         super().__init__(body, factor, bands, classes)
-        self.offset = offset
+        self.offset, self.recipe = offset, recipe  # recipe: how it was made from its classifier
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         h, w = x.shape[-2:]
@@ -454,7 +494,7 @@ def offset(p: Plan, stride: int, same: bool = False) -> int:
 
 def trunk_stride(p: Plan) -> int:
     """The trunk's output stride: its feature side grows by native/stride when the input side doubles."""
-    grow = node_shapes(p.gm, p.bands, 2 * p.native_size)[p.head.trunk][-1] - p.feature_side
+    grow = p.large[p.head.trunk.name][-1] - p.feature_side
     if p.native_size % grow:
         raise ConvertError(f"native size {p.native_size} is not a multiple of the trunk's stride")
     return p.native_size // grow
@@ -473,12 +513,13 @@ def keep_rows(conv: nn.Conv2d, keep: tuple[int, ...]) -> nn.Conv2d:
     return new
 
 
-def score_map(p: Plan, dense: DenseClassifier, stride: int, keep: tuple[int, ...] | None = None) -> AlignedNet:
+def score_map(p: Plan, dense: DenseClassifier, stride: int, recipe: Recipe) -> AlignedNet:
     """Full-resolution score maps from the dense net: coarse scores placed at the centres of the windows
-    they saw and up-sampled bilinearly to the input's size; ``keep`` restricts the classes (the dense
-    net's last score layer is cut down in place)."""
+    they saw and up-sampled bilinearly to the input's size; ``recipe.keep`` restricts the classes (the
+    dense net's last score layer is cut down in place)."""
     convs = [i for i, m in enumerate(dense.head) if isinstance(m, nn.Conv2d)]
-    if keep is not None:
-        dense.head[convs[-1]] = keep_rows(dense.head[convs[-1]], keep)
+    if recipe.keep is not None:
+        dense.head[convs[-1]] = keep_rows(dense.head[convs[-1]], recipe.keep)
     body = nn.Sequential(dense, nn.Upsample(scale_factor=stride, mode="bilinear"))
-    return AlignedNet(body, stride, p.bands, dense.head[convs[-1]].out_channels, offset(p, stride)).eval()
+    classes = dense.head[convs[-1]].out_channels
+    return AlignedNet(body, stride, p.bands, classes, offset(p, stride), recipe).eval()

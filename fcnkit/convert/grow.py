@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import colorsys
 import copy
-from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
@@ -27,11 +26,11 @@ from fcnkit.convert.dense import (
     Certificate,
     ConvertError,
     Plan,
+    Recipe,
     build_dense,
     conv_head,
     cut_graph,
     keep_rows,
-    node_shapes,
     offset,
     plan,
     score_map,
@@ -46,32 +45,6 @@ from fcnkit.nets.blocks import BilinearUp
 
 DENSE_KIND = "dense-classifier"  # model-file kind: a converted classifier's score maps
 GROWN_KIND = "grown-segmenter"  # model-file kind: a segmenter grown from a classifier
-
-
-@dataclass(frozen=True)
-class Recipe:
-    """How a net is made from a classifier. ``keep``: classifier outputs kept as classes (their score
-    rows reused); ``classes``: number of new classes (grown segmenters only, when ``keep`` is None);
-    ``skips``: strides of trunk stages fused into a grown segmenter, deepest first; ``bands``: input bands
-    (more than the classifier's widens its first convolution)."""
-
-    native_size: int
-    grow: bool = False
-    global_pool: str = "auto"
-    keep: tuple[int, ...] | None = None
-    classes: int | None = None
-    skips: tuple[int, ...] = ()
-    bands: int | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        return asdict(self)
-
-    @classmethod
-    def from_dict(cls, d: dict[str, Any]) -> Recipe:
-        d = dict(d)
-        d["keep"] = tuple(d["keep"]) if d.get("keep") is not None else None
-        d["skips"] = tuple(d.get("skips", ()))
-        return cls(**d)
 
 
 def _zero_score(like: nn.Conv2d, cin: int, classes: int) -> nn.Conv2d:
@@ -110,20 +83,19 @@ def _widen(gm: fx.GraphModule, bands: int) -> None:
 def _taps(p: Plan, strides: tuple[int, ...], stride: int, delta: int) -> list[fx.Node]:
     """For each skip stride, the deepest trunk node at that stride; its grid must line up with the
     deepest features' (same offset), or the fused scores would be shifted."""
-    small = node_shapes(p.gm, p.bands, p.native_size)
-    large = node_shapes(p.gm, p.bands, 2 * p.native_size)
+    small, large = p.small, p.large
     order = list(p.gm.graph.nodes)
     before = order[:order.index(p.head.trunk)]
     taps = []
     for t in strides:
         if not (0 < t < stride and stride % t == 0):
             raise ConvertError(f"skips: {t} is not a stride finer than and dividing the trunk's {stride}")
-        found = [n for n in before if len(small.get(n, ())) == 4 and len(large.get(n, ())) == 4
-                 and large[n][-1] - small[n][-1] == p.native_size // t and p.native_size % t == 0]
+        found = [n for n in before if len(small.get(n.name, ())) == 4 and len(large.get(n.name, ())) == 4
+                 and large[n.name][-1] - small[n.name][-1] == p.native_size // t and p.native_size % t == 0]
         if not found:
             raise ConvertError(f"skips: the trunk has no feature map at stride {t}")
         node = found[-1]
-        window = p.native_size - (small[node][-1] - 1) * t
+        window = p.native_size - (small[node.name][-1] - 1) * t
         if window - t != delta:
             raise ConvertError(f"skips: stride-{t} features at {node.name} sit {window - t} px off their grid but "
                                f"the deepest ones {delta} px; this classifier cannot fuse them (grow without skips)")
@@ -159,27 +131,26 @@ def make_net(module: nn.Module, r: Recipe) -> AlignedNet:
     if not r.grow:
         if r.skips or r.classes is not None or (r.bands is not None and r.bands != p.bands):
             raise ConvertError("new classes, skips and extra bands need a grown segmenter")
-        return score_map(p, build_dense(p), s, r.keep)
+        return score_map(p, build_dense(p), s, r)
     if (r.keep is None) == (r.classes is None):
         raise ConvertError("a grown segmenter needs either new classes or a subset (keep) of the classifier's")
     delta = offset(p, s, same=True)
     skips = tuple(sorted(set(r.skips), reverse=True))
     taps = _taps(p, skips, s, delta)
-    shapes = node_shapes(p.gm, p.bands, p.native_size)
     trunk = copy.deepcopy(cut_graph(p.gm, [p.head.trunk, *taps]))  # training it must not change the classifier
     if r.bands is not None:
         _widen(trunk, r.bands)
     hidden, final = _split_final(conv_head(p, same=True))
     score = keep_rows(final, r.keep) if r.keep is not None else _zero_score(final, final.in_channels, r.classes)
     k = score.out_channels
-    skip_scores = [_zero_score(nn.Conv2d(1, 1, 1), shapes[t][1], k) for t in taps]
+    skip_scores = [_zero_score(nn.Conv2d(1, 1, 1), p.small[t.name][1], k) for t in taps]
     ups, prev = [], s
     for t in skips:
         ups.append(BilinearUp(k, prev // t))
         prev = t
     body = GrownBody(trunk, sliding_pool(p, same=True), nn.Sequential(*hidden), score, skip_scores, ups,
                      BilinearUp(k, prev))
-    return AlignedNet(body, s, r.bands or p.bands, k, delta)
+    return AlignedNet(body, s, r.bands or p.bands, k, delta, r)
 
 
 def classifier_from_source(source: dict[str, Any], where: str) -> nn.Module:
@@ -226,7 +197,7 @@ def class_table(names: list[str]) -> ClassTable:
     return ClassTable(tuple(ClassInfo(i, n, c) for i, (n, c) in enumerate(zip(names, colors, strict=True))))
 
 
-def save_converted(path: str | Path, net: AlignedNet, recipe: Recipe, source: dict[str, Any], *,
+def save_converted(path: str | Path, net: AlignedNet, source: dict[str, Any], *,
                    classes: ClassTable | None = None, mean: list[float] | None = None, std: list[float] | None = None,
                    certificate: Certificate | None = None) -> ModelMeta:
     """Write a converted classifier or grown segmenter as a model file (kind ``dense-classifier`` or
@@ -235,6 +206,9 @@ def save_converted(path: str | Path, net: AlignedNet, recipe: Recipe, source: di
     statistics for torchvision sources (extra bands get their mean), else none."""
     from fcnkit import __version__
 
+    recipe = net.recipe
+    if recipe is None:
+        raise ConvertError("save_converted: the net was not made by convert_classifier or grow_segmenter")
     if classes is None:
         idx = recipe.keep if recipe.keep is not None else range(net.classes)
         classes = class_table([f"class {i}" for i in idx])

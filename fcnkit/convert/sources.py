@@ -88,7 +88,9 @@ def build_torchvision(arch: str, num_classes: int = 1000) -> nn.Module:
 def from_torchvision(arch: str, weights: str | Path | None) -> Classifier:
     """A torchvision architecture filled from a local weights file, or random when ``weights`` is None."""
     if weights is None:
-        module = build_torchvision(arch)
+        with torch.random.fork_rng():  # the same random weights every time, so results can be compared
+            torch.manual_seed(0)
+            module = build_torchvision(arch)
     else:
         sd = load_state_dict(weights)
         with torch.device("meta"):

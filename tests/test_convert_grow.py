@@ -1,0 +1,184 @@
+"""Growing a segmenter from a classifier (FCN-32s/16s/8s, Long et al. 2015) and converted model files.
+
+Outside references: Long, Shelhamer & Darrell 2015 (score layers on the classifier's features, skip scores
+from shallower stages fused by addition after 2× up-sampling, up-sampling initialised to bilinear
+interpolation, new score layers initialised to zero — the last point from memory of the paper); Zhou et al.
+2016 (class-activation maps); torch.nn.functional.interpolate (bilinear, align_corners=False) as the
+reference up-sampler.
+"""
+
+from __future__ import annotations
+
+import pytest
+import torch
+import torchvision
+from torch import nn
+from torch.nn import functional as F
+
+from fcnkit.convert import ConvertError, convert_classifier, grow_segmenter, rebuild, save_converted
+from fcnkit.errors import ModelFileError
+from fcnkit.geometry import downsampling_factor
+from fcnkit.modelfile import load_model
+from fcnkit.nets import layer_graph
+from tests.test_convert import lively, user_cnn
+
+TV_SOURCE = {"source": "torchvision", "arch": "resnet18", "num_classes": 1000}
+
+
+@pytest.fixture(scope="module")
+def resnet() -> nn.Module:
+    torch.manual_seed(0)
+    return lively(torchvision.models.resnet18(weights=None))
+
+
+def test_fcn8s_shapes_and_init(resnet: nn.Module) -> None:
+    net = grow_segmenter(resnet, 64, classes=3, skips=(16, 8))
+    body = net.body
+    assert len(body.skip_scores) == 2 and [u.factor for u in body.ups] == [2, 2] and body.final_up.factor == 8
+    for conv in [body.score, *body.skip_scores]:  # new score layers start at zero (Long et al. 2015)
+        assert conv.weight.abs().sum() == 0
+    # learnable up-sampling starts as bilinear interpolation: away from the borders it equals F.interpolate
+    x = torch.randn(1, 3, 6, 6)
+    up = body.final_up
+    with torch.no_grad():
+        torch.testing.assert_close(up(x)[..., 8:-8, 8:-8], F.interpolate(x, scale_factor=8, mode="bilinear")[
+            ..., 8:-8, 8:-8], atol=1e-5, rtol=0)
+    assert up.deconv is not None and up.deconv.weight.requires_grad
+    net.eval()
+    with torch.no_grad():
+        for h, w in ((64, 64), (70, 93)):
+            assert net(torch.randn(1, 3, h, w)).shape == (1, 3, h, w)
+    assert downsampling_factor(layer_graph(net)) == 32  # tiling can read its geometry
+
+
+def test_kept_classes_reuse_the_classifier_rows(resnet: nn.Module) -> None:
+    """With a subset of the classifier's classes and no skips, the coarse scores before up-sampling are the
+    dense net's class-activation map rows (Zhou et al. 2016)."""
+    keep = (7, 3, 500)
+    net = grow_segmenter(resnet, 64, keep=keep).eval()
+    dense = convert_classifier(resnet, 64).dense
+    seen = {}
+    net.body.final_up.register_forward_hook(lambda m, i, o: seen.setdefault("coarse", i[0]))
+    x = torch.randn(2, 3, 96, 128)
+    with torch.no_grad():
+        net(x)
+        torch.testing.assert_close(seen["coarse"], dense(x)[:, list(keep)], atol=1e-5, rtol=0)
+
+
+def test_same_padded_head_matches_dense_head_inside() -> None:
+    """The grown segmenter pads the k×k head convolution to keep the map's size; away from the borders its
+    scores are the dense net's, shifted by (k − 1)/2 cells (a padded 28 px CNN: 7×7 features, k = 7)."""
+    module = lively(user_cnn(padded=True))
+    dense = convert_classifier(module, 28).dense
+    net = grow_segmenter(module, 28, keep=(0, 1, 2, 3)).eval()
+    seen = {}
+    net.body.final_up.register_forward_hook(lambda m, i, o: seen.setdefault("coarse", i[0]))
+    x = torch.randn(1, 3, 56, 56)
+    with torch.no_grad():
+        net(x)
+        d = dense(x)
+    assert d.shape[-1] == 8 and seen["coarse"].shape[-1] == 14
+    torch.testing.assert_close(seen["coarse"][..., 3:11, 3:11], d, atol=1e-5, rtol=0)
+
+
+def test_extra_bands_widen_the_first_convolution(resnet: nn.Module) -> None:
+    w = resnet.conv1.weight.detach().clone()
+    net = grow_segmenter(resnet, 64, classes=2, bands=4)
+    first = net.body.trunk.conv1.weight.detach()
+    assert first.shape[1] == 4 and net.bands == 4
+    torch.testing.assert_close(first[:, :3], w)
+    torch.testing.assert_close(first[:, 3], w.mean(dim=1))  # new band: mean of the RGB filters (common practice)
+    assert resnet.conv1.weight.shape[1] == 3  # the classifier itself is untouched
+
+
+def test_misaligned_skips_are_refused() -> None:
+    """A padding-free 3×3 convolution after the last pooling moves the stride-4 cells' centres by one input
+    pixel per side relative to the stride-2 grid: fusing the two would shift scores, so it is refused."""
+    module = lively(nn.Sequential(nn.Conv2d(3, 4, 5), nn.ReLU(), nn.MaxPool2d(2), nn.Conv2d(4, 4, 3), nn.ReLU(),
+                                  nn.MaxPool2d(2), nn.Conv2d(4, 4, 3), nn.ReLU(), nn.Flatten(), nn.Linear(36, 2)))
+    assert convert_classifier(module, 28).certificate.passed
+    grow_segmenter(module, 28, classes=2)  # without skips it grows
+    with pytest.raises(ConvertError, match="skips: stride-2 features .* cannot fuse") as e:
+        grow_segmenter(module, 28, classes=2, skips=(2,))
+    assert "\n" not in str(e.value)
+
+
+def test_grown_model_file_round_trip(tmp_path, resnet: nn.Module) -> None:
+    net = grow_segmenter(resnet, 64, classes=3, skips=(16,), bands=4)
+    with torch.no_grad():
+        for conv in [net.body.score, *net.body.skip_scores]:
+            conv.weight.normal_()
+    path = tmp_path / "grown.safetensors"
+    meta = save_converted(path, net, TV_SOURCE)
+    assert meta.kind == "grown-segmenter" and meta.classes.names == ["class 0", "class 1", "class 2"]
+    # torchvision's ImageNet statistics in 8-bit units (torchvision docs); the extra band gets their mean
+    assert meta.mean[:3] == pytest.approx([123.675, 116.28, 103.53]) and len(meta.mean) == 4
+    loaded = load_model(path)
+    x = torch.randn(1, 4, 64, 80)
+    with torch.no_grad():
+        torch.testing.assert_close(loaded.model(x), net.eval()(x))
+
+
+def test_dense_model_file_keeps_certificate(tmp_path) -> None:
+    module = lively(user_cnn())
+    conv = convert_classifier(module, 28, keep=(1, 3))
+    path = tmp_path / "dense.safetensors"
+    save_converted(path, conv.net, {"source": "factory", "factory": "somewhere:make"}, certificate=conv.certificate)
+    with pytest.raises(ModelFileError, match="user factory 'somewhere:make'"):
+        load_model(path)
+
+
+def test_sequential_source_rebuilds_without_imports(tmp_path) -> None:
+    from fcnkit.convert.sources import sequential_spec
+
+    module = lively(user_cnn())
+    conv = convert_classifier(module, 28, keep=(1, 3))
+    path = tmp_path / "dense.safetensors"
+    meta = save_converted(path, conv.net, {"source": "sequential", "layers": sequential_spec(module, "test")},
+                          certificate=conv.certificate)
+    assert meta.extra["certificate"]["passed"]
+    loaded = load_model(path)
+    x = torch.randn(1, 3, 40, 52)
+    with torch.no_grad():
+        torch.testing.assert_close(loaded.model(x), conv.net(x))
+
+
+@pytest.mark.parametrize("source", [
+    {"source": "torchvision", "arch": "os.system"},
+    {"source": "torchvision", "arch": "subprocess:run"},
+    {"source": "python", "module": "os"},
+    {"source": "sequential", "layers": [{"type": "Module"}]},
+])
+def test_rebuild_never_imports_named_code(source: dict) -> None:
+    extra = {"recipe": {"native_size": 28}, "source": source}
+    with pytest.raises(ModelFileError) as e:
+        rebuild(extra, "m.safetensors")
+    assert "\n" not in str(e.value) and "m.safetensors" in str(e.value)
+
+
+def test_fine_tune_end_to_end_on_demo_scenes(tmp_path) -> None:
+    """The grown segmenter trains with `fcnkit train --init` on a dataset folder of demo scenes."""
+    scenes = pytest.importorskip("fcnkit.data.scenes")
+    train_mod = pytest.importorskip("fcnkit.train")
+    from fcnkit.config import config_from_dict
+
+    data = tmp_path / "scenes"
+    scenes.make_scenes(data, 4, 64, seed=3)  # 4-band (R, G, B, NIR) scenes
+    k = scenes.SCENE_CLASSES.num_classes
+    net = grow_segmenter(lively(user_cnn(padded=True)), 28, classes=k, skips=(), bands=4)
+    model = tmp_path / "grown.safetensors"
+    save_converted(model, net, {"source": "sequential", "layers": _spec()}, mean=[100.0] * 4, std=[50.0] * 4)
+    cfg = config_from_dict({"train": {"epochs": 1, "batch": 2, "patch": 32, "patches_per_epoch": 4,
+                                      "val_fraction": 0.25}})
+    result = train_mod.train(cfg, data, tmp_path / "run", init=model, progress=False)
+    out = load_model(result.model_path)
+    assert out.meta.kind == "grown-segmenter" and out.model.classes == k and out.model.bands == 4
+    before = load_model(model).model.state_dict()
+    after = out.model.state_dict()
+    assert any(not torch.equal(before[n], after[n]) for n in before)  # training changed the weights
+
+
+def _spec() -> list:
+    from fcnkit.convert.sources import sequential_spec
+
+    return sequential_spec(user_cnn(padded=True), "test")
