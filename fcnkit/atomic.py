@@ -12,6 +12,8 @@ import secrets
 from collections.abc import Iterator
 from pathlib import Path
 
+from fcnkit.errors import FcnkitError
+
 
 def partial_path(final: str | Path) -> Path:
     """A hidden temporary name beside ``final`` (``.NAME.partial-XXXX``)."""
@@ -23,6 +25,8 @@ def partial_path(final: str | Path) -> Path:
 def atomic_output(final: str | Path) -> Iterator[Path]:
     """Yield a temporary path to write to; on success it is renamed to ``final``, on error removed."""
     final = Path(final)
+    if not final.parent.is_dir():  # say so for the final name, not for the hidden temporary one
+        raise FcnkitError(f"{final}: cannot write here, folder {final.parent} does not exist")
     tmp = partial_path(final)
     try:
         yield tmp

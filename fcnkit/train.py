@@ -32,7 +32,7 @@ from fcnkit.config import Config, config_from_dict, config_to_dict
 from fcnkit.data.dataset import Sample, band_stats, find_samples
 from fcnkit.data.imageio import read_image, read_mask
 from fcnkit.data.patches import PatchDataset
-from fcnkit.errors import ConfigError
+from fcnkit.errors import ConfigError, DataError
 from fcnkit.evaluate import evaluate_images
 from fcnkit.losses import median_frequency_weights, segmentation_loss
 from fcnkit.metrics import segmentation_scores
@@ -262,8 +262,12 @@ def _read(samples: list[Sample], classes: Any, bands: int) -> tuple[list[np.ndar
         image = read_image(s.image)
         if image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
+        mask = read_mask(s.mask, classes)
+        if mask.shape != image.shape[:2]:
+            raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
+                            f"{image.shape[1]}x{image.shape[0]} (expected the same size)")
         images.append(image)
-        masks.append(read_mask(s.mask, classes))
+        masks.append(mask)
     return images, masks
 
 

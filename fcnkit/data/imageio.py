@@ -20,6 +20,7 @@ from PIL import Image
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassTable
+from fcnkit.data.raster import quiet_tifffile
 from fcnkit.errors import DataError
 
 DEFAULT_MAX_PIXELS = 2**27
@@ -206,7 +207,8 @@ class _open_tiff:
 
     def __enter__(self) -> tifffile.TiffFile:
         try:
-            self.tif = tifffile.TiffFile(self.path)
+            with quiet_tifffile():
+                self.tif = tifffile.TiffFile(self.path)
         except Exception as e:  # tifffile raises TiffFileError, ValueError, struct.error… on garbage
             raise DataError(f"{self.path}: not a readable TIFF ({_reason(e)})") from None
         return self.tif
@@ -224,6 +226,8 @@ def _tiff_layout(path: Path, tif: tifffile.TiffFile) -> tuple[tuple[int, int, in
     if "Y" not in axes or "X" not in axes:
         raise DataError(f"{path}: TIFF axes {axes!r} have no Y and X (expected a 2-D image with bands)")
     h, w = shape[axes.index("Y")], shape[axes.index("X")]
+    if not np.prod(shape):
+        raise DataError(f"{path}: image has no pixels (shape {tuple(shape)}; expected at least one pixel and band)")
     return (h, w, int(np.prod(shape)) // (h * w)), axes
 
 
@@ -259,7 +263,11 @@ def _supported_dtype(path: Path, arr: np.ndarray) -> np.ndarray:
     if arr.dtype.kind == "u" and arr.dtype.itemsize in (1, 2):  # uint8/uint16, in native byte order
         return arr.astype(arr.dtype.newbyteorder("="), copy=False)
     if arr.dtype.kind in "uif":
-        return arr.astype(np.float32)
+        arr = arr.astype(np.float32)
+        if not np.isfinite(arr).all():  # they would turn every loss, statistic and score they touch into NaN
+            raise DataError(f"{path}: {int((~np.isfinite(arr)).sum())} NaN or infinite pixel values (expected "
+                            "finite numbers; fill no-data pixels first)")
+        return arr
     raise DataError(f"{path}: pixel type {arr.dtype} (expected 8- or 16-bit unsigned integers or floats)")
 
 

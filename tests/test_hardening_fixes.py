@@ -1,0 +1,151 @@
+"""Regression tests for the faults the hardening battery found in other modules, and for the memory check
+(fcnkit.memory) that refuses tile and batch settings which would not fit."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+import tifffile
+import torch
+
+from fcnkit.atomic import write_text_atomic
+from fcnkit.config import config_from_dict
+from fcnkit.data.imageio import read_image
+from fcnkit.data.raster import TiffRaster
+from fcnkit.errors import ConfigError, DataError, FcnkitError
+from fcnkit.memory import available_memory, check_forward_memory, forward_bytes, parse_size
+from fcnkit.nets import build_model, layer_graph
+from fcnkit.tiling import find_images, segment_image
+
+
+def _tiff(path, array, **kw):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        tifffile.imwrite(path, array, **kw)
+    return path
+
+
+def test_readers_refuse_an_image_without_pixels(tmp_path):
+    path = _tiff(tmp_path / "empty.tif", np.zeros((0, 0, 3), np.uint8), photometric="minisblack",
+                 planarconfig="contig")
+    with pytest.raises(DataError, match="empty.tif: image has no pixels"):  # was ZeroDivisionError
+        read_image(path)
+    with pytest.raises(DataError, match="empty.tif: image has no pixels"):
+        TiffRaster(path, None)
+
+
+@pytest.mark.parametrize("value", [np.nan, np.inf, -np.inf])
+def test_readers_refuse_nan_and_infinite_pixels(tmp_path, value):
+    image = np.ones((20, 30, 2), np.float32)
+    image[7, 11, 1] = value
+    path = _tiff(tmp_path / "f.tif", image, photometric="minisblack", planarconfig="contig")
+    with pytest.raises(DataError, match="f.tif: 1 NaN or infinite"):  # training used to blame train.lr
+        read_image(path)
+    raster = TiffRaster(path, None)
+    try:
+        raster.read(0, 5, 0, 30)  # rows without the bad pixel read fine
+        with pytest.raises(DataError, match="f.tif: 1 NaN or infinite pixel values in rows 0..19"):
+            raster.read(0, 20, 0, 30)  # segment/evaluate used to map it silently
+    finally:
+        raster.close()
+
+
+def test_region_reader_refuses_complex_pixels(tmp_path):
+    path = _tiff(tmp_path / "c.tif", np.ones((8, 8), np.complex64))
+    with pytest.raises(DataError, match="c.tif: pixel type complex64"):
+        TiffRaster(path, None)
+
+
+def test_a_damaged_tiff_gives_one_error_and_no_log_line(tmp_path, capfd):
+    path = tmp_path / "g.tif"
+    path.write_bytes(b"II*\x00" + bytes(range(256)) * 2)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ResourceWarning)  # the reader used to leave the file open
+        with pytest.raises(DataError, match="g.tif"):
+            TiffRaster(path, None)
+        with pytest.raises(DataError, match="g.tif"):
+            read_image(path)
+    assert capfd.readouterr().err == ""  # tifffile's own log line used to reach stderr
+
+
+def test_segment_refuses_a_folder_without_images_and_a_negative_pixel_size(tmp_path):
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(DataError, match="empty: no image files"):  # used to do nothing and exit 0
+        find_images([tmp_path / "empty"])
+    net = build_model(config_from_dict({"model": {"widths": [4], "blocks": [1], "classes": 2, "min_size": 1}}))
+    image = _tiff(tmp_path / "i.tif", np.zeros((16, 16, 3), np.uint8))
+    with pytest.raises(ConfigError, match="pixel_size: -0.5 is not a positive"):  # used to write negative areas
+        segment_image(net, image, tmp_path / "out", pixel_size=-0.5, progress=False)
+    assert not (tmp_path / "out").exists()
+
+
+def test_atomic_output_names_the_final_file_when_its_folder_is_missing(tmp_path):
+    with pytest.raises(FcnkitError, match=r"x/y.txt: cannot write here, folder .*x does not exist"):
+        write_text_atomic(tmp_path / "x" / "y.txt", "z")  # used to name the hidden .partial file
+
+
+# --- the memory check --------------------------------------------------------------------------------------------
+
+NETS = {
+    "chain": {"widths": [8, 16, 32], "blocks": [1, 1, 1], "min_size": 4},
+    "sum": {"widths": [8, 16, 32], "fusion": "sum", "min_size": 4},
+    "unet": {"widths": [8, 16, 32], "fusion": "concat", "min_size": 4},
+}
+
+
+@pytest.mark.parametrize("name", NETS)
+def test_forward_estimate_lies_between_the_largest_activation_and_all_of_them(name):
+    """Bracket the estimate with sizes measured on the real module by forward hooks: the peak is at least
+    the largest single activation (plus its input) and at most every activation kept at once."""
+    net = build_model(config_from_dict({"model": {"classes": 3, **NETS[name]}})).eval()
+    graph = layer_graph(net)
+    sizes = []
+    for m in net.modules():
+        if not list(m.children()):
+            m.register_forward_hook(lambda mod, i, o: sizes.append(o.numel() * o.element_size()))
+    batch, h, w = 2, 40, 56
+    with torch.no_grad():
+        net(torch.zeros(batch, 3, h, w))
+    est = forward_bytes(graph, h, w, batch, 3)
+    assert max(sizes) <= est <= sum(sizes) + batch * 3 * h * w * 4
+
+
+def test_forward_estimate_scales_with_batch_and_tile_area():
+    graph = layer_graph(build_model(config_from_dict({"model": NETS["unet"]})))
+    one = forward_bytes(graph, 64, 64, 1, 3)
+    assert forward_bytes(graph, 64, 64, 4, 3) == 4 * one
+    assert forward_bytes(graph, 128, 128, 1, 3) == 4 * one  # sides are multiples of every stride here
+
+
+def test_a_setting_beyond_memory_is_refused_with_a_batch_or_tile_that_fits():
+    graph = layer_graph(build_model(config_from_dict({"model": NETS["sum"]})))
+    one = forward_bytes(graph, 256, 256, 1, 3)
+    with pytest.raises(ConfigError, match=r"tile/batch: 8 tiles of 256x256 px .* use batch 3 \(--batch 3\)"):
+        check_forward_memory(graph, 256, 256, 8, 3, factor=4, available=3 * one + 1)
+    with pytest.raises(ConfigError, match=r"use tile 128 with batch 1 \(--tile 128 --batch 1\)"):
+        check_forward_memory(graph, 256, 256, 8, 3, factor=4, available=one // 2)
+    assert check_forward_memory(graph, 256, 256, 8, 3, available=8 * one) == 8 * one
+
+
+def test_available_memory_reads_meminfo_and_honours_the_cap(monkeypatch):
+    monkeypatch.delenv("FCNKIT_MAX_MEMORY", raising=False)
+    free = available_memory()
+    with open("/proc/meminfo") as f:  # the kernel's own figure (proc(5): MemAvailable, in kB)
+        kb = next(int(line.split()[1]) for line in f if line.startswith("MemAvailable:"))
+    assert abs(free - kb * 1024) < 0.2 * kb * 1024
+    monkeypatch.setenv("FCNKIT_MAX_MEMORY", "64M")
+    assert available_memory() <= 64 * 2**20
+    assert parse_size("1.5G") == 3 * 2**29 and parse_size("512k") == 512 * 1024 and parse_size("100") == 100
+    with pytest.raises(ConfigError, match="FCNKIT_MAX_MEMORY: 'lots' is not a size"):
+        parse_size("lots")
+
+
+def test_tiled_inference_refuses_before_reading_any_tile(monkeypatch):
+    from fcnkit.tiling import predict_scores
+
+    net = build_model(config_from_dict({"model": NETS["chain"]}))
+    monkeypatch.setenv("FCNKIT_MAX_MEMORY", "1M")
+    with pytest.raises(ConfigError, match="more than the 1 MiB available"):
+        predict_scores(net, np.zeros((300, 300, 3), np.float32), tile=256, batch=4)
