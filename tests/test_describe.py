@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -69,8 +70,10 @@ def test_describe_of_a_global_net_says_so() -> None:
 
 def test_cli_describe_runs_on_every_shipped_config(capsys: pytest.CaptureFixture[str]) -> None:
     paths = [str(p.relative_to(ROOT)) for p in CONFIGS]
-    res = subprocess.run([sys.executable, "-m", "fcnkit", "describe", *paths], capture_output=True, text=True,
-                         cwd=ROOT, timeout=300)
+    # the `fcnkit` console script (installed beside the interpreter); `python -m fcnkit` is run by test_config.py
+    script = shutil.which("fcnkit", path=str(Path(sys.executable).parent))
+    assert script, "console script 'fcnkit' is not installed"
+    res = subprocess.run([script, "describe", *paths], capture_output=True, text=True, cwd=ROOT, timeout=300)
     assert res.returncode == 0, res.stderr
     assert res.stderr == ""
     for p in paths:
