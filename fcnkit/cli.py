@@ -296,7 +296,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.run(args) or 0)
     except FcnkitError as e:
-        sys.stderr.write(f"fcnkit {args.command}: error: {e}\n")
+        message = " ".join(str(e).splitlines())  # always one line, whatever the message holds
+        sys.stderr.write(f"fcnkit {args.command}: error: {message}\n")
         return 2
     except OSError as e:
         where = f"{e.filename}: " if getattr(e, "filename", None) else ""

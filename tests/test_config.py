@@ -171,6 +171,18 @@ def test_cli_usage_errors_exit_2(capsys: pytest.CaptureFixture[str]) -> None:
         assert len(err.splitlines()) == 1 and err.startswith("fcnkit"), err
 
 
+def test_cli_prints_any_user_error_on_one_line(monkeypatch: pytest.MonkeyPatch,
+                                               capsys: pytest.CaptureFixture[str]) -> None:
+    import fcnkit.cli
+
+    def fail(args: object) -> int:
+        raise ConfigError("first line\nsecond line")
+
+    monkeypatch.setattr(fcnkit.cli, "_describe", fail)
+    assert fcnkit.cli.main(["describe", "x.toml"]) == 2
+    assert capsys.readouterr().err == "fcnkit describe: error: first line second line\n"
+
+
 def test_version(capsys: pytest.CaptureFixture[str]) -> None:
     # the console script itself is run by tests/test_describe.py on every shipped config
     from fcnkit import __version__
