@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import importlib
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -140,8 +141,12 @@ def from_torchscript(path: str | Path) -> Classifier:
         fill(module, sd, str(path))
         return Classifier(module.eval(), {"source": "sequential", "layers": spec})
     for arch in torchvision_architectures():
-        with torch.device("meta"):
-            probe = build_torchvision(arch)
+        try:  # parameter shapes only, on the meta device (a few builders cannot initialise there)
+            with torch.device("meta"), warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                probe = build_torchvision(arch)
+        except (NotImplementedError, RuntimeError):
+            continue
         if type(probe).__name__ != kind:
             continue
         rows = _last_linear_rows(probe, sd) or 1000
