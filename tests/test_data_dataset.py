@@ -160,3 +160,11 @@ def test_band_stats_from_paths_and_band_mismatch(tmp_path):
     assert band_stats([s.image for s in samples]) == band_stats(arrays)
     with pytest.raises(DataError, match="2 bands but the first image has 3"):
         band_stats([arrays[0], arrays[1][..., :2]])
+
+
+def test_a_broken_image_does_not_hide_its_masks_problem(tmp_path):
+    _dataset(tmp_path)
+    _break(tmp_path, "unreadable image")  # images/s0.tif
+    Image.fromarray(np.full((20, 24), 9, np.uint8)).save(tmp_path / "masks" / "s0.png")
+    problems = check_dataset(tmp_path).problems
+    assert len(problems) == 2 and "s0.tif" in problems[0] and "s0.png" in problems[1]

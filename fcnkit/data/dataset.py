@@ -119,14 +119,14 @@ def check_dataset(data_dir: str | Path, max_pixels: int | None = DEFAULT_MAX_PIX
     report.problems += scan_problems
     counts = np.zeros(256, dtype=np.int64)
     for s in samples:
+        size = None
         try:
             image = read_image(s.image, max_pixels)
+            size = image.shape[:2]
+            report.images.append(ImageInfo(s.stem, *image.shape, str(image.dtype)))
+            del image
         except DataError as e:
             report.problems.append(str(e))
-            continue
-        h, w, bands = image.shape
-        report.images.append(ImageInfo(s.stem, h, w, bands, str(image.dtype)))
-        del image
         if classes is None:
             continue
         try:
@@ -134,8 +134,9 @@ def check_dataset(data_dir: str | Path, max_pixels: int | None = DEFAULT_MAX_PIX
         except DataError as e:
             report.problems.append(str(e))
             continue
-        if mask.shape != (h, w):
-            report.problems.append(f"{s.mask}: {mask.shape[0]}×{mask.shape[1]} pixels but {s.image.name} is {h}×{w}")
+        if size is not None and mask.shape != size:
+            report.problems.append(f"{s.mask}: {mask.shape[0]}×{mask.shape[1]} pixels but {s.image.name} is "
+                                   f"{size[0]}×{size[1]}")
             continue
         counts += np.bincount(mask.ravel(), minlength=256)
     if report.images:

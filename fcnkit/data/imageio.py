@@ -56,7 +56,7 @@ def image_shape(path: str | Path) -> tuple[int, int, int]:
         with _open_tiff(path) as tif:
             return _tiff_layout(path, tif)[0]
     with _open_pillow(path, None) as im:
-        bands = 3 if im.mode == "P" else len(im.getbands())
+        bands = (4 if "transparency" in im.info else 3) if im.mode == "P" else len(im.getbands())
         return im.height, im.width, bands
 
 
