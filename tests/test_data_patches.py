@@ -5,6 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import chisquare
 
 from fcnkit.data.patches import PatchDataset
@@ -124,3 +126,28 @@ def test_bad_arguments():
         PatchDataset([image], [mask], 8, 1, scale=(2.0, 1.0))
     with pytest.raises(DataError, match="sample 0"):
         PatchDataset([image], [mask[:10]], 8, 1)
+
+
+@settings(max_examples=40, deadline=None)
+@given(h=st.integers(1, 40), w=st.integers(1, 40), patch=st.integers(1, 30), seed=st.integers(0, 10**6),
+       balanced=st.booleans())
+def test_unaugmented_patches_are_windows_of_the_padded_image(h, w, patch, seed, balanced):
+    """Property: a patch is a P×P window of the image padded with 0 / ignore, never shifted or mixed."""
+    yy, xx = np.mgrid[0:h, 0:w]
+    image = np.stack([yy + 1, xx + 1], axis=-1).astype(np.uint16)  # 0 only in padding
+    mask = ((yy * 7 + xx) % 200).astype(np.uint8)
+    mask[0, 0] = 255
+    img, m = PatchDataset([image], [mask], patch, 1, balanced=balanced, seed=seed)[0]
+    y, x = img[0].long() - 1, img[1].long() - 1
+    inside = img[0] > 0
+    assert torch.equal(inside, img[1] > 0)
+    assert torch.equal(m[inside], torch.from_numpy(mask)[y[inside], x[inside]].long())
+    assert (m[~inside] == 255).all()
+    rows, cols = torch.nonzero(inside, as_tuple=True)
+    if rows.numel():  # source coordinates advance one by one across the window
+        assert torch.equal(y[inside] - rows, torch.full_like(rows, int(y[inside][0] - rows[0])))
+        assert torch.equal(x[inside] - cols, torch.full_like(cols, int(x[inside][0] - cols[0])))
+    if not balanced and h >= patch and w >= patch:
+        assert inside.all()  # plain crops stay inside an image that is large enough
+    if balanced:
+        assert m[patch // 2, patch // 2] != 255  # the centre is a labelled pixel
