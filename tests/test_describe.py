@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import sys
@@ -87,3 +88,15 @@ def test_cli_describe_runs_on_every_shipped_config(capsys: pytest.CaptureFixture
     assert [r["config"] for r in rows] == [str(p) for p in CONFIGS]
     for row, path in zip(rows, CONFIGS, strict=True):
         assert {k: row[k] for k in REQUIRED} == {k: describe(load_config(path))[k] for k in REQUIRED}
+
+
+def test_readme_figures_match_describe() -> None:
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    row = r"^\| `(configs/\w+\.toml)` \| (\d+) \| (\d+) \| (\d+) \| ([\d,]+) \| ([\d.]+) G \|$"
+    rows = re.findall(row, readme, re.M)
+    assert {r[0] for r in rows} == {str(p.relative_to(ROOT)) for p in CONFIGS}
+    for path, stride, field, margin, params, gmacs in rows:
+        d = describe(load_config(ROOT / path))
+        assert (d["output_stride"], d["receptive_field"], d["tile_margin"]) == (int(stride), int(field), int(margin))
+        assert d["params"] == int(params.replace(",", ""))
+        assert f"{d['macs_per_megapixel'] / 1e9:.2f}" == gmacs
