@@ -163,9 +163,9 @@ def format_check(report: CheckReport) -> str:
     for i in report.images:
         groups.setdefault((i.height, i.width, i.bands, i.dtype), []).append(i.stem)
     if groups:
-        lines.append(f"images: {len(report.images)}")
+        lines.append(f"images read: {len(report.images)}")
         for (h, w, b, dt), stems in sorted(groups.items()):
-            shown = stems[0] if len(stems) == 1 else f"{stems[0]} … {stems[-1]}"
+            shown = ", ".join(stems) if len(stems) <= 2 else f"{stems[0]} … {stems[-1]}"
             lines.append(f"  {len(stems):5d} × {h}×{w} px, {b} band{'s' if b > 1 else ''}, {dt}  ({shown})")
     if report.classes is not None and report.images:
         total = sum(report.class_pixels) + report.ignore_pixels
