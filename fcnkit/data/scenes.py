@@ -94,7 +94,7 @@ def _built_colours(rng: np.random.Generator, n: int) -> np.ndarray:
 
 
 def _rivers_and_tracks(rng: np.random.Generator, img: np.ndarray, label: np.ndarray, scale: float) -> None:
-    """Streams 6–14 px wide, then dirt and gravel tracks 3–6 px wide with darker verges (never over water).
+    """Streams 6–14 px wide, then dirt and gravel tracks 5–8 px wide with darker verges (never over water).
 
     Both are long smooth meandering curves; one distance transform serves them all. Water is painted here,
     after the lakes (already in ``label``) and the streams are known.
@@ -102,7 +102,7 @@ def _rivers_and_tracks(rng: np.random.Generator, img: np.ndarray, label: np.ndar
     h, w = label.shape
     n_rivers, n_tracks = rng.poisson(0.3 * np.sqrt(scale)), rng.poisson(2.2 * np.sqrt(scale))
     curves = [_curve(rng, h, w) for _ in range(n_rivers + n_tracks)]
-    half = np.concatenate([rng.uniform(3.0, 7.0, n_rivers), rng.uniform(1.5, 3.0, n_tracks)])
+    half = np.concatenate([rng.uniform(3.0, 7.0, n_rivers), rng.uniform(2.0, 3.5, n_tracks)])
     inside, dist, which = _thick(h, w, curves, half)
     label[inside & (which < n_rivers)] = WATER
     water = label == WATER
