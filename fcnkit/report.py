@@ -25,6 +25,7 @@ import numpy as np
 from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 from PIL import Image
 
 from fcnkit.atomic import write_text_atomic
@@ -184,24 +185,24 @@ def read_curves(path: str | Path) -> dict[str, list[float]]:
 def _curves_chart(cols: dict[str, list[float]]) -> str | None:
     x_name = next((n for n in ("epoch", "step") if n in cols), None)
     low = {n: n.lower() for n in cols}
-    panels = [
-        ("loss", [n for n, lo in low.items() if "loss" in lo]),
-        ("validation scores", [n for n, lo in low.items() if lo.startswith("val_") and "loss" not in lo]),
-        ("per-class validation IoU", [n for n, lo in low.items() if lo.startswith("iou_")]),
-        ("learning rate", [n for n, lo in low.items() if lo in ("lr", "learning_rate")]),
+    panels = [  # (title, prefix dropped from the legend, columns)
+        ("loss", "", [n for n, lo in low.items() if "loss" in lo]),
+        ("validation scores", "val_", [n for n, lo in low.items() if lo.startswith("val_") and "loss" not in lo]),
+        ("per-class validation IoU", "iou_", [n for n, lo in low.items() if lo.startswith("iou_")]),
+        ("learning rate", "", [n for n, lo in low.items() if lo in ("lr", "learning_rate")]),
     ]
-    panels = [(title, names) for title, names in panels if names]
+    panels = [p for p in panels if p[2]]
     if not panels:
         return None
     fig = Figure(figsize=(3.2 * len(panels), 2.8))
-    for i, (title, names) in enumerate(panels):
+    for i, (title, prefix, names) in enumerate(panels):
         ax = fig.add_subplot(1, len(panels), i + 1)
         for name in names:
             x = cols[x_name] if x_name else list(range(1, len(cols[name]) + 1))
-            label = name[4:] if name.lower().startswith(("val_", "iou_")) else name
-            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=label)
+            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=name[len(prefix):])
         ax.set_title(title, fontsize=9, loc="left")
         ax.set_xlabel(x_name or "row")
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))
         ax.grid(alpha=0.3)
         ax.spines[["top", "right"]].set_visible(False)
         ax.legend(fontsize=7, frameon=False)
