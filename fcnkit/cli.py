@@ -171,18 +171,14 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_demo)
 
 
-def _csv_ints(text: str) -> tuple[int, ...]:
-    try:
-        return tuple(int(v) for v in text.split(","))
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of whole numbers") from None
-
-
-def _csv_floats(text: str) -> list[float]:
-    try:
-        return [float(v) for v in text.split(",")]
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of numbers") from None
+def _csv(cast: Callable[[str], object], what: str) -> Callable[[str], list]:
+    """An argparse type for comma-separated values."""
+    def parse(text: str) -> list:
+        try:
+            return [cast(v) for v in text.split(",")]
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a comma-separated list of {what}") from None
+    return parse
 
 
 def _convert(args: argparse.Namespace) -> int:
@@ -225,14 +221,15 @@ def _add_convert(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--sizes", type=int, nargs="*", default=[], metavar="PX",
                    help="also state the output size for these input sides")
     p.add_argument("--save", metavar="MODEL", help="write a model file (dense classifier, or segmenter with --grow)")
-    p.add_argument("--keep", type=_csv_ints, metavar="I,J,...", help="classifier outputs kept as classes")
+    p.add_argument("--keep", type=_csv(int, "whole numbers"), metavar="I,J,...",
+                   help="classifier outputs kept as classes")
     p.add_argument("--grow", action="store_true", help="grow a trainable segmenter (FCN recipe) instead")
     p.add_argument("--classes", metavar="TOML", help="class table (classes.toml) of the model file's classes")
     p.add_argument("--skips", type=int, nargs="*", default=[], metavar="STRIDE",
                    help="with --grow: trunk strides whose scores are fused, e.g. 16 8 (FCN-8s)")
     p.add_argument("--bands", type=int, metavar="N", help="with --grow: input bands (extra ones widen the first conv)")
-    p.add_argument("--mean", type=_csv_floats, metavar="M1,M2,...", help="per-band mean in raw pixel units")
-    p.add_argument("--std", type=_csv_floats, metavar="S1,S2,...", help="per-band std in raw pixel units")
+    p.add_argument("--mean", type=_csv(float, "numbers"), metavar="M1,M2,...", help="per-band mean in raw pixel units")
+    p.add_argument("--std", type=_csv(float, "numbers"), metavar="S1,S2,...", help="per-band std in raw pixel units")
     p.add_argument("--json", action="store_true", help="print the certificate as one JSON object")
     p.set_defaults(run=_convert)
 
@@ -257,9 +254,10 @@ def _add_check(sub: argparse._SubParsersAction) -> None:
 def _scenes(args: argparse.Namespace) -> int:
     from fcnkit import make_scenes
 
-    out = make_scenes(args.out_dir, args.count, args.size, args.seed, nir=not args.no_nir)
+    out = make_scenes(args.out_dir, args.count, args.size, args.seed, nir=not args.no_nir, strokes=args.strokes)
+    labels = f", {args.strokes} scribbled strokes per class" if args.strokes else ""
     print(f"wrote {args.count} synthetic Kessmoor scenes of {args.size}×{args.size} px "
-          f"({'R, G, B' if args.no_nir else 'R, G, B, NIR'}) to {out}")
+          f"({'R, G, B' if args.no_nir else 'R, G, B, NIR'}{labels}) to {out}")
     return 0
 
 
@@ -270,6 +268,8 @@ def _add_scenes(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--size", type=int, default=256, metavar="S", help="side of each scene in pixels (default 256)")
     p.add_argument("--seed", type=int, default=0, metavar="K", help="random seed; same seed, same scenes (default 0)")
     p.add_argument("--no-nir", action="store_true", help="RGB only (default: a fourth, near-infrared band)")
+    p.add_argument("--strokes", type=int, metavar="N",
+                   help="sparse labels: keep N short scribbled strokes per class in each mask, the rest unlabelled")
     p.set_defaults(run=_scenes)
 
 
@@ -304,5 +304,5 @@ def main(argv: Sequence[str] | None = None) -> int:
         sys.stderr.write(f"fcnkit {args.command}: error: {where}{e.strerror or e}\n")
         return 2
     except KeyboardInterrupt as e:  # the message, when there is one, says what was saved
-        sys.stderr.write(f"fcnkit {args.command}: {e or 'interrupted'}\n")
+        sys.stderr.write(f"fcnkit {args.command}: {str(e) or 'interrupted'}\n")
         return 130

@@ -64,8 +64,8 @@ def grow_segmenter(module: nn.Module, native_size: int, *, classes: int | None =
     layer for ``classes`` new classes (zero-initialised) or for the classifier outputs ``keep``, learnable
     bilinear-initialised up-sampling, and 1×1 scores of the trunk stages at ``skips`` (e.g. (16, 8) for
     FCN-8s) fused on the way. ``bands`` above the classifier's widens its first convolution."""
-    recipe = Recipe(native_size, grow=True, global_pool=global_pool, keep=keep, classes=classes,
-                    skips=tuple(skips), bands=bands)
+    recipe = Recipe(native_size, grow=True, global_pool=global_pool, keep=None if keep is None else tuple(keep),
+                    classes=classes, skips=tuple(skips), bands=bands)
     return make_net(module, recipe)
 
 

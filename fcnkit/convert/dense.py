@@ -441,8 +441,9 @@ class Certificate:
         sizes = ", ".join(f"{k} px -> {v}x{v}" for k, v in self.output_sides.items())
         return "\n".join([
             f"form                  {_FORMS[self.form]}",
-            f"equivalence at {self.native_size} px  max |difference| {self.max_abs_diff:.3g} "
-            f"({self.compared}; largest |logit| {self.max_abs_logit:.3g}; tolerance {self.tolerance:g}): "
+            f"equivalence at {self.native_size} px: max |difference| {self.max_abs_diff:.3g} "
+            f"({self.compared}; largest |logit| {self.max_abs_logit:.3g}, relative "
+            f"{self.max_abs_diff / max(self.max_abs_logit, 1e-30):.2g}; tolerance {self.tolerance:g}): "
             + ("PASSED" if self.passed else "FAILED"),
             f"output stride         {self.stride}",
             f"receptive field       {rf}",
