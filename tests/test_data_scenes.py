@@ -166,3 +166,19 @@ def test_mosaic_memory_is_bounded(tmp_path):
     pool = [render_scene(256, np.random.default_rng([0, k]))[0] for k in range(4)]
     variants = [np.rot90(p, t)[:, ::f] for p in pool for t in range(4) for f in (1, -1)]
     assert any(np.array_equal(corner, v) for v in variants)  # each block is a pooled scene, flipped/turned
+
+
+def test_scribbled_masks_are_sparse_and_agree_with_the_dense_labels(tmp_path):
+    out = make_scenes(tmp_path / "s", count=3, size=96, seed=2, strokes=2)
+    for i, s in enumerate(find_samples(out)[0]):
+        image, dense = render_scene(96, np.random.default_rng([2, i]))
+        sparse = read_mask(s.mask, SCENE_CLASSES)
+        np.testing.assert_array_equal(read_image(s.image), image)  # the images do not change
+        labelled = sparse != SCENE_CLASSES.ignore
+        assert 0 < labelled.mean() < 0.15
+        np.testing.assert_array_equal(sparse[labelled], dense[labelled])  # strokes stay inside their class
+        assert set(np.unique(sparse[labelled])) <= set(np.unique(dense))
+        assert len(np.unique(sparse[labelled])) >= len(np.unique(dense)) - 1  # nearly every class is scribbled
+    assert check_dataset(out).ok
+    with pytest.raises(ConfigError, match="strokes = 0"):
+        make_scenes(tmp_path / "z", count=1, size=32, seed=0, strokes=0)

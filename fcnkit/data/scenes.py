@@ -247,14 +247,17 @@ def _fractal(rng: np.random.Generator, h: int, w: int, cell: float, octaves: int
     return f / max(float(f.std()), 1e-6)
 
 
-def _curve(rng: np.random.Generator, h: int, w: int) -> np.ndarray:
-    """Points (N×2, y and x) of a smooth meandering path through the scene, one pixel apart."""
-    n = int(1.5 * max(h, w))
+def _curve(rng: np.random.Generator, h: int, w: int, n: int | None = None,
+           centre: tuple[float, float] | None = None) -> np.ndarray:
+    """Points (N×2, y and x) of a smooth meandering path one pixel apart, ``n`` long (default 1.5 × the scene's
+    side) and centred on ``centre`` (default a random point of the scene)."""
+    n = int(1.5 * max(h, w)) if n is None else n
     knots = rng.normal(0, 0.02, n // 40 + 2)
     bend = np.interp(np.arange(n) / 40.0, np.arange(knots.size), knots)
     heading = rng.uniform(0, 2 * np.pi) + np.cumsum(bend)
-    y = rng.uniform(0, h) + np.cumsum(np.sin(heading)) - np.sin(heading).sum() / 2
-    x = rng.uniform(0, w) + np.cumsum(np.cos(heading)) - np.cos(heading).sum() / 2
+    y0, x0 = (rng.uniform(0, h), rng.uniform(0, w)) if centre is None else centre
+    y = y0 + np.cumsum(np.sin(heading)) - np.sin(heading).sum() / 2
+    x = x0 + np.cumsum(np.cos(heading)) - np.cos(heading).sum() / 2
     return np.stack([y, x], axis=1)
 
 
@@ -277,12 +280,35 @@ def _thick(h: int, w: int, paths: list[np.ndarray], half: np.ndarray) -> tuple[n
 
 # --- writing datasets and mosaics --------------------------------------------------------------------------
 
-def make_scenes(out_dir: str | Path, count: int, size: int, seed: int, nir: bool = True) -> Path:
+def scribble(label: np.ndarray, rng: np.random.Generator, strokes: int, ignore: int = 255,
+             length: int = 30) -> np.ndarray:
+    """Sparse labels as a person would scribble them: per class present, ``strokes`` short strokes (about 3 px
+    wide and ``length`` px long) from random pixels of the class, clipped to it; every other pixel ``ignore``."""
+    h, w = label.shape
+    curves, owner = [], []
+    for c in np.unique(label):
+        ys, xs = np.nonzero(label == c)
+        for k in rng.integers(ys.size, size=strokes):
+            curves.append(_curve(rng, h, w, length, (float(ys[k]), float(xs[k]))))
+            owner.append(c)
+    out = np.full_like(label, ignore)
+    if curves:
+        inside, _, which = _thick(h, w, curves, np.ones(len(curves)))
+        keep = inside & (label == np.asarray(owner, label.dtype)[which])
+        out[keep] = label[keep]
+    return out
+
+
+def make_scenes(out_dir: str | Path, count: int, size: int, seed: int, nir: bool = True,
+                strokes: int | None = None) -> Path:
     """Write ``count`` scenes as a dataset folder (images/, masks/, classes.toml); scene i depends on (seed, i).
 
     Images are 4-band TIFF (R, G, B, NIR) or, without NIR, RGB PNG; masks are palette PNGs of class ids.
+    ``strokes`` keeps only that many scribbled strokes per class in each mask (the images stay the same).
     """
-    for name, value, low in (("count", count, 1), ("size", size, 8), ("seed", seed, 0)):
+    for name, value, low in (("count", count, 1), ("size", size, 8), ("seed", seed, 0), ("strokes", strokes, 1)):
+        if name == "strokes" and value is None:
+            continue
         if not isinstance(value, int) or isinstance(value, bool) or value < low:
             raise ConfigError(f"{name} = {value!r} (expected an integer ≥ {low})")
     out = Path(out_dir)
@@ -293,6 +319,8 @@ def make_scenes(out_dir: str | Path, count: int, size: int, seed: int, nir: bool
     write_classes(out / "classes.toml", SCENE_CLASSES)
     for i in range(count):
         image, mask = render_scene(size, np.random.default_rng([seed, i]), nir)
+        if strokes is not None:
+            mask = scribble(mask, np.random.default_rng([seed, i, 1]), strokes, SCENE_CLASSES.ignore)
         stem = f"scene_{i:04d}"
         if nir:
             write_tiff(out / "images" / f"{stem}.tif", image)
