@@ -165,6 +165,7 @@ def config_to_dict(cfg: Config) -> dict[str, Any]:
 def replace_section(cfg: Config, section: str, **changes: Any) -> Config:
     """A copy of ``cfg`` with some keys of one section changed, re-validated."""
     table = config_to_dict(cfg)
+    _reject_unknown({section: None}, _SECTIONS, "")
     table[section].update(changes)
     return config_from_dict(table)
 

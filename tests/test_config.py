@@ -132,6 +132,8 @@ def test_replace_section_revalidates() -> None:
         replace_section(cfg, "model", clases=7)
     with pytest.raises(ConfigError, match=r"^train\.epochs: 0 is below the minimum 1$"):
         replace_section(cfg, "train", epochs=0)
+    with pytest.raises(ConfigError, match=r"^modl: unknown key \(did you mean 'model'\?\); allowed: model, train$"):
+        replace_section(cfg, "modl", classes=7)
 
 
 def test_readme_documents_every_model_key() -> None:
