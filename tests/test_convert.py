@@ -96,10 +96,11 @@ def test_torchvision_equivalence_and_output_size(arch: str, native: int, larger:
     assert cert.form == {"alexnet": "kxk", "vgg11": "kxk", "resnet18": "cam", "mobilenet_v3_small": "window"}[arch]
 
 
-def test_global_average_mean_equals_logits_at_any_size() -> None:
+@pytest.mark.parametrize("arch", ["resnet18", "mobilenet_v2"])
+def test_global_average_mean_equals_logits_at_any_size(arch: str) -> None:
     """Zhou et al. 2016 (class-activation maps): the mean of the dense score map is the classifier's output
-    on the same input, whatever its size (ResNet pools globally)."""
-    module = _tv("resnet18")
+    on the same input, whatever its size (ResNet and MobileNetV2 pool globally, then apply affine layers)."""
+    module = _tv(arch)
     conv = convert_classifier(module, 64)
     assert conv.certificate.form == "cam"
     for side in (96, 160):
@@ -220,3 +221,18 @@ def test_wrong_native_size() -> None:
 def test_no_dense_layer_or_no_flatten() -> None:
     with pytest.raises(ConvertError, match="unsupported layer"):
         convert_classifier(nn.Sequential(nn.Conv2d(3, 4, 3), nn.ReLU()), 28)
+
+
+@pytest.mark.parametrize("padded", [False, True])
+def test_tiled_inference_equals_whole_image_map(padded: bool) -> None:
+    """The converted net runs through tiled inference; in exact mode the tiles reproduce the map of the whole
+    image (reference: the same net on the whole image, softmax from torch.nn.functional)."""
+    tiling = pytest.importorskip("fcnkit.tiling")
+    conv = convert_classifier(lively(user_cnn(padded=padded)), 28, keep=(0, 1, 2))
+    image = np.random.default_rng(0).integers(0, 255, (150, 170, 3)).astype(np.uint8)
+    scores = tiling.predict_scores(conv.net, image, mean=[100.0] * 3, std=[50.0] * 3, tile=96, exact=True)
+    x = torch.from_numpy(((image.astype(np.float32) - 100) / 50).transpose(2, 0, 1))[None]
+    with torch.no_grad():
+        whole = torch.softmax(conv.net(x), dim=1)[0].numpy()
+    assert scores.shape == (3, 150, 170)
+    np.testing.assert_allclose(scores, whole, atol=1e-5)
