@@ -264,7 +264,7 @@ def _curve(rng: np.random.Generator, h: int, w: int, n: int | None = None,
 def _thick(h: int, w: int, paths: list[np.ndarray], half: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Pixels within ``half[i]`` of path i, by one Euclidean distance transform.
 
-    Returns (inside, distance to the nearest path point, index of that path or point).
+    Returns (inside, distance to the nearest path point, index of that path).
     """
     seeds = np.full((h, w), -1, np.int64)
     for i, pts in enumerate(paths):
