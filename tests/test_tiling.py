@@ -197,3 +197,18 @@ def test_bad_options_name_the_option(kwargs, match):
     match = match.format(m=m, o=2 * m, t=math.ceil((2 * m + 4) / 4) * 4)
     with pytest.raises(ConfigError, match=match):
         predict_scores(net, np.zeros((50, 50, 1), np.float32), **kwargs)
+
+
+def test_bf16_engine_keeps_transposed_convolutions_in_float32():
+    from fcnkit.tiling import Float32, TorchEngine
+
+    net = _randomise_bn(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [8, 8],
+                                                                "fusion": "sum", "min_size": 16}})), 6)
+    engine = TorchEngine(net, bf16=True)
+    wrapped = [m for m in engine.model.modules() if isinstance(m, Float32)]
+    assert wrapped and all(isinstance(m.module, nn.ConvTranspose2d) for m in wrapped)
+    x = torch.randn(2, 3, 32, 32)
+    out, ref = engine(x), TorchEngine(net)(x)
+    assert out.dtype == torch.float32
+    # bfloat16 keeps 8 significand bits: relative error of order 2^-8 per operation (IEEE-style rounding)
+    assert torch.allclose(out, ref, atol=0.1, rtol=0.05)
