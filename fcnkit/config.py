@@ -30,17 +30,17 @@ def _opt(default: Any, **rules: Any) -> Any:
 class ModelConfig:
     """The net: encoder stages, 1×1-convolution head, up-sampling and skip fusion."""
 
-    bands: int = _opt(3, min=1)
+    bands: int = _opt(3, min=1, max=1024)
     classes: int = _opt(2, min=2, max=255)
-    widths: list[int] = _opt([16, 32, 64, 128], min=1)
-    blocks: list[int] | None = _opt(None, min=1)
+    widths: list[int] = _opt([16, 32, 64, 128], min=1, max=4096)
+    blocks: list[int] | None = _opt(None, min=1, max=32)
     strides: list[int] | None = _opt(None, choices=(1, 2, 3, 4))
-    dilations: list[int] | None = _opt(None, min=1)
+    dilations: list[int] | None = _opt(None, min=1, max=64)
     kernel: int = _opt(3, choices=(1, 3, 5, 7))
     down: str = _opt("maxpool", choices=("maxpool", "conv"))
     norm: str = _opt("batch", choices=("batch", "group", "none"))
-    groups: int = _opt(8, min=1)
-    head: list[int] = _opt([], min=1)
+    groups: int = _opt(8, min=1, max=4096)
+    head: list[int] = _opt([], min=1, max=8192)
     dropout: float = _opt(0.0, min=0.0, max=0.95)
     upsample: str = _opt("transposed", choices=("transposed", "bilinear"))
     fusion: str = _opt("none", choices=("none", "sum", "concat"))

@@ -38,6 +38,7 @@ BAD = {
     "zero width": ("[model]\nwidths = [0, 8]\n", ["model.widths[0]", "0", "below the minimum 1"]),
     "negative width": ("[model]\nwidths = [8, -4]\n", ["model.widths[1]", "-4", "below the minimum 1"]),
     "no stages": ("[model]\nwidths = []\n", ["model.widths", "[]", "at least one stage"]),
+    "huge width": ("[model]\nwidths = [8, 1000000000]\n", ["model.widths[1]", "1000000000", "above the maximum 4096"]),
     "zero blocks": ("[model]\nwidths = [8]\nblocks = [0]\n", ["model.blocks[0]", "0", "below the minimum 1"]),
     "too many classes": ("[model]\nclasses = 256\n", ["model.classes", "256", "above the maximum 255"]),
     "list length": ("[model]\nwidths = [8, 16]\nblocks = [1]\n", ["model.blocks", "1 entries", "expected 2"]),
