@@ -149,3 +149,25 @@ def test_tiled_inference_refuses_before_reading_any_tile(monkeypatch):
     monkeypatch.setenv("FCNKIT_MAX_MEMORY", "1M")
     with pytest.raises(ConfigError, match="more than the 1 MiB available"):
         predict_scores(net, np.zeros((300, 300, 3), np.float32), tile=256, batch=4)
+
+
+def test_decoded_images_are_writable_so_torch_does_not_warn(tmp_path):
+    from PIL import Image
+
+    Image.fromarray(np.zeros((4, 5, 3), np.uint8)).save(tmp_path / "a.png")
+    image = read_image(tmp_path / "a.png")
+    assert image.flags.writeable  # a read-only array made every training run print a torch UserWarning
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        torch.from_numpy(image)
+
+
+def test_ctrl_c_without_a_message_still_says_interrupted(monkeypatch, capsys):
+    import fcnkit.cli as cli
+
+    def stop(args):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(cli, "_describe", stop)
+    assert cli.main(["describe", "x.toml"]) == 130
+    assert capsys.readouterr().err == "fcnkit describe: interrupted\n"  # was "fcnkit describe: " (empty)

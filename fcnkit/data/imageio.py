@@ -184,7 +184,7 @@ class _open_pillow:
 def _decode_pillow(path: Path, im: Image.Image) -> np.ndarray:
     try:
         im.load()
-        return np.asarray(im)
+        return np.array(im)  # a writable copy: torch.from_numpy warns on read-only arrays
     except (OSError, SyntaxError, ValueError) as e:  # truncated or corrupt data
         raise DataError(f"{path}: corrupt or truncated image ({_reason(e)})") from None
 
