@@ -13,6 +13,7 @@ import io
 import json
 import math
 import random
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -63,13 +64,18 @@ def _first_difference(old: dict[str, Any], new: dict[str, Any], prefix: str = ""
 def load_resume(path: Path, config: dict[str, Any]) -> dict[str, Any]:
     """Read a resume point and check it belongs to ``config``."""
     try:
-        state = torch.load(path, map_location="cpu", weights_only=True)
+        with warnings.catch_warnings():  # torch remarks on the pickle protocol of files it then refuses
+            warnings.simplefilter("ignore")
+            state = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as e:  # noqa: BLE001 (any unreadable or foreign file gives the same one-line error)
         raise ModelFileError(f"{path}: not a readable resume point ({str(e).splitlines()[0][:120]})") from None
     if not isinstance(state, dict) or state.get("format") != FORMAT:
         raise ModelFileError(f"{path}: not an fcnkit resume point (format {FORMAT} expected)")
-    if state["config_hash"] != config_hash(config):
-        diff = _first_difference(json.loads(state["config"]), config) or "config differs"
+    if state.get("config_hash") != config_hash(config):
+        try:
+            diff = _first_difference(json.loads(state.get("config", "")), config) or "config differs"
+        except (TypeError, ValueError, AttributeError):
+            diff = "config differs"
         raise ModelFileError(f"{path}: resume point belongs to a different config ({diff}); "
                              "use the run's own config or another output folder")
     return state

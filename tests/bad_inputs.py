@@ -332,6 +332,7 @@ def _run_cli(argv: list[str]) -> tuple[int | None, str, str]:
         try:
             with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err), warnings.catch_warnings():
                 warnings.simplefilter("default")
+                warnings.showwarning = _show_warning  # as the interpreter would (pytest records them instead)
                 try:
                     code: int | None = main(argv)
                 except SystemExit as e:  # argparse
@@ -348,6 +349,10 @@ def _run_cli(argv: list[str]) -> tuple[int | None, str, str]:
         fd_err.seek(0)
         return code, out.getvalue() + fd_out.read().decode(errors="replace"), \
             err.getvalue() + fd_err.read().decode(errors="replace")
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
 
 
 def listing(folders: list[Path]) -> set[str]:

@@ -171,3 +171,11 @@ def test_ctrl_c_without_a_message_still_says_interrupted(monkeypatch, capsys):
     monkeypatch.setattr(cli, "_describe", stop)
     assert cli.main(["describe", "x.toml"]) == 130
     assert capsys.readouterr().err == "fcnkit describe: interrupted\n"  # was "fcnkit describe: " (empty)
+
+
+def test_a_resume_point_without_its_config_entries_is_refused_in_one_line(tmp_path):
+    from fcnkit import runstate
+
+    runstate.save_resume(tmp_path / "resume.pt", {"model": {}})  # right format tag, nothing else
+    with pytest.raises(FcnkitError, match="resume.pt: resume point belongs to a different config"):
+        runstate.load_resume(tmp_path / "resume.pt", {"model": {}, "train": {}})  # was KeyError

@@ -46,7 +46,9 @@ def load_state_dict(path: str | Path) -> dict[str, torch.Tensor]:
 
             sd = load_file(str(path))
         else:
-            sd = torch.load(path, map_location="cpu", weights_only=True)
+            with warnings.catch_warnings():  # torch remarks on the pickle protocol of files it then refuses
+                warnings.simplefilter("ignore")
+                sd = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as e:  # noqa: BLE001 - any decoding failure is the file's fault
         raise ModelFileError(f"{path}: not a readable safetensors or torch weights file ({type(e).__name__})") from e
     if isinstance(sd, dict) and isinstance(sd.get("state_dict"), dict):
@@ -130,7 +132,9 @@ def from_torchscript(path: str | Path) -> Classifier:
     if not path.is_file():
         raise ModelFileError(f"{path}: TorchScript file not found")
     try:
-        scripted = torch.jit.load(str(path), map_location="cpu")
+        with warnings.catch_warnings():  # torch.jit.load's deprecation notice is not the user's concern
+            warnings.simplefilter("ignore")
+            scripted = torch.jit.load(str(path), map_location="cpu")
     except Exception as e:  # noqa: BLE001 - any decoding failure is the file's fault
         raise ModelFileError(f"{path}: not a readable TorchScript file ({type(e).__name__})") from e
     sd = {k: v.detach() for k, v in scripted.state_dict().items()}
