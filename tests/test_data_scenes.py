@@ -12,6 +12,7 @@ from sklearn.neighbors import KNeighborsClassifier
 from sklearn.tree import DecisionTreeClassifier
 
 from fcnkit.cli import main
+from fcnkit.data import scenes
 from fcnkit.data.classes import load_classes
 from fcnkit.data.dataset import check_dataset, find_samples
 from fcnkit.data.imageio import read_image, read_mask
@@ -182,3 +183,34 @@ def test_scribbled_masks_are_sparse_and_agree_with_the_dense_labels(tmp_path):
     assert check_dataset(out).ok
     with pytest.raises(ConfigError, match="strokes = 0"):
         make_scenes(tmp_path / "z", count=1, size=32, seed=0, strokes=0)
+
+
+def test_shade_looks_like_water_in_rgb_but_not_in_nir(monkeypatch):
+    # Record which pixels the shadow sweep darkened, then ask a scikit-learn decision tree (the reference
+    # classifier) to tell shaded land from water by single-pixel values, trained on one seed, scored on another.
+    shaded = {}
+    original = scenes._shade
+
+    def recording(rng, img, height):
+        before = img.copy()
+        original(rng, img, height)
+        shaded["mask"] = (img != before).any(axis=-1)
+
+    monkeypatch.setattr(scenes, "_shade", recording)
+
+    def pixels(seed, bands):
+        xs, ys = [], []
+        for i in range(10):
+            img, lab = render_scene(128, np.random.default_rng([seed, i]))
+            land = shaded["mask"] & (lab != WATER)
+            xs += [img[land][:, :bands], img[lab == WATER][:, :bands]]
+            ys += [np.zeros(land.sum()), np.ones((lab == WATER).sum())]
+        return np.concatenate(xs).astype(np.float64), np.concatenate(ys)
+
+    scores = {}
+    for bands in (3, 4):
+        x_train, y_train = pixels(1, bands)
+        x_test, y_test = pixels(2, bands)
+        tree = DecisionTreeClassifier(min_samples_leaf=5, random_state=0).fit(x_train, y_train)
+        scores[bands] = balanced_accuracy_score(y_test, tree.predict(x_test))
+    assert scores[3] < 0.75 < 0.95 < scores[4], scores  # water absorbs near-infrared; shaded land still reflects it

@@ -77,7 +77,7 @@ def _ground(rng: np.random.Generator, h: int, w: int) -> np.ndarray:
     return base + tex[..., None] * np.array([14, 13, 11, 18], np.float32)
 
 
-def _textured(rng: np.random.Generator, where: np.ndarray, rgb: tuple[int, int, int], nir: float,
+def _textured(rng: np.random.Generator, where: np.ndarray, rgb: tuple[float, float, float], nir: float,
               tex: np.ndarray, amp_rgb: float, amp_nir: float) -> np.ndarray:
     """Pixel values (N×4) of a surface: base colour jittered per scene, modulated by a texture field."""
     base = np.array([*rgb, nir], np.float32) + rng.normal(0, 5, 4).astype(np.float32)
@@ -106,7 +106,8 @@ def _rivers_and_tracks(rng: np.random.Generator, img: np.ndarray, label: np.ndar
     inside, dist, which = _thick(h, w, curves, half)
     label[inside & (which < n_rivers)] = WATER
     water = label == WATER
-    img[water] = _textured(rng, water, (42, 60, 68), 14, _fractal(rng, h, w, 16, 2), 3, 3)
+    murk = (rng.uniform(40, 68), rng.uniform(52, 68), rng.uniform(56, 72))  # clear to silty: overlaps shade
+    img[water] = _textured(rng, water, murk, 14, _fractal(rng, h, w, 16, 2), 3, 3)
     track = inside & (which >= n_rivers) & ~water
     if track.any():
         colours = _built_colours(rng, n_rivers + n_tracks)
