@@ -206,11 +206,11 @@ def node_shapes(gm: fx.GraphModule, upto: fx.Node, bands: int, side: int) -> dic
             if isinstance(n.meta.get("tensor_meta"), TensorMetadata)}
 
 
-def input_bands(gm: fx.GraphModule) -> int:
-    """Input bands of a traced classifier: the channels of its first convolution."""
-    for m in gm.modules():
-        if isinstance(m, nn.Conv2d):
-            return m.in_channels
+def first_conv(gm: fx.GraphModule) -> tuple[str, nn.Conv2d]:
+    """Name and module of the first convolution a traced classifier applies (its input bands)."""
+    for node in gm.graph.nodes:
+        if node.op == "call_module" and isinstance(gm.get_submodule(node.target), nn.Conv2d):
+            return str(node.target), gm.get_submodule(node.target)
     raise ConvertError("the classifier has no Conv2d layer: cannot tell its input bands")
 
 
@@ -241,7 +241,7 @@ def plan(module: nn.Module, native_size: int, *, global_pool: str = "auto") -> P
         raise ConvertError(f"native_size: expected a positive whole number of pixels, got {native_size!r}")
     gm = trace(module)
     head = _read_head(gm)
-    bands = input_bands(gm)
+    bands = first_conv(gm)[1].in_channels
     small = node_shapes(gm, head.trunk, bands, native_size)
     large = node_shapes(gm, head.trunk, bands, 2 * native_size)
     shape = small.get(head.trunk.name)

@@ -30,6 +30,7 @@ from fcnkit.convert.dense import (
     build_dense,
     conv_head,
     cut_graph,
+    first_conv,
     keep_rows,
     offset,
     plan,
@@ -47,10 +48,11 @@ DENSE_KIND = "dense-classifier"  # model-file kind: a converted classifier's sco
 GROWN_KIND = "grown-segmenter"  # model-file kind: a segmenter grown from a classifier
 
 
-def _zero_score(like: nn.Conv2d, cin: int, classes: int) -> nn.Conv2d:
-    """A new score layer shaped like ``like`` with ``classes`` outputs, zero-initialised (Long et al. 2015
-    initialise their new score layers to zero)."""
-    new = nn.Conv2d(cin, classes, like.kernel_size, padding=like.padding, dilation=like.dilation)
+def _zero_score(cin: int, classes: int, like: nn.Conv2d | None = None) -> nn.Conv2d:
+    """A new score layer (1×1, or shaped like ``like``), zero-initialised as Long et al. 2015 initialise
+    their new score layers."""
+    shape = {"kernel_size": like.kernel_size, "padding": like.padding, "dilation": like.dilation} if like else {}
+    new = nn.Conv2d(cin, classes, **{"kernel_size": 1, **shape})
     nn.init.zeros_(new.weight)
     nn.init.zeros_(new.bias)
     return new
@@ -65,15 +67,13 @@ def _split_final(layers: list[nn.Module]) -> tuple[list[nn.Module], nn.Conv2d]:
 def _widen(gm: fx.GraphModule, bands: int) -> None:
     """Give the first convolution ``bands`` inputs; new bands start with the mean of the existing filters
     (common practice when adding bands to a pretrained net)."""
-    first = next(n for n in gm.graph.nodes if n.op == "call_module" and isinstance(gm.get_submodule(n.target),
-                                                                                   nn.Conv2d))
-    conv: nn.Conv2d = gm.get_submodule(first.target)
+    name, conv = first_conv(gm)
     if bands < conv.in_channels:
         raise ConvertError(f"bands: {bands} is fewer than the classifier's {conv.in_channels} input bands")
     if bands == conv.in_channels:
         return
     if conv.groups != 1:
-        raise ConvertError(f"bands: cannot widen the grouped first convolution {first.target}")
+        raise ConvertError(f"bands: cannot widen the grouped first convolution {name}")
     w = conv.weight.detach()
     extra = w.mean(dim=1, keepdim=True).expand(-1, bands - conv.in_channels, -1, -1)
     conv.in_channels = bands
@@ -141,9 +141,9 @@ def make_net(module: nn.Module, r: Recipe) -> AlignedNet:
     if r.bands is not None:
         _widen(trunk, r.bands)
     hidden, final = _split_final(conv_head(p, same=True))
-    score = keep_rows(final, r.keep) if r.keep is not None else _zero_score(final, final.in_channels, r.classes)
+    score = keep_rows(final, r.keep) if r.keep is not None else _zero_score(final.in_channels, r.classes, final)
     k = score.out_channels
-    skip_scores = [_zero_score(nn.Conv2d(1, 1, 1), p.small[t.name][1], k) for t in taps]
+    skip_scores = [_zero_score(p.small[t.name][1], k) for t in taps]
     ups, prev = [], s
     for t in skips:
         ups.append(BilinearUp(k, prev // t))
