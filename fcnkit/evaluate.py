@@ -30,7 +30,7 @@ from fcnkit.data.dataset import Sample, find_samples
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
 from fcnkit.data.raster import Raster, open_raster
 from fcnkit.describe import describe
-from fcnkit.errors import DataError
+from fcnkit.errors import ConfigError, DataError
 from fcnkit.export import check_destination, make_engine
 from fcnkit.losses import pixel_cross_entropy
 from fcnkit.metrics import confusion_matrix, segmentation_scores
@@ -203,6 +203,8 @@ def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path
     ``examples`` the number of worst-scoring images shown side by side.
     """
     data_dir = Path(data_dir)
+    if examples < 0:
+        raise ConfigError(f"examples: {examples} must be >= 0")
     for out in (json_path, report):
         if out is not None:
             check_destination(out, DataError)
