@@ -22,6 +22,7 @@ from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import quiet_tifffile
 from fcnkit.errors import DataError
+from fcnkit.memory import available_memory
 
 DEFAULT_MAX_PIXELS = 2**27
 """134 MP (e.g. 11585×11585): a 10k×10k labelled image fits; larger files need an explicit ``max_pixels``."""
@@ -219,9 +220,13 @@ class _open_tiff:
 
 def _tiff_layout(path: Path, tif: tifffile.TiffFile) -> tuple[tuple[int, int, int], str]:
     """((H, W, bands), axes) of the first series; every axis other than Y and X counts as bands."""
-    if not tif.series:
+    try:
+        with quiet_tifffile():
+            series = tif.series[0] if tif.series else None
+    except Exception as e:  # tifffile's series detection raises several types on damaged headers
+        raise DataError(f"{path}: corrupt TIFF header ({_reason(e)})") from None
+    if series is None:
         raise DataError(f"{path}: TIFF holds no image")
-    series = tif.series[0]
     axes, shape = series.axes, series.shape
     if "Y" not in axes or "X" not in axes:
         raise DataError(f"{path}: TIFF axes {axes!r} have no Y and X (expected a 2-D image with bands)")
@@ -237,10 +242,17 @@ def _read_tiff(path: Path, max_pixels: int | None) -> np.ndarray:
         if max_pixels is not None and h * w > max_pixels:
             raise _limit_error(path, h * w, max_pixels)
         _check_tiff_extent(path, tif)
+        need, free = h * w * bands * tif.series[0].dtype.itemsize, available_memory()
+        if need > free:
+            raise DataError(f"{path}: decoding it needs {need / 2**30:.1f} GiB but {free / 2**30:.1f} GiB of memory "
+                            f"is available ({h}x{w} px, {bands} bands)")
         try:
-            arr = tif.series[0].asarray()
+            with quiet_tifffile():
+                arr = tif.series[0].asarray()
         except Exception as e:  # corrupt segments: tifffile raises several types
             raise DataError(f"{path}: corrupt or truncated TIFF ({_reason(e)})") from None
+    if arr.ndim != len(axes) or arr.size != h * w * bands:  # tifffile returns what it could decode
+        raise DataError(f"{path}: corrupt TIFF (decoded {arr.size} values, its header describes {h * w * bands})")
     order = [axes.index("Y"), axes.index("X")] + [i for i, a in enumerate(axes) if a not in "YX"]
     arr = np.ascontiguousarray(np.transpose(arr, order).reshape(h, w, bands))
     return _supported_dtype(path, arr)

@@ -20,7 +20,6 @@ import contextlib
 import logging
 import math
 import os
-import struct
 from collections import OrderedDict
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
@@ -149,7 +148,7 @@ class TiffRaster:
         try:
             with quiet_tifffile():
                 self._tif = tifffile.TiffFile(self.path)
-        except (tifffile.TiffFileError, ValueError, IndexError, EOFError, struct.error) as e:
+        except Exception as e:  # tifffile raises TiffFileError, ValueError, TypeError, struct.error… on damage
             raise DataError(f"{self.path}: not a readable TIFF ({_one_line(e)})") from None
         try:
             if not len(self._tif.pages):
@@ -176,6 +175,9 @@ class TiffRaster:
         self.page, self.shape, self.dtype = page, (height, width, sep * contig), np.dtype(page.dtype)
         self.geo = read_geotags(page)
         size = os.path.getsize(self.path)
+        if len(page.dataoffsets) != len(page.databytecounts):
+            raise DataError(f"{self.path}: corrupt TIFF ({len(page.dataoffsets)} segment offsets but "
+                            f"{len(page.databytecounts)} segment sizes)")
         ends = [o + n for o, n in zip(page.dataoffsets, page.databytecounts, strict=True)]
         if not ends or max(ends) > size or 0 in page.databytecounts:
             raise DataError(f"{self.path}: truncated TIFF (image data ends at byte {max(ends, default=0):,}, "
