@@ -58,7 +58,7 @@ def random_net(config: str) -> torch.nn.Module:
     return net
 
 
-def speed(config: str, side: int, repeats: int, peak: float) -> dict:
+def speed(config: str, side: int, repeats: int, peak: float, tile: int = 512, batch: int = 4) -> dict:
     net = random_net(config)
     bands = net.bands
     img = np.random.default_rng(0).integers(0, 255, (side, side, bands), dtype=np.uint8)
@@ -76,19 +76,20 @@ def speed(config: str, side: int, repeats: int, peak: float) -> dict:
         cl_engine(x_cl)
 
     def tiled(bf16=False):
-        return lambda: predict_scores(net, img, bf16=bf16)
+        return lambda: predict_scores(net, img, tile=tile, batch=batch, bf16=bf16)
 
     t_naive = best_of(naive, repeats)
     t_cl = best_of(whole_cl, repeats)
     t_tiled = best_of(tiled(), repeats)
     t_bf16 = best_of(tiled(True), repeats)
-    agree = float((predict_scores(net, img).argmax(0) == predict_scores(net, img, bf16=True).argmax(0)).mean())
+    agree = float((tiled()().argmax(0) == tiled(True)().argmax(0)).mean())
     graph = layer_graph(net)
     useful = 2 * macs(graph, side, side)
-    plan = plan_tiles(net_geometry(net), side, side)
+    plan = plan_tiles(net_geometry(net), side, side, tile=tile)
     executed = 2 * sum(macs(graph, *t.shape) for t in plan.tiles())
     return {
-        "config": config, "image": f"{side}x{side}x{bands}", "tiles": len(plan.tiles()), "overlap": plan.overlap,
+        "config": config, "image": f"{side}x{side}x{bands}", "tile": tile, "batch": batch, "tiles": len(plan.tiles()),
+        "overlap": plan.overlap,
         "naive_mp_s": mp / t_naive, "whole_cl_mp_s": mp / t_cl, "tiled_mp_s": mp / t_tiled,
         "tiled_over_naive": t_naive / t_tiled, "tiled_over_whole_cl": t_cl / t_tiled,
         "useful_flops_over_peak": useful / t_tiled / peak, "executed_flops_over_peak": executed / t_tiled / peak,
@@ -124,6 +125,7 @@ def main() -> None:
     ap.add_argument("--quick", action="store_true", help="small sizes, one repeat (a smoke run)")
     ap.add_argument("--mosaic-side", type=int, default=16384)
     ap.add_argument("--out", default=None, help="folder for mosaics and outputs (default: a temporary folder)")
+    ap.add_argument("--speed-only", action="store_true", help="skip the scaling and large-mosaic runs")
     args = ap.parse_args()
     from fcnkit.data.scenes import write_mosaic
 
@@ -134,14 +136,18 @@ def main() -> None:
           "work, so absolute speeds are noisy; ratios are taken within this run")
     peak = matmul_peak()
     print(f"float32 matmul peak (torch.mm 2048^3): {peak / 1e9:.1f} GFLOP/s")
-    for config in ("configs/demo.toml", "configs/fcn8s.toml"):
-        r = speed(config, side, repeats, peak)
+    for config, tile, batch in (("configs/demo.toml", 512, 4), ("configs/fcn8s.toml", 512, 4),
+                                ("configs/fcn8s.toml", 1024, 1)):
+        r = speed(config, side, repeats, peak, tile, batch)
         print(json.dumps(r))
-        print(f"  {config}: tiled {r['tiled_mp_s']:.2f} MP/s | tiled/naive NCHW {r['tiled_over_naive']:.2f} "
-              f"(target >= 2.5) | tiled/whole channels_last {r['tiled_over_whole_cl']:.2f} (target >= 0.9) | "
+        print(f"  {config} tile {tile} batch {batch}: tiled {r['tiled_mp_s']:.2f} MP/s | tiled/naive NCHW "
+              f"{r['tiled_over_naive']:.2f} (target >= 2.5) | tiled/whole channels_last "
+              f"{r['tiled_over_whole_cl']:.2f} (target >= 0.9) | "
               f"useful FLOP/s / peak {r['useful_flops_over_peak']:.2f} (target >= 0.5; executed incl. overlap "
               f"{r['executed_flops_over_peak']:.2f}) | bf16 speed-up {r['bf16_speedup']:.2f}")
 
+    if args.speed_only:
+        return
     work = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="bench-tiling-"))
     work.mkdir(parents=True, exist_ok=True)
     per_mp = []

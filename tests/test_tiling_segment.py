@@ -196,7 +196,7 @@ segment_image(sys.argv[1], sys.argv[2], sys.argv[3], tile=64, batch=1, progress=
 def test_killed_run_leaves_no_file_under_a_final_name(tmp_path):
     # SIGKILL (no clean-up possible) while the outputs are being written: nothing may appear under a final name.
     model = _model_file(tmp_path)
-    _geotiff(tmp_path / "big.tif", 900, 900)
+    _geotiff(tmp_path / "big.tif", 600, 600)
     out = tmp_path / "out"
     proc = subprocess.Popen([sys.executable, "-c", KILL_RUN, str(model), str(tmp_path / "big.tif"), str(out)],
                             env={**os.environ, "OMP_NUM_THREADS": "1"})
@@ -214,4 +214,4 @@ def test_killed_run_leaves_no_file_under_a_final_name(tmp_path):
         if proc.poll() is None:
             proc.kill()
     assert _visible(out) == []
-    assert TiffRaster(tmp_path / "big.tif", None).shape == (900, 900, 4)  # the input is untouched
+    assert TiffRaster(tmp_path / "big.tif", None).shape == (600, 600, 4)  # the input is untouched
