@@ -72,7 +72,7 @@ def train(cfg: Config, data_dir: str | Path, out_dir: str | Path, *, resume: boo
           init: str | Path | None = None, progress: bool = True) -> TrainResult:
     """Train ``cfg``'s net (or the model file ``init``, whose architecture and weights then replace
     cfg.model) on the dataset folder ``data_dir``, writing the run to ``out_dir``."""
-    group = parallel.start()
+    group, threads = parallel.start(), torch.get_num_threads()
     try:
         if cfg.train.threads:
             torch.set_num_threads(cfg.train.threads)
@@ -80,6 +80,7 @@ def train(cfg: Config, data_dir: str | Path, out_dir: str | Path, *, resume: boo
         with _StopRequest() as stop:
             return _loop(run, stop, progress)
     finally:
+        torch.set_num_threads(threads)
         parallel.finish(group)
 
 

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 import torch
 from safetensors import safe_open
+from tiny_train import TINY, tiny
 
 from fcnkit import ConfigError, ModelFileError, load_model, train
 from fcnkit.cli import main
@@ -18,13 +19,6 @@ from fcnkit.data.scenes import make_scenes
 from fcnkit.evaluate import evaluate_images
 from fcnkit.metrics import segmentation_scores
 from fcnkit.train import split_samples
-
-TINY = {  # 4 bands (R, G, B, NIR) and the 5 scene classes; two stages, so a few seconds per run
-    "model": {"bands": 4, "classes": 5, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
-              "min_size": 16},
-    "train": {"epochs": 2, "batch": 4, "patch": 32, "patches_per_epoch": 16, "lr": 5e-3, "warmup": 1,
-              "val_fraction": 0.34, "threads": 1, "class_weights": "median", "dice": 0.5},
-}
 
 
 @pytest.fixture(scope="module")
@@ -84,9 +78,9 @@ def test_run_folder_model_and_metrics(scenes, tmp_path):
 
 
 def test_sgd_poly_bf16_nchw_and_no_validation(scenes, tmp_path):
-    t = {**TINY["train"], "optimizer": "sgd", "schedule": "poly", "bf16": True, "channels_last": False,
-         "val_fraction": 0.0, "class_weights": "none", "dice": 0.0, "epochs": 1}
-    result = train(config_from_dict({**TINY, "train": t}), scenes, tmp_path / "run", progress=False)
+    t = {"optimizer": "sgd", "schedule": "poly", "bf16": True, "channels_last": False, "val_fraction": 0.0,
+         "class_weights": "none", "dice": 0.0, "epochs": 1}
+    result = train(config_from_dict(tiny(train=t)), scenes, tmp_path / "run", progress=False)
     assert math.isnan(result.best_miou) and result.best_epoch == 1
     assert load_model(tmp_path / "run" / "model.safetensors").meta.extra["epoch"] == 1
 
@@ -129,10 +123,8 @@ def test_cli_errors_are_one_line(scenes, tmp_path, capsys):
 
 
 def test_init_fine_tunes_a_model_file(scenes, tmp_path):
-    cfg = config_from_dict({**TINY, "train": {**TINY["train"], "epochs": 1}})
-    first = train(cfg, scenes, tmp_path / "a", progress=False)
-    other = config_from_dict({**TINY, "model": {**TINY["model"], "widths": [4, 4]},
-                              "train": {**TINY["train"], "epochs": 1, "lr": 1e-9, "warmup": 0}})
+    first = train(config_from_dict(tiny(train={"epochs": 1})), scenes, tmp_path / "a", progress=False)
+    other = config_from_dict(tiny(model={"widths": [4, 4]}, train={"epochs": 1, "lr": 1e-9, "warmup": 0}))
     second = train(other, scenes, tmp_path / "b", init=first.model_path, progress=False)
     a, b = load_model(first.model_path), load_model(second.model_path)
     assert b.meta.config["model"]["widths"] == [8, 16]  # the init file's net replaced [model]

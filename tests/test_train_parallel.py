@@ -5,6 +5,7 @@ import subprocess
 import sys
 
 import pytest
+from tiny_train import tiny, write_toml
 
 from fcnkit import load_model
 from fcnkit.data.dataset import find_samples
@@ -14,31 +15,11 @@ from fcnkit.evaluate import evaluate_images
 from fcnkit.metrics import segmentation_scores
 from fcnkit.train import split_samples
 
-CONFIG = """
-[model]
-bands = 4
-classes = 5
-widths = [8, 16]
-blocks = [1, 1]
-head = [16]
-fusion = "sum"
-min_size = 16
-
-[train]
-epochs = 2
-batch = 4
-patch = 32
-patches_per_epoch = 16
-lr = 0.005
-val_fraction = 0.5
-threads = 1
-"""
-
 
 def test_two_processes_train_and_reduce_metrics(tmp_path):
     data = make_scenes(tmp_path / "data", count=4, size=48, seed=5)
     cfg = tmp_path / "cfg.toml"
-    cfg.write_text(CONFIG)
+    write_toml(cfg, tiny(train={"val_fraction": 0.5, "class_weights": "none", "dice": 0.0}))
     out = tmp_path / "run"
     # `torchrun --standalone --nproc_per_node=2 -m fcnkit train ...` (torchrun is torch.distributed.run)
     proc = subprocess.run([sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc_per_node=2",
