@@ -194,6 +194,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
                             px_s=f"{p['pixels'] * g.world / (time.perf_counter() - tic):.3g}")
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
+                bar.close()
                 _interrupt(run)
         bar.close()
         _end_epoch(run, lr, time.perf_counter() - tic)

@@ -131,3 +131,17 @@ def test_init_fine_tunes_a_model_file(scenes, tmp_path):
     assert b.meta.mean == a.meta.mean and b.meta.extra["init"] == str(first.model_path)
     conv = "body.encoder.stages.0.0.0.weight"
     assert np.allclose(a.model.state_dict()[conv], b.model.state_dict()[conv], atol=1e-6)  # lr ≈ 0
+
+
+def test_early_stopping_keeps_the_best_epoch(scenes, tmp_path, monkeypatch):
+    tr = importlib.import_module("fcnkit.train")
+    scripted = iter([0.5, 0.6, 0.55, 0.52, 0.7, 0.8])  # validation mIoU per epoch, as if measured
+    real = tr.segmentation_scores
+    monkeypatch.setattr(tr, "segmentation_scores", lambda cm: {**real(cm), "mean_iou": next(scripted)})
+    cfg = config_from_dict(tiny(train={"epochs": 6, "patience": 2}))
+    result = train(cfg, scenes, tmp_path / "run", progress=False)
+    # epochs 3 and 4 do not beat epoch 2: patience 2 stops the run there
+    assert (result.epochs, result.best_epoch, result.best_miou, result.stopped_early) == (4, 2, 0.6, True)
+    assert load_model(result.model_path).meta.extra == {"epoch": 2, "val_mean_iou": 0.6}
+    again = train(cfg, scenes, tmp_path / "run", resume=True, progress=False)  # a stopped run stays stopped
+    assert again.epochs == 4
