@@ -236,3 +236,44 @@ def test_tiled_inference_equals_whole_image_map(padded: bool) -> None:
         whole = torch.softmax(conv.net(x), dim=1)[0].numpy()
     assert scores.shape == (3, 150, 170)
     np.testing.assert_allclose(scores, whole, atol=1e-5)
+
+
+class _FunctionalNet(nn.Module):
+    """A user classifier written with functional calls and a chosen way of flattening."""
+
+    def __init__(self, flatten: str, ceil_mode: bool = False) -> None:
+        super().__init__()
+        self.conv = nn.Conv2d(3, 8, 3, padding=1)
+        self.fc1, self.fc2 = nn.Linear(8 * 8 * 8, 16), nn.Linear(16, 3)
+        self.flatten, self.ceil_mode = flatten, ceil_mode
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        if self.flatten == "view":
+            x = torch.nn.functional.max_pool2d(torch.relu(self.conv(x)), 2, ceil_mode=self.ceil_mode)
+        else:
+            x = torch.nn.functional.avg_pool2d(torch.relu(self.conv(x)), kernel_size=2)
+        if self.flatten == "view":
+            x = x.view(x.size(0), -1)
+        elif self.flatten == "method":
+            x = x.flatten(start_dim=1)
+        else:
+            x = torch.flatten(x, 1)
+        x = torch.nn.functional.dropout(torch.nn.functional.relu(self.fc1(x)), 0.2, self.training)
+        return self.fc2(x)
+
+
+@pytest.mark.parametrize("flatten", ["view", "method", "function"])
+def test_functional_flatten_pooling_and_activations(flatten: str) -> None:
+    """Functional max/avg pooling, three ways of flattening, functional ReLU and dropout; the output side at
+    40 px follows the PyTorch Conv2d/MaxPool2d size formula: pool 2 → 20, then the 8×8 kernel → 13."""
+    conv = convert_classifier(lively(_FunctionalNet(flatten)), 16, sizes=(40,))
+    cert = conv.certificate
+    assert cert.passed and cert.max_abs_logit > 0.05 and cert.stride == 2 and cert.receptive_field == 16 + 2
+    with torch.no_grad():
+        assert conv.dense(torch.zeros(1, 3, 40, 40)).shape[-1] == cert.output_sides[40] == 13
+
+
+def test_layer_the_geometry_reader_cannot_model_is_refused() -> None:
+    with pytest.raises(ConvertError, match="ceil_mode") as e:
+        convert_classifier(lively(_FunctionalNet("view", ceil_mode=True)), 16)
+    assert "\n" not in str(e.value)

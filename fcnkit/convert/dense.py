@@ -76,7 +76,8 @@ def _as_flatten(node: fx.Node, modules: dict[str, nn.Module]) -> tuple[bool, boo
     if node.op == "call_method" and node.target in _FLATTEN_METHODS:
         args = node.args[1:]
         if node.target == "flatten":
-            return (args[:1] == (1,) and len(args) == 1), False
+            start = args[0] if args else node.kwargs.get("start_dim", 0)
+            return (start == 1 and len(args) <= 1 and "end_dim" not in node.kwargs), False
         return (len(args) == 2 and args[1] == -1), False
     is_mean = (node.op == "call_method" and node.target == "mean") or \
         (node.op == "call_function" and node.target is torch.mean)
@@ -473,7 +474,10 @@ def certify(module: nn.Module, dense: DenseClassifier, p: Plan, sizes: tuple[int
             raise ConvertError(f"the converted net gives a {out.shape[-2]}x{out.shape[-1]} map at the native size, "
                                f"expected 1x1")
         got, compared = out[..., 0, 0], "the 1x1 map"
-    graph = layer_graph(dense)
+    try:
+        graph = layer_graph(dense)
+    except ValueError as e:  # a layer the geometry reader does not model (e.g. ceil-mode pooling)
+        raise ConvertError(f"cannot read the converted net's geometry: {e}") from None
     local = geometry.is_local(graph)
     return Certificate(
         native_size=p.native_size, form=p.form, compared=compared,

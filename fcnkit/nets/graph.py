@@ -25,6 +25,11 @@ _POINTWISE_FUNCTIONS = {
     F.relu, F.relu6, F.leaky_relu, F.gelu, F.silu, F.hardswish, F.hardsigmoid, F.dropout, F.dropout2d,
     torch.relu, torch.sigmoid, torch.tanh, operator.mul, operator.truediv, operator.sub, torch.mul,
 }
+# positional parameters after the input, as in torch.nn.functional
+_POOL_FUNCTIONS = {
+    F.max_pool2d: ("kernel_size", "stride", "padding", "dilation", "ceil_mode"),
+    F.avg_pool2d: ("kernel_size", "stride", "padding", "ceil_mode"),
+}
 _GLOBAL_MODULES = (
     nn.AdaptiveAvgPool2d, nn.AdaptiveMaxPool2d, nn.GroupNorm, nn.InstanceNorm2d, nn.LayerNorm,
     nn.MultiheadAttention, nn.Flatten, nn.Linear,
@@ -145,6 +150,19 @@ def _node_layer(node: fx.Node, modules: dict[str, nn.Module], inputs: tuple[str,
         if dim not in (1, -3):
             raise ValueError(f"{name}: concatenation along dim {dim} is not supported")
         return Layer(name, "concat", inputs)
+    if target in _POOL_FUNCTIONS:  # F.max_pool2d / F.avg_pool2d, read like their modules
+        names = _POOL_FUNCTIONS[target]
+
+        def arg(key: str, default: object) -> object:
+            i = names.index(key) + 1 if key in names else len(node.args)
+            return node.args[i] if len(node.args) > i else node.kwargs.get(key, default)
+
+        if arg("ceil_mode", False):
+            raise ValueError(f"{name}: pooling with ceil_mode=True is not supported")
+        kernel = arg("kernel_size", 1)
+        stride = arg("stride", None) or kernel
+        return Layer(name, "pool", inputs, _pair(kernel, "kernel", name), _pair(stride, "stride", name),
+                     _pair(arg("padding", 0), "padding", name), _pair(arg("dilation", 1), "dilation", name))
     if target is F.interpolate:
         mode = node.kwargs.get("mode", "nearest")
         sf = node.kwargs.get("scale_factor")
