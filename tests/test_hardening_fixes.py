@@ -15,7 +15,7 @@ from fcnkit.config import config_from_dict
 from fcnkit.data.imageio import read_image
 from fcnkit.data.raster import TiffRaster
 from fcnkit.errors import ConfigError, DataError, FcnkitError
-from fcnkit.memory import available_memory, check_forward_memory, forward_bytes, parse_size
+from fcnkit.memory import available_memory, check_forward_memory, forward_bytes, parse_size, peak_bytes
 from fcnkit.nets import build_model, layer_graph
 from fcnkit.tiling import find_images, segment_image
 
@@ -121,12 +121,12 @@ def test_forward_estimate_scales_with_batch_and_tile_area():
 
 def test_a_setting_beyond_memory_is_refused_with_a_batch_or_tile_that_fits():
     graph = layer_graph(build_model(config_from_dict({"model": NETS["sum"]})))
-    one = forward_bytes(graph, 256, 256, 1, 3)
+    one = peak_bytes(graph, 256, 256, 1, 3)
     with pytest.raises(ConfigError, match=r"tile/batch: 8 tiles of 256x256 px .* use batch 3 \(--batch 3\)"):
         check_forward_memory(graph, 256, 256, 8, 3, factor=4, available=3 * one + 1)
     with pytest.raises(ConfigError, match=r"use tile 128 with batch 1 \(--tile 128 --batch 1\)"):
         check_forward_memory(graph, 256, 256, 8, 3, factor=4, available=one // 2)
-    assert check_forward_memory(graph, 256, 256, 8, 3, available=8 * one) == 8 * one
+    assert check_forward_memory(graph, 256, 256, 8, 3, available=8 * one) == peak_bytes(graph, 256, 256, 8, 3)
 
 
 def test_available_memory_reads_meminfo_and_honours_the_cap(monkeypatch):
