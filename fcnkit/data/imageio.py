@@ -9,8 +9,10 @@ names the file.
 
 from __future__ import annotations
 
+import contextlib
 import threading
 import warnings
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -150,36 +152,30 @@ def _limit_error(path: Path, pixels: int, max_pixels: int) -> DataError:
                      "(raise it with max_pixels= or --max-pixels if the file is trusted)")
 
 
-class _open_pillow:
+@contextlib.contextmanager
+def _open_pillow(path: Path, max_pixels: int | None) -> Iterator[Image.Image]:
     """Open with Pillow under a pixel limit; the decompression-bomb guard stays on (raised, never removed)."""
-
-    def __init__(self, path: Path, max_pixels: int | None) -> None:
-        self.path, self.max_pixels = path, max_pixels
-
-    def __enter__(self) -> Image.Image:
-        with _PIL_LOCK, warnings.catch_warnings():
-            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
-            saved = Image.MAX_IMAGE_PIXELS
-            if self.max_pixels is not None and saved is not None and self.max_pixels > saved:
-                Image.MAX_IMAGE_PIXELS = self.max_pixels
-            try:
-                self.im = Image.open(self.path)
-            except Image.DecompressionBombError:  # above twice Pillow's limit, hence above ours too
-                limit = self.max_pixels if self.max_pixels is not None else 2 * (saved or 0)
-                raise DataError(f"{self.path}: more pixels than the limit of {limit} "
-                                "(raise it with max_pixels= or --max-pixels if the file is trusted)") from None
-            except (OSError, SyntaxError, ValueError) as e:
-                raise DataError(f"{self.path}: not a readable image ({_reason(e)})") from None
-            finally:
-                Image.MAX_IMAGE_PIXELS = saved
-        pixels = self.im.width * self.im.height
-        if self.max_pixels is not None and pixels > self.max_pixels:
-            self.im.close()
-            raise _limit_error(self.path, pixels, self.max_pixels)
-        return self.im
-
-    def __exit__(self, *exc: object) -> None:
-        self.im.close()
+    with _PIL_LOCK, warnings.catch_warnings():
+        warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+        saved = Image.MAX_IMAGE_PIXELS
+        if max_pixels is not None and saved is not None and max_pixels > saved:
+            Image.MAX_IMAGE_PIXELS = max_pixels
+        try:
+            im = Image.open(path)
+        except Image.DecompressionBombError:  # above twice Pillow's limit, hence above ours too
+            limit = max_pixels if max_pixels is not None else 2 * (saved or 0)
+            raise DataError(f"{path}: more pixels than the limit of {limit} "
+                            "(raise it with max_pixels= or --max-pixels if the file is trusted)") from None
+        except (OSError, SyntaxError, ValueError) as e:
+            raise DataError(f"{path}: not a readable image ({_reason(e)})") from None
+        finally:
+            Image.MAX_IMAGE_PIXELS = saved
+    try:
+        if max_pixels is not None and im.width * im.height > max_pixels:
+            raise _limit_error(path, im.width * im.height, max_pixels)
+        yield im
+    finally:
+        im.close()
 
 
 def _decode_pillow(path: Path, im: Image.Image) -> np.ndarray:
@@ -202,20 +198,17 @@ def _reason(e: BaseException) -> str:
     return str(e).splitlines()[0] if str(e) else type(e).__name__
 
 
-class _open_tiff:
-    def __init__(self, path: Path) -> None:
-        self.path = path
-
-    def __enter__(self) -> tifffile.TiffFile:
-        try:
-            with quiet_tifffile():
-                self.tif = tifffile.TiffFile(self.path)
-        except Exception as e:  # tifffile raises TiffFileError, ValueError, struct.error… on garbage
-            raise DataError(f"{self.path}: not a readable TIFF ({_reason(e)})") from None
-        return self.tif
-
-    def __exit__(self, *exc: object) -> None:
-        self.tif.close()
+@contextlib.contextmanager
+def _open_tiff(path: Path) -> Iterator[tifffile.TiffFile]:
+    try:
+        with quiet_tifffile():
+            tif = tifffile.TiffFile(path)
+    except Exception as e:  # tifffile raises TiffFileError, ValueError, struct.error… on garbage
+        raise DataError(f"{path}: not a readable TIFF ({_reason(e)})") from None
+    try:
+        yield tif
+    finally:
+        tif.close()
 
 
 def _tiff_layout(path: Path, tif: tifffile.TiffFile) -> tuple[tuple[int, int, int], str]:
