@@ -128,5 +128,6 @@ def check_forward_memory(graph: Sequence[Layer], height: int, width: int, batch:
                    "free memory or use a smaller net"
         else:
             hint = f"use tile {side} with batch 1 (--tile {side} --batch 1)"
-    raise ConfigError(f"tile/batch: {batch} tiles of {height}x{width} px need about {_gib(need)} of memory for "
+    tiles = f"{batch} tiles of {height}x{width} px need" if batch > 1 else f"one tile of {height}x{width} px needs"
+    raise ConfigError(f"tile/batch: {tiles} about {_gib(need)} of memory for "
                       f"the forward pass, more than the {_gib(available)} available; {hint}")

@@ -1025,7 +1025,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("segment: --tile and --batch beyond available memory", "segment", "--batch", "memory")
 def _(ws: Workspace, folder: Path) -> Call:
     call = _segment(ws, folder, write_tiff(folder / "big.tif", np.zeros((512, 512, 3), np.uint8)),
-                    extra=("--tile", 512, "--batch", 64))
+                    extra=("--tile", 128, "--batch", 64))
     call.env = {"FCNKIT_MAX_MEMORY": "8M"}  # a small machine: the cap stands in for little free memory
     return call
 
