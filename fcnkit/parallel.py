@@ -50,6 +50,15 @@ def share_buffers(group: Group, module: torch.nn.Module) -> None:
             dist.broadcast(buf, src=0)
 
 
+def gather(group: Group, value: torch.Tensor) -> list[torch.Tensor]:
+    """Every process's ``value`` (same shape and dtype everywhere), in rank order."""
+    if group.world == 1:
+        return [value]
+    out = [torch.empty_like(value) for _ in range(group.world)]
+    dist.all_gather(out, value.contiguous())
+    return out
+
+
 def all_sum(group: Group, values: torch.Tensor) -> torch.Tensor:
     """Element-wise sum over all processes (float64 so pixel counts stay exact)."""
     values = values.detach().to(torch.float64).clone()

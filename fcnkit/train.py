@@ -151,12 +151,15 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
         model.load_state_dict(state["model"])
         opt.load_state_dict(state["optimizer"])
         runstate.set_rng_states(state["rng"])
+        if len(state.get("torch_rng_by_rank", [])) == group.world:  # each process's own dropout stream
+            torch.set_rng_state(state["torch_rng_by_rank"][group.rank])
         p = state["progress"]
     net = DistributedDataParallel(model) if group.world > 1 else model
     run = _Run(cfg, run_dir, group, model, net, opt, meta, patches, val_x, val_y, bool(val_s), weight,
                _context_margin(model), math.ceil(per_rank / t.batch), p)
-    if state is None and group.main:
-        run_dir.mkdir(parents=True, exist_ok=True)
+    if state is None:
+        if group.main:
+            run_dir.mkdir(parents=True, exist_ok=True)
         _save_resume(run)  # a run folder always holds a resume point, from the first moment
     return run
 
@@ -237,8 +240,8 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     else:
         p["bad_epochs"] += 1
         p["stopped_early"] = bool(t.patience) and p["bad_epochs"] >= t.patience
+    _save_resume(run)
     if g.main:
-        _save_resume(run)
         runstate.write_metrics(run.run_dir / "metrics.csv", p["history"])
 
 
@@ -302,15 +305,17 @@ def _batches(run: _Run, epoch: int, skip: int) -> DataLoader:
 
 
 def _save_resume(run: _Run) -> None:
-    runstate.save_resume(run.run_dir / runstate.RESUME_FILE, {
-        "config_hash": runstate.config_hash(run.meta.config), "config": json.dumps(run.meta.config),
-        "model": run.model.state_dict(), "optimizer": run.opt.state_dict(), "rng": runstate.rng_states(),
-        "progress": run.p})
+    """Write the resume point (rank 0; every process takes part, as each one's torch RNG state is kept)."""
+    torch_by_rank = parallel.gather(run.group, torch.get_rng_state())
+    if run.group.main:
+        runstate.save_resume(run.run_dir / runstate.RESUME_FILE, {
+            "config_hash": runstate.config_hash(run.meta.config), "config": json.dumps(run.meta.config),
+            "model": run.model.state_dict(), "optimizer": run.opt.state_dict(), "rng": runstate.rng_states(),
+            "torch_rng_by_rank": torch_by_rank, "progress": run.p})
 
 
 def _interrupt(run: _Run) -> None:
-    if run.group.main:
-        _save_resume(run)
+    _save_resume(run)
     raise TrainingInterrupted(f"interrupted; resume point saved to {run.run_dir / runstate.RESUME_FILE}, "
                               "continue with --resume")
 
