@@ -277,3 +277,23 @@ def test_layer_the_geometry_reader_cannot_model_is_refused() -> None:
     with pytest.raises(ConvertError, match="ceil_mode") as e:
         convert_classifier(lively(_FunctionalNet("view", ceil_mode=True)), 16)
     assert "\n" not in str(e.value)
+
+
+@pytest.mark.parametrize("pool", [nn.AdaptiveAvgPool2d(1), nn.AdaptiveMaxPool2d(1)])
+def test_global_pool_with_nonlinear_head_slides(pool: nn.Module) -> None:
+    """A global pool followed by a non-affine head (or a global max) cannot be commuted: it becomes a sliding
+    pool of the native feature size, and each output is the classifier on one native window (OverFeat)."""
+    torch.manual_seed(4)
+    module = lively(nn.Sequential(nn.Conv2d(3, 6, 3), nn.ReLU(), nn.MaxPool2d(2), pool, nn.Flatten(),
+                                  nn.Linear(6, 8), nn.Hardswish(), nn.Linear(8, 3)))
+    with pytest.raises(ConvertError, match="needs global_pool='window'"):
+        convert_classifier(module, 18, global_pool="cam")
+    conv = convert_classifier(module, 18)
+    assert conv.certificate.form == "window" and conv.certificate.passed
+    x = torch.randn(1, 3, 26, 30)
+    with torch.no_grad():
+        dense = conv.dense(x)
+        assert dense.shape[-2:] == (5, 7)  # (26 - 18)/2 + 1, (30 - 18)/2 + 1
+        for i, j in ((0, 0), (4, 6), (2, 3)):
+            torch.testing.assert_close(dense[..., i, j], module(x[..., 2 * i:2 * i + 18, 2 * j:2 * j + 18]),
+                                       atol=1e-5, rtol=0)
