@@ -2,9 +2,12 @@
 
 Training killed anywhere and continued with ``--resume`` must end bit-identical to an uninterrupted run
 (single thread, torch.use_deterministic_algorithms, fixed seeds); tiled inference killed anywhere must leave
-no output under a final name that differs from a complete run's, and a rerun must succeed. The kill points
-are drawn from a seeded generator, as fractions of the uninterrupted run's duration, so the test is
-reproducible in what it asks even though timing on a shared machine decides where each kill lands.
+no output under a final name that differs from a complete run's, and a rerun must succeed.
+
+The kill points are reproducible and independent of the machine's load: a seeded generator picks a step of the
+run (a training batch's loss, a tile batch's forward pass) and a delay of up to a few tens of milliseconds
+after it; when the run reaches that step it starts a timer that sends the signal to its own process, so the
+signal lands mid-step, between steps, during validation or while files are written.
 
 Each run is a process forked from a multiprocessing fork server that has imported torch and fcnkit once
 (no parallel region has run in it, so forking is safe), so a trial costs the run itself, not interpreter
@@ -13,11 +16,12 @@ and torch start-up.
 
 from __future__ import annotations
 
+import importlib
 import multiprocessing
 import os
 import signal
 import sys
-import time
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -56,8 +60,11 @@ def _context() -> multiprocessing.context.BaseContext:
     return ctx
 
 
-def _child(argv: list[str], log: str) -> None:
-    """Run the CLI with stderr going to ``log`` (stdout to ``log``.out); exit with its status."""
+def _child(argv: list[str], log: str, hook: tuple | None) -> None:
+    """Run the CLI with stderr going to ``log`` (stdout to ``log``.out); exit with its status.
+
+    ``hook`` = (function path, n, delay, signal): the n-th call of that function starts a timer that sends
+    ``signal`` to this process after ``delay`` seconds; n = 0 counts the calls into ``log``.calls instead."""
     os.dup2(os.open(log + ".out", os.O_WRONLY | os.O_CREAT | os.O_TRUNC), 1)
     os.dup2(os.open(log, os.O_WRONLY | os.O_CREAT | os.O_TRUNC), 2)
     sys.stdout = open(1, "w", closefd=False)  # noqa: SIM115
@@ -65,9 +72,24 @@ def _child(argv: list[str], log: str) -> None:
     signal.signal(signal.SIGINT, signal.default_int_handler)
     torch.set_num_threads(1)
     torch.use_deterministic_algorithms(True)
+    calls = [0]
+    if hook is not None:
+        target, at, delay, sig = hook
+        module_name, name = target.rsplit(".", 1)
+        module = importlib.import_module(module_name)
+        real = getattr(module, name)
+
+        def counted(*args, **kwargs):
+            calls[0] += 1
+            if calls[0] == at:
+                threading.Timer(delay, os.kill, (os.getpid(), sig)).start()
+            return real(*args, **kwargs)
+
+        setattr(module, name, counted)
     from fcnkit.cli import main
 
     code = main(argv)
+    Path(log + ".calls").write_text(str(calls[0]))
     sys.stdout.flush()
     sys.stderr.flush()
     os._exit(code)
@@ -77,40 +99,21 @@ class Runner:
     def __init__(self, root: Path) -> None:
         self.ctx, self.root, self.count = _context(), root, 0
 
-    def start(self, argv: list) -> tuple[multiprocessing.Process, Path]:
+    def run(self, argv: list, hook: tuple | None = None, timeout: float = 300) -> tuple[int, str]:
+        """Run ``fcnkit argv`` in a forked process; (exit status, stderr)."""
         self.count += 1
         log = self.root / f"log-{self.count}.txt"
-        p = self.ctx.Process(target=_child, args=([str(a) for a in argv], str(log)))
+        p = self.ctx.Process(target=_child, args=([str(a) for a in argv], str(log), hook))
         p.start()
-        return p, log
-
-    def run(self, argv: list, timeout: float = 300) -> tuple[int, str, float]:
-        tic = time.perf_counter()
-        p, log = self.start(argv)
         p.join(timeout)
         assert p.exitcode is not None, f"{argv} did not finish"
-        return p.exitcode, log.read_text(), time.perf_counter() - tic
+        self.last_calls = int(Path(f"{log}.calls").read_text()) if Path(f"{log}.calls").exists() else None
+        return p.exitcode, log.read_text() if log.exists() else ""
 
 
 @pytest.fixture(scope="module")
 def runner(tmp_path_factory) -> Runner:
-    r = Runner(tmp_path_factory.mktemp("kills"))
-    code, log, _ = r.run(["--version"])  # starts the fork server, so later timings are of the runs alone
-    assert code == 0, log
-    return r
-
-
-def _kill_after(runner: Runner, argv: list, delay: float, sig: int, started: Path | None = None) -> tuple[int, str]:
-    """Run ``argv`` and send ``sig`` ``delay`` seconds after it starts (or after ``started`` exists)."""
-    p, log = runner.start(argv)
-    while started is not None and p.exitcode is None and not list(started.parent.glob(started.name)):
-        time.sleep(0.01)
-    p.join(delay)
-    if p.exitcode is None:
-        os.kill(p.pid, sig)
-    p.join(120)
-    assert p.exitcode is not None
-    return p.exitcode, log.read_text() if log.exists() else ""  # killed before it opened its log
+    return Runner(tmp_path_factory.mktemp("kills"))
 
 
 # --- training ----------------------------------------------------------------------------------------------------
@@ -135,52 +138,51 @@ def _assert_same(a: dict, b: dict) -> None:
         assert torch.equal(a[k], b[k]), k  # bit-identical, not merely close
 
 
+STEP = "fcnkit.train.segmentation_loss"  # called once per training batch
+TILES = "fcnkit.tiling._scores"  # called once per batch of tiles
+WRITES = "fcnkit.atomic.partial_path"  # called as each output file starts being written
+
+
 @pytest.fixture(scope="module")
 def training(runner):
     root = runner.root / "train"
     write_dataset(root / "data", count=3, size=40)
     (root / "cfg.toml").write_text(CONFIG)
-    code, log, seconds = runner.run(_train_argv(root, root / "reference"))
+    code, log = runner.run(_train_argv(root, root / "reference"), (STEP, 0, 0.0, 0))
     assert code == 0, log
-    return root, _state(root / "reference"), seconds
+    return root, _state(root / "reference"), runner.last_calls
 
 
 def test_training_killed_at_random_points_resumes_bit_identical(runner, training):
-    root, (ref_last, ref_best, ref_history), seconds = training
+    root, (ref_last, ref_best, ref_history), steps = training
     rng = np.random.default_rng(2026)
-    resumed = killed = 0
     for trial in range(TRIALS):
         out = root / f"kill-{trial}"
-        code, log = _kill_after(runner, _train_argv(root, out), float(rng.uniform(0.1, 0.9)) * seconds,
-                                signal.SIGKILL)
-        assert code in (-signal.SIGKILL, 0), log
-        killed += code == -signal.SIGKILL
-        finals = {p.name for p in out.iterdir() if not p.name.startswith(".")} if out.exists() else set()
+        hook = (STEP, int(rng.integers(1, steps + 1)), float(rng.uniform(0, 0.05)), signal.SIGKILL)
+        code, log = runner.run(_train_argv(root, out), hook)
+        print(f"training kill {trial}: batch {hook[1]} of {steps} + {hook[2]:.3f} s -> status {code}")
+        assert code == -signal.SIGKILL, (hook, log)
+        finals = {p.name for p in out.iterdir() if not p.name.startswith(".")}
         assert finals <= {"resume.pt", "model.safetensors", "metrics.csv"}
-        has_point = (out / "resume.pt").is_file()
-        resumed += has_point
-        code, log, _ = runner.run(_train_argv(root, out, resume=has_point))
+        assert "resume.pt" in finals  # the run folder holds a resume point from its first moment
+        code, log = runner.run(_train_argv(root, out, resume=True))
         assert code == 0, log
         last, best, history = _state(out)
         _assert_same(last, ref_last)
         _assert_same(best, ref_best)
         assert history == ref_history
         assert not [p for p in out.iterdir() if ".partial" in p.name]
-    assert killed >= TRIALS - 1, f"only {killed} of {TRIALS} kills landed before the run ended"
-    assert resumed >= killed - 1  # the run folder holds a resume point from its first moment
 
 
 def test_ctrl_c_in_training_writes_a_resume_point_and_exits_130(runner, training):
-    root, (ref_last, ref_best, _), seconds = training
+    root, (ref_last, ref_best, _), steps = training
     out = root / "sigint"
-    code, log = _kill_after(runner, _train_argv(root, out), 0.1 * seconds, signal.SIGINT, out / "resume.pt")
-    if code == 0:
-        pytest.skip("the run finished before the signal arrived (machine much faster than the estimate)")
+    code, log = runner.run(_train_argv(root, out), (STEP, steps // 2, 0.0, signal.SIGINT))
     assert code == 130, log
     lines = log.strip().splitlines()
     assert len(lines) == 1 and "Traceback" not in log, log
     assert "resume point saved to" in lines[0] and str(out / "resume.pt") in lines[0]
-    code, log, _ = runner.run(_train_argv(root, out, resume=True))
+    code, log = runner.run(_train_argv(root, out, resume=True))
     assert code == 0, log
     last, best, _ = _state(out)
     _assert_same(last, ref_last)
@@ -200,11 +202,14 @@ def mapping(runner):
     write_tiff(root / "inputs" / "field.tif", image)
     write_png(root / "inputs" / "plot.png", image[:200, :300])
     argv = ["segment", model, root / "inputs", "--tile", 48, "--batch", 2, "--quiet"]
-    code, log, seconds = runner.run([*argv, "--out", root / "reference"])
+    code, log = runner.run([*argv, "--out", root / "reference"], (TILES, 0, 0.0, 0))
+    assert code == 0, log
+    batches = runner.last_calls
+    code, log = runner.run([*argv, "--out", root / "reference-2"], (WRITES, 0, 0.0, 0))
     assert code == 0, log
     reference = {p.name: p.read_bytes() for p in (root / "reference").iterdir()}
-    assert len(reference) >= 10
-    return root, argv, reference, seconds
+    assert len(reference) >= 10 and _finals(root / "reference-2") == reference  # the outputs are reproducible
+    return root, argv, reference, {TILES: batches, WRITES: runner.last_calls}
 
 
 def _finals(out: Path) -> dict[str, bytes]:
@@ -213,32 +218,32 @@ def _finals(out: Path) -> dict[str, bytes]:
 
 
 def test_tiled_inference_killed_at_random_points_leaves_no_half_written_output(runner, mapping):
-    root, argv, reference, seconds = mapping
+    root, argv, reference, counts = mapping
     rng = np.random.default_rng(4)
-    killed = 0
     for trial in range(TRIALS):
         out = root / f"kill-{trial}"
-        code, log = _kill_after(runner, [*argv, "--out", out], float(rng.uniform(0.05, 0.95)) * seconds,
-                                signal.SIGKILL)
-        assert code in (-signal.SIGKILL, 0), log
-        killed += code == -signal.SIGKILL
+        target, delay = (TILES, 0.01) if trial % 2 == 0 else (WRITES, 0.002)  # mid-inference or mid-writing
+        hook = (target, int(rng.integers(1, counts[target])), float(rng.uniform(0, delay)), signal.SIGKILL)
+        code, log = runner.run([*argv, "--out", out], hook)
+        print(f"mapping kill {trial}: {target} call {hook[1]} of {counts[target]} + {hook[2]:.4f} s -> status "
+              f"{code}, {len(_finals(out))} of {len(reference)} outputs final")
+        assert code == -signal.SIGKILL, (hook, log)
         for name, data in _finals(out).items():  # whatever has a final name is complete
             assert data == reference[name], name
-        code, log, _ = runner.run([*argv, "--out", out])
+        code, log = runner.run([*argv, "--out", out])
         assert code == 0, log
         assert _finals(out) == reference
-    assert killed >= TRIALS - 1, f"only {killed} of {TRIALS} kills landed before the run ended"
 
 
 def test_ctrl_c_in_tiled_inference_exits_130_leaving_nothing_partial(runner, mapping):
-    root, argv, reference, seconds = mapping
+    root, argv, reference, counts = mapping
     out = root / "sigint"
-    code, log = _kill_after(runner, [*argv, "--out", out], 0.05 * seconds, signal.SIGINT, out / ".fcnkit-work-*")
-    if code == 0:
-        pytest.skip("the run finished before the signal arrived (machine much faster than the estimate)")
+    code, log = runner.run([*argv, "--out", out], (TILES, counts[TILES] - 2, 0.0, signal.SIGINT))
     assert code == 130, log
     lines = log.strip().splitlines()
     assert len(lines) == 1 and "Traceback" not in log, log
+    first = {n for n in reference if n.startswith("field.")}  # images are mapped in name order
+    assert set(_finals(out)) == first  # the first image's outputs are complete, the second has none
     for name, data in _finals(out).items():
         assert data == reference[name], name
     hidden = [p.name for p in out.iterdir() if p.name.startswith(".")]
