@@ -146,6 +146,7 @@ def onnx_session(source: str | Path | bytes, threads: int | None = None) -> Any:
     opts = ort.SessionOptions()
     opts.intra_op_num_threads = threads or torch.get_num_threads()
     opts.log_severity_level = 3
+    opts.add_session_config_entry("session.intra_op.allow_spinning", "0")  # idle threads sleep, not spin
     src = source if isinstance(source, bytes) else str(source)
     return ort.InferenceSession(src, sess_options=opts, providers=["CPUExecutionProvider"])
 

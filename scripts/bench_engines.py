@@ -3,8 +3,9 @@
 For each net (the demo net and the FCN-8s-style net, random weights: speed does not depend on them) it times
 (a) the bare forward pass on a batch of tiles and (b) whole tiled inference (``predict_scores``) of a
 synthetic 4-band image, once with the PyTorch engine (conv+BN folded, channels_last) and once with
-``OnnxEngine``; each figure is the best of ``--repeats`` runs. Timings on a shared machine are noisy, so the
-script prints ratios measured in the same process. Also checks that both engines give the same labels.
+``OnnxEngine``; each figure is the best of ``--repeats`` runs, the engines' runs interleaved. Timings on a
+shared machine are noisy, so the script prints ratios measured in the same process. Also checks that both
+engines give the same labels.
 
     .venv/bin/python scripts/bench_engines.py [--side 2048] [--tile 512] [--batch 4] [--repeats 3]
 """
@@ -13,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -25,13 +27,15 @@ from fcnkit.tiling import TorchEngine, predict_scores
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def best_of(repeats: int, fn) -> float:
-    times = []
+def best_of_each(repeats: int, fns: dict[str, Callable[[], object]]) -> dict[str, float]:
+    """Best time of each function, the runs interleaved so a change in the machine's load hits all alike."""
+    best = dict.fromkeys(fns, float("inf"))
     for _ in range(repeats):
-        tic = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - tic)
-    return min(times)
+        for name, fn in fns.items():
+            tic = time.perf_counter()
+            fn()
+            best[name] = min(best[name], time.perf_counter() - tic)
+    return best
 
 
 def bench(config: str, side: int, tile: int, batch: int, repeats: int) -> None:
@@ -47,16 +51,16 @@ def bench(config: str, side: int, tile: int, batch: int, repeats: int) -> None:
     x = torch.randn(batch, bands, tile, tile).contiguous(memory_format=torch.channels_last)
     torch_engine(x), ort_engine(x)  # warm-up
     mp = batch * tile * tile / 1e6
-    t_fwd = best_of(repeats, lambda: torch_engine(x))
-    o_fwd = best_of(repeats, lambda: ort_engine(x))
+    fwd = best_of_each(repeats, {"torch": lambda: torch_engine(x), "ort": lambda: ort_engine(x)})
+    t_fwd, o_fwd = fwd["torch"], fwd["ort"]
 
     def tiled(engine):
         return predict_scores(net, image, mean=mean, std=std, tile=tile, batch=batch, engine=engine)
 
     labels_t = tiled(torch_engine).argmax(0)
     labels_o = tiled(ort_engine).argmax(0)
-    t_tiled = best_of(repeats, lambda: tiled(torch_engine))
-    o_tiled = best_of(repeats, lambda: tiled(ort_engine))
+    whole = best_of_each(repeats, {"torch": lambda: tiled(torch_engine), "ort": lambda: tiled(ort_engine)})
+    t_tiled, o_tiled = whole["torch"], whole["ort"]
     same = float((labels_t == labels_o).mean())
     img_mp = side * side / 1e6
     print(f"== {config}: {tile}x{tile} tiles, batch {batch}, {side}x{side} image ({img_mp:.1f} MP), "
