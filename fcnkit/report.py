@@ -182,7 +182,7 @@ def read_curves(path: str | Path) -> dict[str, list[float]]:
     return cols
 
 
-def _curves_chart(cols: dict[str, list[float]]) -> str | None:
+def _curves_chart(cols: dict[str, list[float]], classes: ClassTable) -> str | None:
     x_name = next((n for n in ("epoch", "step") if n in cols), None)
     low = {n: n.lower() for n in cols}
     panels = [  # (title, prefix dropped from the legend, columns)
@@ -194,12 +194,16 @@ def _curves_chart(cols: dict[str, list[float]]) -> str | None:
     panels = [p for p in panels if p[2]]
     if not panels:
         return None
+    class_rgb = {n.replace(" ", "_"): c for n, c in zip(classes.names, classes.colors, strict=True)}
     fig = Figure(figsize=(3.2 * len(panels), 2.8))
     for i, (title, prefix, names) in enumerate(panels):
         ax = fig.add_subplot(1, len(panels), i + 1)
         for name in names:
             x = cols[x_name] if x_name else list(range(1, len(cols[name]) + 1))
-            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=name[len(prefix):])
+            label = name[len(prefix):]
+            rgb = class_rgb.get(label) if prefix == "iou_" else None
+            ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=label,
+                    color=None if rgb is None else tuple(c / 255 for c in rgb))
         ax.set_title(title, fontsize=9, loc="left")
         ax.set_xlabel(x_name or "row")
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
@@ -326,7 +330,7 @@ def render_report(scores: dict[str, Any], cm: np.ndarray, classes: ClassTable, *
         f'{_img(_confusion_chart(cm, classes.names), "confusion matrix")}'
         f'{_img(_iou_chart(scores, classes), "per-class IoU")}</div></section>',
     ]
-    chart = _curves_chart(read_curves(curves)) if curves else None
+    chart = _curves_chart(read_curves(curves), classes) if curves else None
     if chart:
         parts.append(f'<section><h2>Training</h2>{_img(chart, "training curves")}'
                      f'<p class="muted">From {html.escape(str(curves))}.</p></section>')
