@@ -434,7 +434,7 @@ def _config_case(name: str, text: str | bytes, *expect: str) -> None:
     case(name, "describe", *expect)(build)
 
 
-def _tiny_with(model: str = "", train: str = "") -> str:
+def tiny_config(model: str = "", train: str = "") -> str:
     """The tiny config with lines replaced/added in its [model] or [train] table."""
     text = TINY_CONFIG
     for section, extra in (("[model]", model), ("[train]", train)):
@@ -447,25 +447,25 @@ def _tiny_with(model: str = "", train: str = "") -> str:
 
 _config_case("config: random bytes (not UTF-8)", bytes(range(128, 256)) * 4, "bad.toml", "expected a TOML")
 _config_case("config: TOML syntax error", "[model]\nwidths = [8, 16\n", "bad.toml", "not valid TOML")
-_config_case("config: misspelt key model.widht", _tiny_with("widht = [8]"), "model.widht", "did you mean 'widths'")
+_config_case("config: misspelt key model.widht", tiny_config("widht = [8]"), "model.widht", "did you mean 'widths'")
 _config_case("config: unknown section [optim]", TINY_CONFIG + "[optim]\nlr = 1\n", "optim", "allowed: model, train")
-_config_case("config: string where a list is expected", _tiny_with("widths = 'wide'"), "model.widths",
+_config_case("config: string where a list is expected", tiny_config("widths = 'wide'"), "model.widths",
              "expected a list")
-_config_case("config: float where an integer is expected", _tiny_with("bands = 2.5"), "model.bands",
+_config_case("config: float where an integer is expected", tiny_config("bands = 2.5"), "model.bands",
              "expected int")
-_config_case("config: true where an integer is expected", _tiny_with("bands = true"), "model.bands",
+_config_case("config: true where an integer is expected", tiny_config("bands = true"), "model.bands",
              "expected int")
-_config_case("config: zero width", _tiny_with("widths = [4, 0]"), "model.widths[1]", "minimum 1")
-_config_case("config: one class", _tiny_with("classes = 1"), "model.classes", "minimum 2")
-_config_case("config: unknown choice upsample = 'bicubic'", _tiny_with("upsample = 'bicubic'"), "model.upsample",
+_config_case("config: zero width", tiny_config("widths = [4, 0]"), "model.widths[1]", "minimum 1")
+_config_case("config: one class", tiny_config("classes = 1"), "model.classes", "minimum 2")
+_config_case("config: unknown choice upsample = 'bicubic'", tiny_config("upsample = 'bicubic'"), "model.upsample",
              "transposed, bilinear")
 _config_case("config: [model] is a string", 'model = "big"\n', "model", "expected a table")
-_config_case("config: skip from a stride the encoder lacks", _tiny_with("skips = [4]"), "model.skips",
+_config_case("config: skip from a stride the encoder lacks", tiny_config("skips = [4]"), "model.skips",
              "allowed")
-_config_case("config: more down-sampling than min_size allows", _tiny_with("widths = [4, 8, 16, 32, 64]\n"
+_config_case("config: more down-sampling than min_size allows", tiny_config("widths = [4, 8, 16, 32, 64]\n"
              "blocks = [1, 1, 1, 1, 1]"), "model.min_size", "at least 16")
-_config_case("config: negative learning rate", _tiny_with(train="lr = -0.1"), "train.lr", "minimum")
-_config_case("config: scale range reversed", _tiny_with(train="scale = [1.5, 0.5]"), "train.scale", "low <= high")
+_config_case("config: negative learning rate", tiny_config(train="lr = -0.1"), "train.lr", "minimum")
+_config_case("config: scale range reversed", tiny_config(train="scale = [1.5, 0.5]"), "train.scale", "low <= high")
 _config_case("config: NUL bytes inside", TINY_CONFIG.replace("[train]", "[tr\x00ain]"), "bad.toml",
              "not valid TOML")
 
@@ -505,6 +505,11 @@ def _data_case(name: str, edit: Callable[[Path], object], *expect: str,
         case(name, command, *expect)(build)
 
 
+def _classes_case(name: str, old: str, new: str, *expect: str) -> None:
+    """The good classes.toml with ``old`` replaced by ``new``."""
+    _data_case(name, lambda d: (d / "classes.toml").write_text(CLASSES_TOML.replace(old, new)), *expect)
+
+
 def _image_case(name: str, edit: Callable[[Path], object], *expect: str) -> None:
     """A bad image file: the same case for every command that reads images."""
     _data_case(name, edit, *expect, commands=("train", "evaluate", "check", "segment"))
@@ -534,21 +539,15 @@ def _(ws: Workspace, folder: Path) -> Call:
 
 _data_case("classes.toml: not TOML", lambda d: (d / "classes.toml").write_text("[[classes]\nid = 0\n"),
            "classes.toml", "TOML")
-_data_case("classes.toml: duplicate id", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace("id = 2", "id = 1")), "classes.toml", "duplicate id 1")
-_data_case("classes.toml: duplicate colour", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace("#c03020", "#2050c0")), "classes.toml", "duplicate color #2050c0")
-_data_case("classes.toml: ids with a gap", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace("id = 2", "id = 5")), "classes.toml", "without gaps")
+_classes_case("classes.toml: duplicate id", "id = 2", "id = 1", "classes.toml", "duplicate id 1")
+_classes_case("classes.toml: duplicate colour", "#c03020", "#2050c0", "classes.toml", "duplicate color #2050c0")
+_classes_case("classes.toml: ids with a gap", "id = 2", "id = 5", "classes.toml", "without gaps")
 _data_case("classes.toml: missing", lambda d: (d / "classes.toml").unlink(), "classes.toml", "missing")
-_data_case("classes.toml: colour value 300", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace('"#c03020"', "[300, 0, 0]")), "classes[2].color", "0..255")
-_data_case("classes.toml: ignore value is a class id", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace("ignore = 255", "ignore = 1")), "classes.toml", "ignore = 1")
-_data_case("classes.toml: unknown key", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace('name = "roof"', 'name = "roof"\ncolour = "#000000"')), "classes.toml", "'colour'")
-_data_case("classes.toml: id is a string", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML.replace("id = 2", 'id = "2"')), "classes[2].id", "expected an integer")
+_classes_case("classes.toml: colour value 300", '"#c03020"', "[300, 0, 0]", "classes[2].color", "0..255")
+_classes_case("classes.toml: ignore value is a class id", "ignore = 255", "ignore = 1", "classes.toml", "ignore = 1")
+_classes_case("classes.toml: unknown key", 'name = "roof"', 'name = "roof"\ncolour = "#000000"', "classes.toml",
+              "'colour'")
+_classes_case("classes.toml: id is a string", "id = 2", 'id = "2"', "classes[2].id", "expected an integer")
 _data_case("classes.toml: a folder", lambda d: ((d / "classes.toml").unlink(), (d / "classes.toml").mkdir()),
            "classes.toml", "toml")
 _data_case("classes.toml: 4 classes for a 3-class config", lambda d: (d / "classes.toml").write_text(
@@ -652,7 +651,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 
     from fcnkit import runstate
     from fcnkit.config import config_from_dict, config_to_dict
-    other = config_to_dict(config_from_dict(tomllib.loads(_tiny_with(train="lr = 0.5"))))
+    other = config_to_dict(config_from_dict(tomllib.loads(tiny_config(train="lr = 0.5"))))
     (folder / "run").mkdir()
     runstate.save_resume(folder / "run" / runstate.RESUME_FILE, {
         "config_hash": runstate.config_hash(other), "config": json.dumps(other), "model": {}, "optimizer": {},
