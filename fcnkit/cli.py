@@ -187,6 +187,10 @@ def _convert(args: argparse.Namespace) -> int:
 
     if args.grow and args.save is None:
         raise FcnkitError("--grow: give --save MODEL for the segmenter's model file")
+    if args.save is not None:  # before minutes of conversion, not after
+        from fcnkit.export import check_destination
+
+        check_destination(args.save)
     table = load_classes(args.classes) if args.classes else None
     src = load_classifier(args.source, args.weights, random_weights=args.random_weights)
     conv = convert_classifier(src.module, args.native, global_pool=args.pool, sizes=tuple(args.sizes),

@@ -179,3 +179,17 @@ def test_a_resume_point_without_its_config_entries_is_refused_in_one_line(tmp_pa
     runstate.save_resume(tmp_path / "resume.pt", {"model": {}})  # right format tag, nothing else
     with pytest.raises(FcnkitError, match="resume.pt: resume point belongs to a different config"):
         runstate.load_resume(tmp_path / "resume.pt", {"model": {}, "train": {}})  # was KeyError
+
+
+def test_convert_checks_the_save_path_before_converting(tmp_path, monkeypatch):
+    from bad_inputs import run_cli
+
+    import fcnkit.convert as convert
+
+    def never(*args, **kwargs):
+        raise AssertionError("the classifier was loaded before the output path was checked")
+
+    monkeypatch.setattr(convert, "load_classifier", never)
+    code, _, err = run_cli(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
+                            tmp_path / "nowhere" / "m.safetensors"])
+    assert code == 2 and "cannot write here" in err and "nowhere" in err, err  # was after the conversion
