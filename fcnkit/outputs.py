@@ -170,8 +170,9 @@ def _preview(raster: Raster, labels: RowStore, step: int) -> tuple[np.ndarray, n
     img, lab = [], []
     for y0 in range(0, height, band):
         y1 = min(y0 + band, height)
-        img.append(raster.read(y0, y1, 0, width)[off::step, off::step])
-        lab.append(np.asarray(labels.rows(y0, y1, write=False))[off::step, off::step])
+        # copies, so each band's full rows (and their memory map) are freed at once
+        img.append(raster.read(y0, y1, 0, width)[off::step, off::step].copy())
+        lab.append(np.array(labels.rows(y0, y1, write=False)[off::step, off::step]))
     return display_rgb(np.concatenate(img)), np.concatenate(lab)
 
 
