@@ -29,6 +29,10 @@ def atomic_output(final: str | Path) -> Iterator[Path]:
         raise FcnkitError(f"{final}: cannot write here, folder {final.parent} does not exist")
     tmp = partial_path(final)
     try:
+        open(tmp, "xb").close()  # fails here, naming the final file, when the folder cannot be written
+    except OSError as e:
+        raise FcnkitError(f"{final}: cannot write here ({e.strerror or e})") from None
+    try:
         yield tmp
         with open(tmp, "rb+") as f:  # flush file data before the rename makes it visible
             os.fsync(f.fileno())

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import io
 import json
-import os
 import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -24,7 +23,7 @@ import torch
 from torch import nn
 from torch.nn import functional as F
 
-from fcnkit.atomic import atomic_output
+from fcnkit.atomic import atomic_output, partial_path
 from fcnkit.errors import ConfigError, FcnkitError, ModelFileError
 from fcnkit.nets import SegNet
 
@@ -172,8 +171,12 @@ def check_destination(out: str | Path, error: type[FcnkitError] = ModelFileError
         raise error(f"{out}: cannot write here, folder {folder} does not exist")
     if out.is_dir():
         raise error(f"{out}: cannot write here, it is a folder")
-    if not os.access(folder, os.W_OK):
-        raise error(f"{out}: cannot write here, folder {folder} is not writable")
+    probe = partial_path(out)
+    try:  # a real file, not os.access: modes do not stop root, read-only file systems stop everyone
+        open(probe, "xb").close()
+    except OSError as e:
+        raise error(f"{out}: cannot write here, folder {folder} is not writable ({e.strerror or e})") from None
+    probe.unlink()
 
 
 def export_model(model: nn.Module | str | Path, out: str | Path, format: str = "onnx", *,

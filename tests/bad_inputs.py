@@ -110,6 +110,21 @@ class Workspace:
         """A private copy of the good dataset inside ``folder``."""
         return Path(shutil.copytree(self.data, folder / "data"))
 
+    def read_only(self, folder: Path) -> Path:
+        """An existing folder in which this user cannot create files: a folder with mode 0o555, or, as root
+        (whom modes do not stop), /sys when the kernel refuses files there; else :meth:`unwritable`."""
+        if os.geteuid() != 0:
+            path = folder / "read-only"
+            path.mkdir()
+            path.chmod(0o555)
+            return path
+        try:
+            Path("/sys/.fcnkit-probe").touch()
+        except OSError:
+            return Path("/sys")
+        Path("/sys/.fcnkit-probe").unlink()
+        return self.unwritable(folder)
+
     def unwritable(self, folder: Path) -> Path:
         """A folder no file can be created in. chmod does not stop root, so as root the "folder" is a path
         below a regular file (every create there fails with ENOTDIR); otherwise a folder with mode 0o555."""
@@ -1078,3 +1093,41 @@ def _(ws: Workspace, folder: Path) -> Call:
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
     return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+
+
+# --- an existing folder the user cannot write to ---------------------------------------------------------------
+
+@case("read-only output folder (--out RO/run)", "train", "/run")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.read_only(folder) / "run"
+    return Call(["train", ws.config, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
+
+
+@case("read-only output folder (--json RO/scores.json)", "evaluate", "scores.json", "cannot write here")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.read_only(folder) / "scores.json"
+    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out, "--quiet"], [folder, out])
+
+
+@case("read-only output folder (--out RO/m.onnx)", "export", "m.onnx", "cannot write here")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.read_only(folder) / "m.onnx"
+    return Call(["export", ws.model, "--out", out], [folder, out])
+
+
+@case("read-only output folder (--out RO/maps)", "segment", "maps", "cannot create the output folder")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _segment(ws, folder, out=ws.read_only(folder) / "maps")
+
+
+@case("read-only output folder (OUT_DIR RO/scenes)", "scenes", "/scenes")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.read_only(folder) / "scenes"
+    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+
+
+@case("read-only output folder (--save RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.read_only(folder) / "m.safetensors"
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
+                 out], [folder, out])

@@ -193,3 +193,18 @@ def test_convert_checks_the_save_path_before_converting(tmp_path, monkeypatch):
     code, _, err = run_cli(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
                             tmp_path / "nowhere" / "m.safetensors"])
     assert code == 2 and "cannot write here" in err and "nowhere" in err, err  # was after the conversion
+
+
+def test_a_read_only_folder_is_refused_before_any_work_even_for_root(tmp_path):
+    """os.access says yes to root on any folder; the destination check now creates a probe file instead."""
+    from bad_inputs import Workspace
+
+    from fcnkit.export import check_destination
+
+    folder = Workspace.read_only(Workspace.__new__(Workspace), tmp_path)  # only uses its folder argument
+    with pytest.raises(FcnkitError, match="m.onnx: cannot write here"):
+        check_destination(folder / "m.onnx")
+    with pytest.raises(FcnkitError, match="y.txt: cannot write here"):  # atomic output names the final file
+        write_text_atomic(folder / "y.txt", "z")
+    check_destination(tmp_path / "fine.onnx")
+    assert not [p for p in tmp_path.iterdir() if ".partial" in p.name]  # the probe is removed
