@@ -30,7 +30,7 @@ from tqdm import tqdm
 from fcnkit import geometry, parallel, runstate
 from fcnkit.config import Config, config_from_dict, config_to_dict
 from fcnkit.data.dataset import Sample, band_stats, find_samples
-from fcnkit.data.imageio import read_image, read_mask
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_image, read_mask
 from fcnkit.data.patches import PatchDataset
 from fcnkit.errors import ConfigError, DataError
 from fcnkit.evaluate import evaluate_images
@@ -69,14 +69,16 @@ def split_samples(samples: list[Sample], val_fraction: float, seed: int) -> tupl
 
 
 def train(cfg: Config, data_dir: str | Path, out_dir: str | Path, *, resume: bool = False,
-          init: str | Path | None = None, progress: bool = True) -> TrainResult:
+          init: str | Path | None = None, progress: bool = True,
+          max_pixels: int | None = DEFAULT_MAX_PIXELS) -> TrainResult:
     """Train ``cfg``'s net (or the model file ``init``, whose architecture and weights then replace
-    cfg.model) on the dataset folder ``data_dir``, writing the run to ``out_dir``."""
+    cfg.model) on the dataset folder ``data_dir``, writing the run to ``out_dir``. Images and masks above
+    ``max_pixels`` pixels are refused (None: no limit)."""
     group, threads = parallel.start(), torch.get_num_threads()
     try:
         if cfg.train.threads:
             torch.set_num_threads(cfg.train.threads)
-        run = _prepare(cfg, Path(data_dir), Path(out_dir), resume, init, group)
+        run = _prepare(cfg, Path(data_dir), Path(out_dir), resume, init, group, max_pixels)
         with _StopRequest() as stop:
             return _loop(run, stop, progress)
     finally:
@@ -106,7 +108,7 @@ class _Run:
 
 
 def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str | Path | None,
-             group: parallel.Group) -> _Run:
+             group: parallel.Group, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> _Run:
     from fcnkit import __version__
 
     t = cfg.train
@@ -123,8 +125,8 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
         raise ConfigError(f"model.classes: the net has {model.classes} classes but {data_dir / 'classes.toml'} "
                           f"lists {classes.num_classes}")
     train_s, val_s = split_samples(samples, t.val_fraction, t.seed)
-    train_x, train_y = _read(train_s, classes, model.bands)
-    val_x, val_y = _read(val_s[group.rank::group.world], classes, model.bands)
+    train_x, train_y = _read(train_s, classes, model.bands, max_pixels)
+    val_x, val_y = _read(val_s[group.rank::group.world], classes, model.bands, max_pixels)
     mean, std = (base.mean, base.std) if base else band_stats(train_x)
     meta = ModelMeta(base.kind if base else "segnet", config, classes, list(mean), [v if v > 0 else 1.0 for v in std],
                      __version__, base.extra if base else {})
@@ -201,7 +203,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
                 _interrupt(run)
         bar.close()
         _end_epoch(run, lr, time.perf_counter() - tic)
-        if stop.requested:
+        if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
             _interrupt(run)
     best = p["best_miou"] if p["best_miou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
@@ -261,13 +263,14 @@ def _initial_model(cfg: Config, init: str | Path | None) -> tuple[nn.Module, Con
                                         {**m.extra, "init": str(init)})
 
 
-def _read(samples: list[Sample], classes: Any, bands: int) -> tuple[list[np.ndarray], list[np.ndarray]]:
+def _read(samples: list[Sample], classes: Any, bands: int,
+          max_pixels: int | None = DEFAULT_MAX_PIXELS) -> tuple[list[np.ndarray], list[np.ndarray]]:
     images, masks = [], []
     for s in samples:
-        image = read_image(s.image)
+        image = read_image(s.image, max_pixels)
         if image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
-        mask = read_mask(s.mask, classes)
+        mask = read_mask(s.mask, classes, max_pixels)
         if mask.shape != image.shape[:2]:
             raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
                             f"{image.shape[1]}x{image.shape[0]} (expected the same size)")
