@@ -65,7 +65,8 @@ def _train(args: argparse.Namespace) -> int:
     changes = {k: v for k, v in (("epochs", args.epochs), ("threads", args.threads)) if v is not None}
     if changes:
         cfg = replace_section(cfg, "train", **changes)
-    r = train(cfg, args.data, args.out, resume=args.resume, init=args.init, progress=not args.quiet)
+    r = train(cfg, args.data, args.out, resume=args.resume, init=args.init, progress=not args.quiet,
+              max_pixels=args.max_pixels)
     if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
         best = "no validation images, model of the last epoch kept" if math.isnan(r.best_miou) else \
             f"best val mIoU {r.best_miou:.4f} at epoch {r.best_epoch}"
@@ -83,6 +84,8 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--init", metavar="MODEL", help="start from this model file (its net replaces [model])")
     p.add_argument("--epochs", type=int, metavar="N", help="override train.epochs")
     p.add_argument("--threads", type=int, metavar="N", help="override train.threads (0 = torch's default)")
+    p.add_argument("--max-pixels", type=int, default=2**27, metavar="N",
+                   help="refuse images with more pixels than this (default 134217728)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(run=_train)
 

@@ -1131,3 +1131,8 @@ def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "m.safetensors"
     return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
                  out], [folder, out])
+
+
+@case("--max-pixels below the image size", "train", ".png", "limit")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _train(ws, folder, ws.data, "--max-pixels", 100)
