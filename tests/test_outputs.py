@@ -64,3 +64,25 @@ def test_overlay_is_alpha_blend_of_class_colours():
     out = overlay(rgb, labels, CLASSES.colors, alpha=0.5)
     want = np.rint(0.5 * 100 + 0.5 * np.array(CLASSES.colors, float)[labels]).astype(np.uint8)
     np.testing.assert_array_equal(out, want)
+
+
+def test_preview_keeps_only_its_samples_in_memory():
+    # Regression: the preview once kept a strided view of every band it read, i.e. the whole image.
+    import tracemalloc
+
+    from fcnkit.data.raster import RowStore
+    from fcnkit.outputs import _preview
+
+    class Fresh:  # a raster whose reads allocate, like a TIFF decoder
+        shape, path, geo = (8192, 1024, 4), None, None
+
+        def read(self, y0, y1, x0, x1):
+            return np.ones((y1 - y0, x1 - x0, 4), np.uint8)
+
+    labels = RowStore((8192, 1024), np.uint8)
+    tracemalloc.start()
+    rgb, small = _preview(Fresh(), labels, 4)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert rgb.shape == (2048, 256, 3) and small.shape == (2048, 256)
+    assert peak < 20 * 2**20, peak  # one band (2 MB), the samples and display temporaries, not the 32 MB image
