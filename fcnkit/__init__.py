@@ -1,30 +1,44 @@
-"""fcnkit: fully convolutional segmentation nets, built from a short config, trained and run on a CPU."""
+"""fcnkit: fully convolutional segmentation nets, built from a short config, trained and run on a CPU.
 
-from fcnkit.config import Config, load_config
-from fcnkit.convert import convert_classifier, grow_segmenter
-from fcnkit.data.classes import load_classes
-from fcnkit.data.dataset import band_stats, check_dataset, find_samples
-from fcnkit.data.imageio import read_image, read_mask
-from fcnkit.data.scenes import make_scenes, write_mosaic
-from fcnkit.describe import describe
+The public API is imported on first use (PEP 562), so ``fcnkit --help`` or ``fcnkit describe`` does not pay for
+torchvision and the training stack.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
 from fcnkit.errors import ConfigError, DataError, FcnkitError, ModelFileError
-from fcnkit.evaluate import evaluate
-from fcnkit.export import export_model
-from fcnkit.modelfile import load_model, save_model
-from fcnkit.nets import build_model
-from fcnkit.report import write_report
-from fcnkit.tiling import predict_scores, segment_image, segment_images
-from fcnkit.train import train
 
 __version__ = "0.1.0"
 
-__all__ = [
-    "Config", "ConfigError", "DataError", "FcnkitError", "ModelFileError",
-    "build_model", "describe", "load_config",
-    "evaluate", "export_model", "write_report",
-    "load_model", "save_model", "train",
-    "convert_classifier", "grow_segmenter",
-    "predict_scores", "segment_image", "segment_images",
-    "load_classes", "read_image", "read_mask", "find_samples", "check_dataset", "band_stats",
-    "make_scenes", "write_mosaic",
-]
+# public name -> module that defines it
+_API = {
+    "Config": "fcnkit.config", "load_config": "fcnkit.config",
+    "build_model": "fcnkit.nets", "describe": "fcnkit.describe",
+    "load_classes": "fcnkit.data.classes",
+    "band_stats": "fcnkit.data.dataset", "check_dataset": "fcnkit.data.dataset", "find_samples": "fcnkit.data.dataset",
+    "read_image": "fcnkit.data.imageio", "read_mask": "fcnkit.data.imageio",
+    "make_scenes": "fcnkit.data.scenes", "write_mosaic": "fcnkit.data.scenes",
+    "load_model": "fcnkit.modelfile", "save_model": "fcnkit.modelfile",
+    "train": "fcnkit.train",
+    "predict_scores": "fcnkit.tiling", "segment_image": "fcnkit.tiling", "segment_images": "fcnkit.tiling",
+    "evaluate": "fcnkit.evaluate", "write_report": "fcnkit.report", "export_model": "fcnkit.export",
+    "convert_classifier": "fcnkit.convert", "grow_segmenter": "fcnkit.convert",
+}
+
+__all__ = ["ConfigError", "DataError", "FcnkitError", "ModelFileError", *_API]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _API:
+        value = getattr(importlib.import_module(_API[name]), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'fcnkit' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(__all__)
+
