@@ -20,8 +20,8 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _describe(args: argparse.Namespace) -> int:
-    from fcnkit import describe, load_config
-    from fcnkit.describe import format_description
+    from fcnkit.config import load_config  # not `from fcnkit import describe`: an imported submodule
+    from fcnkit.describe import describe, format_description  # of that name would shadow the function
 
     for i, path in enumerate(args.configs):
         d = describe(load_config(path))
@@ -58,8 +58,8 @@ def _train(args: argparse.Namespace) -> int:
     import math
     import os
 
-    from fcnkit import load_config, train
-    from fcnkit.config import replace_section
+    from fcnkit.config import load_config, replace_section
+    from fcnkit.train import train
 
     cfg = load_config(args.config)
     changes = {k: v for k, v in (("epochs", args.epochs), ("threads", args.threads)) if v is not None}
@@ -106,7 +106,7 @@ def add_tile_options(p: argparse.ArgumentParser, max_pixels: int = 2**27) -> Non
 
 
 def _evaluate(args: argparse.Namespace) -> int:
-    from fcnkit import evaluate
+    from fcnkit.evaluate import evaluate
 
     r = evaluate(args.model, args.data, json_path=args.json, report=args.report, curves=args.curves,
                  examples=args.examples, tile=args.tile, overlap=args.overlap, batch=args.batch,

@@ -208,3 +208,18 @@ def test_a_read_only_folder_is_refused_before_any_work_even_for_root(tmp_path):
         write_text_atomic(folder / "y.txt", "z")
     check_destination(tmp_path / "fine.onnx")
     assert not [p for p in tmp_path.iterdir() if ".partial" in p.name]  # the probe is removed
+
+
+def test_cli_commands_work_after_their_submodules_were_imported(tmp_path):
+    """`from fcnkit import evaluate` returns the submodule once fcnkit.evaluate has been imported (lazy API,
+    PEP 562): the CLI imports each function from its own module, so commands run in any order in one process."""
+    from bad_inputs import ROOT, run_cli
+
+    import fcnkit.describe  # noqa: F401 - the imports that used to shadow the functions
+    import fcnkit.evaluate  # noqa: F401
+    import fcnkit.train  # noqa: F401
+
+    code, out, err = run_cli(["describe", ROOT / "configs" / "tiny.toml"])
+    assert code == 0 and "receptive field" in out, err
+    code, _, err = run_cli(["evaluate", tmp_path / "none.safetensors", "--data", tmp_path, "--quiet"])
+    assert code == 2 and "no such model file" in err, err  # was TypeError: 'module' object is not callable
