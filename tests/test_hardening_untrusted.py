@@ -81,9 +81,10 @@ FORBIDDEN_CALLS = {"eval", "exec", "compile", "__import__"}
 # torch.jit.load reads TorchScript (a restricted language with its own loader, not pickle of Python objects):
 # allowed where the user names the file as a classifier to convert, and where export checks its own output.
 JIT_LOAD_ALLOWED = {"fcnkit/convert/sources.py", "fcnkit/export.py"}
-# importlib: only for `package.module:factory` typed on the command line (convert); model files cannot name code
-# (grow.classifier_from_source refuses factory sources), see test below.
-IMPORTLIB_ALLOWED = {"fcnkit/convert/sources.py"}
+# importlib: for `package.module:factory` typed on the command line (convert; model files cannot name code:
+# grow.classifier_from_source refuses factory sources, see test below) and for the lazy public API, whose module
+# names come from a fixed table in fcnkit/__init__.py.
+IMPORTLIB_ALLOWED = {"fcnkit/convert/sources.py", "fcnkit/__init__.py"}
 
 
 def _dotted(node: ast.AST) -> str:
