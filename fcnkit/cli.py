@@ -144,7 +144,7 @@ def _segment(args: argparse.Namespace) -> int:
 
 
 def _add_segment(sub: argparse._SubParsersAction) -> None:
-    from fcnkit.tiling import SEGMENT_MAX_PIXELS
+    from fcnkit.data.raster import SEGMENT_MAX_PIXELS
 
     p = sub.add_parser("segment", help="map images of any size: labels, confidence, uncertainty, overlay, areas")
     p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")

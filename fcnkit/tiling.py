@@ -29,7 +29,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from fcnkit.data.raster import ArrayRaster, Raster, RowStore
+from fcnkit.data.raster import SEGMENT_MAX_PIXELS, ArrayRaster, Raster, RowStore
 from fcnkit.errors import ConfigError
 from fcnkit.windows import check_window, window
 
@@ -386,7 +386,6 @@ def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, me
 
 # --- whole images to files --------------------------------------------------------------------------------
 
-SEGMENT_MAX_PIXELS = 2**31  # 2.1 gigapixels; the decoded-pixel guard for segment (raise it for larger files)
 _GENERIC_COLOURS = ((230, 159, 0), (86, 180, 233), (0, 158, 115), (240, 228, 66), (0, 114, 178), (213, 94, 0),
                     (204, 121, 167), (120, 120, 120))  # a colour-blind-safe set (Okabe & Ito 2008), then grey
 

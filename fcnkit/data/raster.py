@@ -35,6 +35,7 @@ from fcnkit.errors import DataError
 TIFF_SUFFIXES = (".tif", ".tiff")
 PILLOW_SUFFIXES = (".png", ".jpg", ".jpeg")
 RASTER_SUFFIXES = TIFF_SUFFIXES + PILLOW_SUFFIXES
+SEGMENT_MAX_PIXELS = 2**31  # 2.1 gigapixels; the decoded-pixel guard for segment (raise it for larger files)
 
 # GeoTIFF tags (GeoTIFF 1.0 specification, section 2.4): pixel scale, tie points, transformation matrix,
 # GeoKey directory and its double and ASCII parameters.
