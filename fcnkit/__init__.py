@@ -7,6 +7,8 @@ torchvision and the training stack.
 from __future__ import annotations
 
 import importlib
+import sys
+import types
 from typing import Any
 
 from fcnkit.errors import ConfigError, DataError, FcnkitError, ModelFileError
@@ -41,4 +43,17 @@ def __getattr__(name: str) -> Any:
 
 def __dir__() -> list[str]:
     return sorted(__all__)
+
+
+class _PublicApi(types.ModuleType):
+    """Keeps ``fcnkit.train``, ``fcnkit.evaluate`` and ``fcnkit.describe`` the functions: importing a submodule
+    of the same name would otherwise bind the module object over the function."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name in _API and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _PublicApi
 

@@ -7,6 +7,7 @@ import re
 import shutil
 import subprocess
 import sys
+import types
 from pathlib import Path
 
 import pytest
@@ -100,3 +101,15 @@ def test_readme_figures_match_describe() -> None:
         assert (d["output_stride"], d["receptive_field"], d["tile_margin"]) == (int(stride), int(field), int(margin))
         assert d["params"] == int(params.replace(",", ""))
         assert f"{d['macs_per_megapixel'] / 1e9:.2f}" == gmacs
+
+
+def test_public_functions_stay_functions_after_their_submodules_are_imported():
+    """Regression: with the lazy public API, `import fcnkit.train` bound the module over `fcnkit.train`."""
+    import importlib
+
+    import fcnkit
+
+    for name in ("describe", "train", "evaluate"):
+        module = importlib.import_module(f"fcnkit.{name}")
+        assert isinstance(module, types.ModuleType)
+        assert callable(getattr(fcnkit, name)) and getattr(fcnkit, name) is getattr(module, name)
