@@ -28,14 +28,14 @@ from fcnkit.atomic import write_text_atomic
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.dataset import Sample, find_samples
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
-from fcnkit.data.raster import Raster, open_raster
+from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError
 from fcnkit.export import check_destination, make_engine
 from fcnkit.losses import pixel_cross_entropy
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.modelfile import LoadedModel, load_model
-from fcnkit.outputs import normalised_entropy
+from fcnkit.outputs import normalised_entropy, strided_rgb
 from fcnkit.tiling import predict_scores
 
 if TYPE_CHECKING:
@@ -151,15 +151,6 @@ def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str
         raise DataError(f"{data_dir / 'classes.toml'}: classes ({shown}) differ from those of {model} ({want})")
 
 
-def _preview(raster: Raster, step: int, band: int = 512) -> np.ndarray:
-    """Every ``step``-th pixel of a raster, read a band of rows at a time, as a display RGB image."""
-    from fcnkit.report import display_rgb
-
-    h, w, _ = raster.shape
-    parts = [raster.read(y0, min(y0 + band, h), 0, w)[::step, ::step] for y0 in range(0, h, band)]
-    return display_rgb(np.concatenate(parts))
-
-
 def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, settings: dict[str, Any],
                engine: Any, max_pixels: int | None, progress: bool) -> tuple[np.ndarray, ImageScore, Example]:
     from fcnkit.report import PANEL_SIDE, Example
@@ -181,7 +172,7 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
             pred = probs[:, y0:y0 + 256].argmax(0)
             cm += confusion_matrix(mask[y0:y0 + 256], pred, k, classes.ignore)
         small = np.ascontiguousarray(probs[:, ::step, ::step])
-        image = _preview(raster, step)
+        image = strided_rgb(raster, step)
     finally:
         raster.close()
     s = segmentation_scores(cm)

@@ -159,21 +159,26 @@ def write_outputs(scores: RowStore, raster: Raster, classes: ClassTable, folder:
     return paths, rows
 
 
-def _preview(raster: Raster, labels: RowStore, step: int) -> tuple[np.ndarray, np.ndarray]:
-    """Every ``step``-th pixel (from step // 2, so each sample sits mid-cell) of the image, as display RGB, and
-    of the label map."""
+def strided_rgb(raster: Raster, step: int, offset: int = 0) -> np.ndarray:
+    """Every ``step``-th pixel of the image from ``offset``, as display RGB, read a band of rows at a time
+    (copies, so each band's full rows are freed at once)."""
     from fcnkit.report import display_rgb
 
     height, width, _ = raster.shape
+    band = step * max(1, 512 // step)
+    parts = [raster.read(y0, min(y0 + band, height), 0, width)[offset::step, offset::step].copy()
+             for y0 in range(0, height, band)]
+    return display_rgb(np.concatenate(parts))
+
+
+def _preview(raster: Raster, labels: RowStore, step: int) -> tuple[np.ndarray, np.ndarray]:
+    """Every ``step``-th pixel (from step // 2, so each sample sits mid-cell) of the image, as display RGB, and
+    of the label map."""
     off = step // 2
     band = step * max(1, 512 // step)
-    img, lab = [], []
-    for y0 in range(0, height, band):
-        y1 = min(y0 + band, height)
-        # copies, so each band's full rows (and their memory map) are freed at once
-        img.append(raster.read(y0, y1, 0, width)[off::step, off::step].copy())
-        lab.append(np.array(labels.rows(y0, y1, write=False)[off::step, off::step]))
-    return display_rgb(np.concatenate(img)), np.concatenate(lab)
+    lab = [np.array(labels.rows(y0, min(y0 + band, labels.shape[0]), write=False)[off::step, off::step])
+           for y0 in range(0, labels.shape[0], band)]
+    return strided_rgb(raster, step, off), np.concatenate(lab)
 
 
 def _pixel_area(pixel_size: float | tuple[float, float] | None, geo: GeoTags | None) -> float | None:

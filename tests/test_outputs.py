@@ -70,6 +70,7 @@ def test_preview_keeps_only_its_samples_in_memory():
     # Regression: the preview once kept a strided view of every band it read, i.e. the whole image.
     import tracemalloc
 
+    import fcnkit.report  # noqa: F401 - imported before measuring: its first import (matplotlib) allocates ~27 MB
     from fcnkit.data.raster import RowStore
     from fcnkit.outputs import _preview
 
