@@ -140,3 +140,14 @@ def test_row_store_on_disk_equals_in_memory(tmp_path):
             del rows
     np.testing.assert_array_equal(mem.whole(), disk.whole())
     assert disk.path.stat().st_size == 50 * 20 * 3 * 4
+
+
+def test_tiff_with_fewer_segments_than_its_layout_needs_is_a_data_error(tmp_path):
+    # Regression (found by the fuzz test): a damaged RowsPerStrip tag made the region reader index past the strip
+    # table with an IndexError instead of naming the damage.
+    path = tmp_path / "strips.tif"
+    tifffile.imwrite(path, _image(np.uint16, 1)[..., 0], rowsperstrip=32)
+    with tifffile.TiffFile(path, mode="r+b") as tif:
+        tif.pages.first.tags["RowsPerStrip"].overwrite(8)
+    with pytest.raises(DataError, match=r"strips.tif: corrupt TIFF \(4 data segments, expected 13"):
+        open_raster(path, None)

@@ -190,6 +190,10 @@ class TiffRaster:
         else:
             self._seg_h, self._seg_w = min(page.rowsperstrip, height), width
         self._rows, self._cols = math.ceil(height / self._seg_h), math.ceil(width / self._seg_w)
+        expected = sep * self._rows * self._cols
+        if len(page.dataoffsets) < expected:
+            raise DataError(f"{self.path}: corrupt TIFF ({len(page.dataoffsets)} data segments, expected {expected} "
+                            f"for {width}x{height} pixels in {self._seg_w}x{self._seg_h} segments)")
 
     def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         out = self._read(y0, y1, x0, x1)
