@@ -94,7 +94,8 @@ def add_tile_options(p: argparse.ArgumentParser, max_pixels: int = 2**27) -> Non
     """Options of tiled inference shared by the commands that run it."""
     p.add_argument("--tile", type=int, default=512, metavar="PX", help="tile side in pixels (default 512)")
     p.add_argument("--overlap", type=int, metavar="PX", help="tile overlap (default: from the net's receptive field)")
-    p.add_argument("--batch", type=int, default=4, metavar="N", help="tiles per forward pass (default 4)")
+    p.add_argument("--batch", type=int, metavar="N",
+                   help="tiles per forward pass (default: as many as make about a quarter megapixel)")
     p.add_argument("--window", choices=("hann", "linear", "none"), default="hann",
                    help="blending window over tile overlaps (default hann)")
     p.add_argument("--exact", action="store_true", help="exact tiling: equal to whole-image inference")

@@ -184,7 +184,7 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
 
 def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path: str | Path | None = None,
              report: str | Path | None = None, curves: str | Path | None = None, examples: int = 3,
-             tile: int = 512, overlap: int | None = None, batch: int = 4, window: str = "hann",
+             tile: int = 512, overlap: int | None = None, batch: int | None = None, window: str = "hann",
              exact: bool = False, tta: bool = False, engine: str = "torch",
              max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True) -> Evaluation:
     """Score a model on every image/mask pair of a labelled folder, by the same tiled inference as ``segment``.

@@ -1,7 +1,7 @@
 """What a mapped image leaves behind: class-id map, confidence, uncertainty, overlay preview, class areas.
 
-From the normalised class probabilities (an H×W×C float32 :class:`~fcnkit.data.raster.RowStore`) one pass of
-row bands derives three 8-bit maps and the per-class pixel counts:
+From the class probabilities, streamed from tiled inference in bands of rows, one pass derives three 8-bit maps
+and the per-class pixel counts:
 
 * labels      — the top class id per pixel (palette PNG with the classes' colours, or a palette TIFF);
 * confidence  — the top class's probability × 255;
@@ -20,7 +20,7 @@ import csv
 import io
 import json
 import math
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -29,6 +29,7 @@ import numpy as np
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import TIFF_SUFFIXES, GeoTags, Raster, RasterSpec, RowStore, write_tiff_streamed
+from fcnkit.errors import ConfigError
 
 PNG_MAX_PIXELS = 50_000_000  # maps of larger images are written as tiled TIFF
 BAND = 64  # rows per pass over the score store (keeps the temporaries of one pass small)
@@ -48,10 +49,10 @@ def to_byte(v: np.ndarray) -> np.ndarray:
 
 
 def class_maps(probs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Labels, confidence and uncertainty (each uint8 h×w) from h×w×C probabilities."""
-    labels = probs.argmax(-1).astype(np.uint8)
-    confidence = to_byte(np.take_along_axis(probs, labels[..., None].astype(np.intp), -1)[..., 0])
-    return labels, confidence, to_byte(normalised_entropy(probs))
+    """Labels, confidence and uncertainty (each uint8 h×w) from C×h×w probabilities."""
+    labels = probs.argmax(0).astype(np.uint8)
+    confidence = to_byte(np.take_along_axis(probs, labels[None].astype(np.intp), 0)[0])
+    return labels, confidence, to_byte(normalised_entropy(probs, axis=0))
 
 
 def overlay(rgb: np.ndarray, labels: np.ndarray, colors: Sequence[tuple[int, int, int]],
@@ -106,28 +107,33 @@ def _colormap(classes: ClassTable) -> np.ndarray:
     return (np.array(classes.palette(), np.uint16).reshape(256, 3).T * 257).astype(np.uint16)
 
 
-def write_outputs(scores: RowStore, raster: Raster, classes: ClassTable, folder: Path, stem: str, *,
-                  work: Path | None, pixel_size: float | tuple[float, float] | None = None,
+def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, classes: ClassTable, folder: Path,
+                  stem: str, *, work: Path | None, pixel_size: float | tuple[float, float] | None = None,
                   preview: int = 1024) -> tuple[dict[str, Path], list[dict[str, Any]]]:
     """Write every output of one image into ``folder`` (each atomically); return their paths and the area rows.
 
-    ``work`` holds the 8-bit maps between passes when the image is large (None: keep them in memory).
+    ``scores`` are the image's class probabilities as (first row, C×h×W) bands from top to bottom, as tiled
+    inference streams them. ``work`` holds the 8-bit maps between passes when the image is large (None: keep
+    them in memory).
     """
-    height, width, _ = scores.shape
+    height, width, _ = raster.shape
     geo = raster.geo
     as_tiff = geo is not None or height * width > PNG_MAX_PIXELS or (
         raster.path is not None and raster.path.suffix.lower() in TIFF_SUFFIXES)
     names = output_names(stem, as_tiff, geo is not None)
     maps = {k: RowStore((height, width), np.uint8, work, k) for k in ("labels", "confidence", "uncertainty")}
     counts = np.zeros(256, np.int64)
-    for y0, y1 in scores.bands(BAND):
-        rows = scores.rows(y0, y1, write=False)
-        for kind, values in zip(maps, class_maps(np.asarray(rows)), strict=True):
-            out = maps[kind].rows(y0, y1)
-            out[:] = values
-            del out
-        counts += np.bincount(maps["labels"].rows(y0, y1, write=False).ravel(), minlength=256)
-        del rows
+    for top, band in scores:
+        if band.shape[0] != classes.num_classes:
+            raise ConfigError(f"model: gives {band.shape[0]} class scores but its class table has "
+                              f"{classes.num_classes} classes")
+        for y0 in range(0, band.shape[1], BAND):
+            values = class_maps(np.asarray(band[:, y0:y0 + BAND]))
+            for kind, v in zip(maps, values, strict=True):
+                out = maps[kind].rows(top + y0, top + y0 + v.shape[0])
+                out[:] = v
+                del out
+            counts += np.bincount(values[0].ravel(), minlength=256)
 
     paths = {k: folder / n for k, n in names.items()}
     tags = geo.extratags() if geo is not None else []

@@ -26,7 +26,7 @@ import torch
 from fcnkit import build_model, load_config
 from fcnkit.geometry import macs
 from fcnkit.nets import layer_graph
-from fcnkit.tiling import TorchEngine, net_geometry, plan_tiles, predict_scores
+from fcnkit.tiling import TorchEngine, auto_batch, net_geometry, plan_tiles, predict_scores
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -58,7 +58,7 @@ def random_net(config: str) -> torch.nn.Module:
     return net
 
 
-def speed(config: str, side: int, repeats: int, peak: float, tile: int = 512, batch: int = 4) -> dict:
+def speed(config: str, side: int, repeats: int, peak: float, tile: int = 512, batch: int | None = None) -> dict:
     net = random_net(config)
     bands = net.bands
     img = np.random.default_rng(0).integers(0, 255, (side, side, bands), dtype=np.uint8)
@@ -88,7 +88,8 @@ def speed(config: str, side: int, repeats: int, peak: float, tile: int = 512, ba
     plan = plan_tiles(net_geometry(net), side, side, tile=tile)
     executed = 2 * sum(macs(graph, *t.shape) for t in plan.tiles())
     return {
-        "config": config, "image": f"{side}x{side}x{bands}", "tile": tile, "batch": batch, "tiles": len(plan.tiles()),
+        "config": config, "image": f"{side}x{side}x{bands}", "tile": tile, "batch": batch or auto_batch(plan),
+        "tiles": len(plan.tiles()),
         "overlap": plan.overlap,
         "naive_mp_s": mp / t_naive, "whole_cl_mp_s": mp / t_cl, "tiled_mp_s": mp / t_tiled,
         "tiled_over_naive": t_naive / t_tiled, "tiled_over_whole_cl": t_cl / t_tiled,
@@ -139,11 +140,11 @@ def main() -> None:
           "work, so absolute speeds are noisy; ratios are taken within this run")
     peak = matmul_peak()
     print(f"float32 matmul peak (torch.mm 2048^3): {peak / 1e9:.1f} GFLOP/s")
-    rows = (("configs/demo.toml", 512, 4), ("configs/fcn8s.toml", 512, 4), ("configs/fcn8s.toml", 1024, 1))
+    rows = (("configs/demo.toml", 512, None), ("configs/fcn8s.toml", 512, None), ("configs/fcn8s.toml", 1024, None))
     for config, tile, batch in rows if args.only in (None, "speed") else ():
         r = speed(config, side, repeats, peak, tile, batch)
         print(json.dumps(r))
-        print(f"  {config} tile {tile} batch {batch}: tiled {r['tiled_mp_s']:.2f} MP/s | tiled/naive NCHW "
+        print(f"  {config} tile {tile} batch {r['batch']}: tiled {r['tiled_mp_s']:.2f} MP/s | tiled/naive NCHW "
               f"{r['tiled_over_naive']:.2f} (target >= 2.5) | tiled/whole channels_last "
               f"{r['tiled_over_whole_cl']:.2f} (target >= 0.9) | "
               f"useful FLOP/s / peak {r['useful_flops_over_peak']:.2f} (target >= 0.5; executed incl. overlap "

@@ -33,7 +33,7 @@ def test_normalised_entropy_is_shannon_entropy_in_base_c():
 
 def test_class_maps_match_argmax_max_and_entropy():
     p = _probs((25, 35, 3), 1)
-    labels, conf, unc = class_maps(p)
+    labels, conf, unc = class_maps(np.moveaxis(p, -1, 0))  # planar C×h×w in
     np.testing.assert_array_equal(labels, p.argmax(-1))  # numpy argmax: first maximum on ties, like torch
     np.testing.assert_array_equal(conf, np.rint(p.max(-1) * 255).astype(np.uint8))
     np.testing.assert_array_equal(unc, np.rint(entropy(p, base=3, axis=-1) * 255).astype(np.uint8))
