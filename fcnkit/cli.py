@@ -92,11 +92,14 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
 
 def add_tile_options(p: argparse.ArgumentParser, max_pixels: int = 2**27) -> None:
     """Options of tiled inference shared by the commands that run it."""
-    p.add_argument("--tile", type=int, default=512, metavar="PX", help="tile side in pixels (default 512)")
+    p.add_argument("--scan", choices=("auto", "rows", "tiles"), default="auto",
+                   help="rows: exact, full-width bands of rows, each layer computed once; tiles: overlapping tiles, "
+                   "blended (any net, flip TTA, other engines); auto (default): rows when the net and settings allow")
+    p.add_argument("--tile", type=int, metavar="PX", help="tile side in pixels (default 512)")
     p.add_argument("--overlap", type=int, metavar="PX", help="tile overlap (default: from the net's receptive field)")
     p.add_argument("--batch", type=int, metavar="N",
                    help="tiles per forward pass (default: as many as make about a quarter megapixel)")
-    p.add_argument("--window", choices=("hann", "linear", "none"), default="hann",
+    p.add_argument("--window", choices=("hann", "linear", "none"),
                    help="blending window over tile overlaps (default hann)")
     p.add_argument("--exact", action="store_true", help="exact tiling: equal to whole-image inference")
     p.add_argument("--tta", action="store_true", help="average over horizontal and vertical flips")
@@ -110,7 +113,7 @@ def _evaluate(args: argparse.Namespace) -> int:
     from fcnkit.evaluate import evaluate
 
     r = evaluate(args.model, args.data, json_path=args.json, report=args.report, curves=args.curves,
-                 examples=args.examples, tile=args.tile, overlap=args.overlap, batch=args.batch,
+                 examples=args.examples, scan=args.scan, tile=args.tile, overlap=args.overlap, batch=args.batch,
                  window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
                  max_pixels=args.max_pixels, progress=not args.quiet)
     print(r.table())
@@ -137,9 +140,9 @@ def _add_evaluate(sub: argparse._SubParsersAction) -> None:
 def _segment(args: argparse.Namespace) -> int:
     from fcnkit import segment_images
 
-    segment_images(args.model, args.inputs, args.out, tile=args.tile, overlap=args.overlap, batch=args.batch,
-                   window=args.window, exact=args.exact, tta=args.tta, engine=args.engine, bf16=args.bf16,
-                   pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
+    segment_images(args.model, args.inputs, args.out, scan=args.scan, tile=args.tile, overlap=args.overlap,
+                   batch=args.batch, window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
+                   bf16=args.bf16, pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
                    progress=not args.quiet, echo=print)
     return 0
 

@@ -36,7 +36,7 @@ from fcnkit.losses import pixel_cross_entropy
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.modelfile import LoadedModel, load_model
 from fcnkit.outputs import normalised_entropy, strided_rgb
-from fcnkit.tiling import predict_scores
+from fcnkit.tiling import DEFAULT_TILE, choose_scan, predict_scores
 
 if TYPE_CHECKING:
     from fcnkit.report import Example
@@ -184,10 +184,11 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
 
 def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path: str | Path | None = None,
              report: str | Path | None = None, curves: str | Path | None = None, examples: int = 3,
-             tile: int = 512, overlap: int | None = None, batch: int | None = None, window: str = "hann",
-             exact: bool = False, tta: bool = False, engine: str = "torch",
+             scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
+             window: str | None = None, exact: bool = False, tta: bool = False, engine: str = "torch",
              max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True) -> Evaluation:
-    """Score a model on every image/mask pair of a labelled folder, by the same tiled inference as ``segment``.
+    """Score a model on every image/mask pair of a labelled folder, by the same row streaming or tiled inference
+    as ``segment`` (the same ``scan`` and tile settings).
 
     Writes the scores as JSON to ``json_path`` and an HTML report to ``report`` when given. ``curves`` is a
     training metrics CSV for the report (default: ``metrics.csv`` beside the model file, when present);
@@ -208,8 +209,11 @@ def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path
         model = load_model(model)
     samples, classes = find_samples(data_dir)
     same_classes(model.meta.classes, classes, name, data_dir)
-    settings = {"tile": tile, "overlap": overlap, "batch": batch, "window": window, "exact": exact, "tta": tta}
-    runner = make_engine(engine, model.model)
+    settings = {"scan": scan, "tile": tile, "overlap": overlap, "batch": batch, "window": window, "exact": exact,
+                "tta": tta}
+    tiles_asked = any(v is not None for v in (tile, overlap, batch, window))
+    used = choose_scan(model.model, scan, tiles_asked=tiles_asked, tta=tta, engine=engine)
+    runner = make_engine(engine, model.model) if engine != "torch" else None
     k = classes.num_classes
     cm = np.zeros((k, k), np.int64)
     scored: list[tuple[ImageScore, Example]] = []
@@ -229,7 +233,9 @@ def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path
 
         worst = sorted((e for _, e in scored if not math.isnan(e.score)), key=lambda e: e.score)[:examples]
         facts = {"model": name, "data": str(data_dir), "images": str(len(samples)),
-                 "tiles": f"{tile} px, {window} window" + (", exact" if exact else "") + (", flip TTA" if tta else "")}
+                 "scan": "rows (exact)" if used == "rows" else
+                 f"tiles of {tile or DEFAULT_TILE} px, {window or 'hann'} window" + (", exact" if exact else "")
+                 + (", flip TTA" if tta else "")}
         result.paths["report"] = write_report(report, result.scores, cm, classes, facts=facts, curves=curves,
                                               title=f"Evaluation on {data_dir.name}", examples=worst,
                                               description=describe(model.model))

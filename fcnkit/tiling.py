@@ -38,7 +38,9 @@ IN_MEMORY_PIXELS = 4_000_000  # scores of smaller images stay in memory, of larg
 # Measured with scripts/bench_tiling.py on a 2-core CPU: one pass of a 512×512 tile ran 1.4× faster per pixel
 # than a batch of four (activations of a few tens of MB stay in the last-level cache).
 AUTO_BATCH_PIXELS = 512 * 512
-SCORES_IN_MEMORY_BYTES = 256 << 20  # predict_scores returns larger results as a memory map on a file
+SCORES_IN_MEMORY_BYTES = 256 << 20
+SCANS = ("auto", "rows", "tiles")
+DEFAULT_TILE = 512  # predict_scores returns larger results as a memory map on a file
 
 
 # --- geometry of the net ----------------------------------------------------------------------------------
@@ -344,35 +346,78 @@ def as_raster(image_or_reader: np.ndarray | Raster) -> Raster:
     return ArrayRaster(image_or_reader) if isinstance(image_or_reader, np.ndarray) else image_or_reader
 
 
+def choose_scan(model: nn.Module, scan: str = "auto", *, tiles_asked: bool = False, tta: bool = False,
+                engine: Engine | str | None = None) -> str:
+    """How an image will be scanned: ``"rows"`` (exact row streaming, :mod:`fcnkit.rowstream`) or ``"tiles"``
+    (overlapping tiles, blended). ``auto`` takes rows for a config-built net run by torch, unless flip TTA or
+    tile settings (``tiles_asked``) call for tiles; ConfigError when ``rows`` is asked for and impossible."""
+    from fcnkit.rowstream import NotStreamable, RowStreamer
+
+    if scan not in SCANS:
+        raise ConfigError(f"scan: {scan!r} is not one of: {', '.join(SCANS)}")
+    if scan == "tiles":
+        return "tiles"
+    conflicts = [name for name, bad in (("tta", tta), ("tile, overlap, batch or window", tiles_asked),
+                                        ("engine", engine not in (None, "torch"))) if bad]
+    if conflicts:
+        if scan == "rows":
+            raise ConfigError(f"scan: rows cannot be combined with {', '.join(conflicts)} (use scan tiles)")
+        return "tiles"
+    try:
+        RowStreamer(model)
+    except NotStreamable:
+        if scan == "rows":
+            raise
+        return "tiles"
+    return "rows"
+
+
 def tiled_scores(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
-                 std: Sequence[float] | None, tile: int, overlap: int | None, batch: int | None, window: str,
-                 exact: bool, tta: bool, logits: bool, bf16: bool, engine: Engine | None, progress: bool,
+                 std: Sequence[float] | None, scan: str = "auto", tile: int | None = None,
+                 overlap: int | None = None, batch: int | None = None, window: str | None = None,
+                 exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
+                 engine: Engine | str | None = None, progress: bool = False,
                  desc: str = "tiles") -> Iterator[tuple[int, torch.Tensor]]:
-    """Check the settings, plan the tiles and stream the scores of ``raster`` (see :func:`stream_scores`).
-    The checks run at once, before the first band is asked for."""
+    """Check the settings, choose the scan (:func:`choose_scan`) and stream the scores of ``raster`` as
+    (first row, C×h×W float32) bands from top to bottom. The checks run at once, before the first band is
+    asked for. Tile settings left as None take their defaults (512 px tiles, Hann window)."""
+    from fcnkit.export import make_engine
+    from fcnkit.rowstream import RowStreamer
+
     if batch is not None and batch < 1:
         raise ConfigError(f"batch: {batch} must be >= 1")
     if exact and tta:
         raise ConfigError("tta: flip test-time augmentation cannot be combined with exact tiling "
                           "(flipped tiles see different pooling grids)")
     height, width, bands = raster.shape
-    plan = plan_tiles(net_geometry(model), height, width, tile=tile, overlap=overlap, window=window, exact=exact)
-    batch = batch or auto_batch(plan)
-    check_plan_memory(model, plan, batch, bands)
     mean = [0.0] * bands if mean is None else list(mean)
     std = [1.0] * bands if std is None else list(std)
-    return stream_scores(engine or TorchEngine(model, bf16), raster, plan, mean=mean, std=std, batch=batch,
-                         tta=tta, logits=logits, progress=progress, desc=desc)
+    asked = any(v is not None for v in (tile, overlap, batch, window))
+    if choose_scan(model, scan, tiles_asked=asked, tta=tta, engine=engine) == "rows":
+        streamer = RowStreamer(model, bf16)
+        check_forward_memory_of(model, streamer.band_rows(width), width, 1, bands)
+        return streamer.stream(raster, mean=mean, std=std, logits=logits, progress=progress, desc=desc)
+    plan = plan_tiles(net_geometry(model), height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
+                      window=window or "hann", exact=exact)
+    batch = batch or auto_batch(plan)
+    check_plan_memory(model, plan, batch, bands)
+    if engine is None or isinstance(engine, str):
+        engine = TorchEngine(model, bf16) if engine in (None, "torch") else make_engine(engine, model)
+    return stream_scores(engine, raster, plan, mean=mean, std=std, batch=batch, tta=tta, logits=logits,
+                         progress=progress, desc=desc)
 
 
 def check_plan_memory(model: nn.Module, plan: TilePlan, batch: int, bands: int) -> None:
     """Refuse a tile and batch size whose forward pass would not fit in the memory available (fcnkit.memory)."""
+    rows, cols = max(s.stop - s.start for s in plan.rows), max(s.stop - s.start for s in plan.cols)
+    check_forward_memory_of(model, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands)
+
+
+def check_forward_memory_of(model: nn.Module, rows: int, cols: int, batch: int, bands: int) -> None:
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
 
-    rows, cols = max(s.stop - s.start for s in plan.rows), max(s.stop - s.start for s in plan.cols)
-    check_forward_memory(layer_graph(model), rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,
-                         factor=plan.factor)
+    check_forward_memory(layer_graph(model), rows, cols, batch, bands, factor=net_geometry(model).factor)
 
 
 def _probe_classes(engine: Engine, bands: int, factor: int) -> int:
@@ -381,14 +426,16 @@ def _probe_classes(engine: Engine, bands: int, factor: int) -> int:
 
 
 def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, mean: Sequence[float] | None = None,
-                   std: Sequence[float] | None = None, tile: int = 512, overlap: int | None = None,
-                   batch: int | None = None, window: str = "hann", exact: bool = False, tta: bool = False,
-                   logits: bool = False, bf16: bool = False, workdir: str | Path | None = None,
-                   engine: Engine | None = None, progress: bool = False) -> np.ndarray:
-    """Class probabilities (or ``logits``) C×H×W float32 of an H×W×B image, by tiled inference.
+                   std: Sequence[float] | None = None, scan: str = "auto", tile: int | None = None,
+                   overlap: int | None = None, batch: int | None = None, window: str | None = None,
+                   exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
+                   workdir: str | Path | None = None, engine: Engine | str | None = None,
+                   progress: bool = False) -> np.ndarray:
+    """Class probabilities (or ``logits``) C×H×W float32 of an H×W×B image, by row streaming or tiles.
 
-    ``mean``/``std`` normalise the raw bands (default none). ``batch`` is the number of tiles per forward pass
-    (default: as many as fit in about a quarter megapixel). Results above 256 MB are a memory map on a file
+    ``mean``/``std`` normalise the raw bands (default none). ``scan`` picks exact row streaming or
+    overlapping tiles (:func:`choose_scan`); ``batch`` is the number of tiles per forward pass (default: as
+    many as fit in about a quarter megapixel). Results above 256 MB are a memory map on a file
     in ``workdir`` (default: an unnamed temporary file). ``engine`` replaces the torch forward pass.
     """
     import tempfile
@@ -396,9 +443,9 @@ def predict_scores(model: nn.Module, image_or_reader: np.ndarray | Raster, *, me
     raster = as_raster(image_or_reader)
     h, w, _ = raster.shape
     out: np.ndarray | None = None
-    for y0, band in tiled_scores(model, raster, mean=mean, std=std, tile=tile, overlap=overlap, batch=batch,
-                                 window=window, exact=exact, tta=tta, logits=logits, bf16=bf16, engine=engine,
-                                 progress=progress):
+    for y0, band in tiled_scores(model, raster, mean=mean, std=std, scan=scan, tile=tile, overlap=overlap,
+                                 batch=batch, window=window, exact=exact, tta=tta, logits=logits, bf16=bf16,
+                                 engine=engine, progress=progress):
         if out is None:
             shape = (band.shape[0], h, w)
             if workdir is None and np.prod(shape) * 4 <= SCORES_IN_MEMORY_BYTES:
@@ -464,11 +511,12 @@ def _prepare_folder(out_dir: Path) -> None:
         raise DataError(f"{out_dir}: cannot create the output folder ({e.strerror})") from None
 
 
-def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | Path, *, tile: int = 512,
-                  overlap: int | None = None, batch: int | None = None, window: str = "hann", exact: bool = False,
+def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | Path, *, scan: str = "auto",
+                  tile: int | None = None, overlap: int | None = None, batch: int | None = None,
+                  window: str | None = None, exact: bool = False,
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
                   max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
-                  engine: Engine | None = None, preview: int = 1024) -> SegmentResult:
+                  engine: Engine | str | None = None, preview: int = 1024) -> SegmentResult:
     """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
 
     ``model_or_path`` is a model file, a :class:`~fcnkit.modelfile.LoadedModel` or a bare module. Writes
@@ -496,9 +544,9 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
         height, width, bands = raster.shape
         if bands != len(loaded.meta.mean):
             raise DataError(f"{image_path}: has {bands} bands but the model expects {len(loaded.meta.mean)}")
-        scores = tiled_scores(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, tile=tile,
-                              overlap=overlap, batch=batch, window=window, exact=exact, tta=tta, logits=False,
-                              bf16=bf16, engine=engine, progress=progress, desc=image_path.name)
+        scores = tiled_scores(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, scan=scan,
+                              tile=tile, overlap=overlap, batch=batch, window=window, exact=exact, tta=tta,
+                              logits=False, bf16=bf16, engine=engine, progress=progress, desc=image_path.name)
         done = work / "done"
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
@@ -560,14 +608,11 @@ def segment_images(model_or_path: object, inputs: Sequence[str | Path], out_dir:
     "onnxruntime"), built once for all images."""
     loaded = _as_loaded(model_or_path)
     files = shard(find_images(inputs), rank, world)
-    engine = options.pop("engine", None)
-    if engine == "torch" or engine is None:
-        engine = TorchEngine(loaded.model, options.get("bf16", False))
-    elif isinstance(engine, str):
+    engine = options.get("engine")
+    if isinstance(engine, str) and engine != "torch":  # e.g. onnxruntime: build the session once
         from fcnkit.export import make_engine
 
-        engine = make_engine(engine, loaded.model)
-    options["engine"] = engine
+        options["engine"] = make_engine(engine, loaded.model)
     results = []
     for path in files:
         start = time.perf_counter()

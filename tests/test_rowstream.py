@@ -1,0 +1,138 @@
+"""Row streaming: exact against whole-image inference on random nets and odd sizes, bounded look-ahead, choice
+of scan, refusals."""
+
+import numpy as np
+import pytest
+import torch
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
+from model_strategies import model_configs
+from torch import nn
+
+from fcnkit import build_model
+from fcnkit.config import config_from_dict
+from fcnkit.data.raster import ArrayRaster
+from fcnkit.errors import ConfigError
+from fcnkit.rowstream import NotStreamable, RowStreamer
+from fcnkit.tiling import choose_scan, net_geometry, predict_scores
+
+
+def _randomise(net: nn.Module, seed: int) -> nn.Module:
+    """Non-trivial batch-norm statistics and transposed kernels (not just bilinear), as after training."""
+    g = torch.Generator().manual_seed(seed)
+    for m in net.modules():
+        if isinstance(m, nn.BatchNorm2d):
+            m.running_mean.copy_(torch.rand(m.num_features, generator=g) - 0.5)
+            m.running_var.copy_(torch.rand(m.num_features, generator=g) + 0.5)
+        if isinstance(m, nn.ConvTranspose2d):
+            m.weight.data.add_(0.1 * torch.randn(m.weight.shape, generator=g))
+    return net.eval()
+
+
+def _whole(net: nn.Module, img: np.ndarray) -> np.ndarray:
+    with torch.no_grad():
+        return net(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()
+
+
+def _stream(net: nn.Module, img: np.ndarray, rows: int | None = None) -> list[tuple[int, np.ndarray]]:
+    bands = img.shape[2]
+    return [(y0, b.numpy()) for y0, b in RowStreamer(net).stream(ArrayRaster(img), mean=[0.0] * bands,
+                                                                 std=[1.0] * bands, logits=True, rows=rows)]
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(m=model_configs(norms=("batch", "none")), seed=st.integers(0, 1000), h=st.integers(1, 90),
+       w=st.integers(1, 70), rows=st.integers(1, 40))
+def test_row_streaming_equals_whole_image_inference(m, seed, h, w, rows):
+    # Reference: the same net run on the whole image at once (torch). Streaming must give the same logits up
+    # to float rounding (<= 1e-4, the issue's bound for exact inference) and the same labels, for every
+    # config option (strides 2 and 3, dilations, both down-samplings and up-samplings, all fusions), odd
+    # sizes and band heights that are not multiples of the factor.
+    assume(h * w >= 1)
+    torch.manual_seed(seed)
+    net = _randomise(build_model(m), seed)
+    img = np.random.default_rng(seed).normal(size=(h, w, m.bands)).astype(np.float32)
+    ref = _whole(net, img)
+    bands = _stream(net, img, rows * net.factor)
+    assert [y0 for y0, _ in bands] == list(np.cumsum([0] + [b.shape[1] for _, b in bands])[:-1])
+    out = np.concatenate([b for _, b in bands], axis=1)
+    assert out.shape == ref.shape
+    np.testing.assert_allclose(out, ref, atol=1e-4, rtol=0)
+    assert np.array_equal(out.argmax(0), ref.argmax(0))
+
+
+def test_shipped_configs_stream_exactly():
+    # Reference: whole-image inference (torch), on an image several bands high with sides not divisible by
+    # the nets' factors.
+    from pathlib import Path
+
+    from fcnkit.config import load_config
+
+    for name in ("demo", "fcn8s", "fcn32s", "unet", "tiny"):
+        net = _randomise(build_model(load_config(Path(__file__).parents[1] / "configs" / f"{name}.toml")), 1)
+        img = np.random.default_rng(0).normal(size=(157, 83, net.bands)).astype(np.float32)
+        bands = _stream(net, img, rows=net.factor)
+        assert len(bands) > 1
+        np.testing.assert_allclose(np.concatenate([b for _, b in bands], axis=1), _whole(net, img), atol=1e-4)
+
+
+class _CountingRaster(ArrayRaster):
+    """Records the deepest row read so far."""
+
+    deepest = 0
+
+    def read(self, y0, y1, x0, x1):
+        self.deepest = max(self.deepest, y1)
+        return super().read(y0, y1, x0, x1)
+
+
+def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
+    # A tall image streams: the first scores arrive after reading a few bands (the receptive field's depth),
+    # not the whole image, and the rows carried over between bands do not grow with the height.
+    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4, 4], "min_size": 8}})
+    net = build_model(cfg).eval()
+    raster = _CountingRaster(np.random.default_rng(0).random((4000, 40, 1)).astype(np.float32))
+    streamer = RowStreamer(net)
+    stream = streamer.stream(raster, mean=[0.0], std=[1.0], rows=16)
+    y0, first = next(stream)
+    field = net_geometry(net).margin
+    assert y0 == 0 and first.shape[1] > 0
+    assert raster.deepest <= 2 * 16 + 2 * field  # the first band, the one being prefetched and the field
+    assert sum(b.shape[1] for _, b in stream) + first.shape[1] == 4000
+
+
+def test_auto_scan_streams_config_nets_and_tiles_the_rest():
+    net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
+    assert choose_scan(net) == "rows"
+    assert choose_scan(net, tta=True) == "tiles"  # flips need tiles
+    assert choose_scan(net, tiles_asked=True) == "tiles"  # tile settings given: the user wants tiles
+    assert choose_scan(net, engine="onnxruntime") == "tiles"
+    assert choose_scan(net, "tiles") == "tiles"
+    other = nn.Sequential(nn.Conv2d(1, 2, 3, padding=1))  # not a config-built net
+    assert choose_scan(other) == "tiles"
+    with pytest.raises(NotStreamable, match="Sequential cannot be streamed"):
+        choose_scan(other, "rows")
+    with pytest.raises(ConfigError, match=r"scan: rows cannot be combined with tta"):
+        choose_scan(net, "rows", tta=True)
+    with pytest.raises(ConfigError, match=r"scan: 'columns' is not one of: auto, rows, tiles"):
+        choose_scan(net, "columns")
+
+
+def test_group_norm_nets_are_not_streamed_but_still_mapped():
+    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "norm": "group", "min_size": 8}})
+    net = build_model(cfg).eval()
+    with pytest.raises(NotStreamable, match="GroupNorm cannot be streamed"):
+        RowStreamer(net)
+    probs = predict_scores(net, np.zeros((40, 40, 1), np.float32))  # auto: tiles, blended
+    np.testing.assert_allclose(probs.sum(0), 1.0, atol=1e-5)
+
+
+def test_predict_scores_rows_equal_exact_tiles():
+    # Two independent exact paths must agree: row streaming and exact tiling (both against the whole image).
+    cfg = config_from_dict({"model": {"bands": 2, "classes": 3, "widths": [4, 8, 8], "fusion": "sum",
+                                      "skips": [2], "min_size": 8}})
+    net = _randomise(build_model(cfg), 5)
+    img = np.random.default_rng(2).random((301, 257, 2)).astype(np.float32)
+    rows = predict_scores(net, img, scan="rows")
+    tiles = predict_scores(net, img, scan="tiles", tile=96, exact=True)
+    np.testing.assert_allclose(rows, tiles, atol=1e-5)
