@@ -8,12 +8,13 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from model_strategies import model_configs
 from torch import nn
+from torch.nn import functional as F
 
 from fcnkit import build_model
 from fcnkit.config import config_from_dict
 from fcnkit.data.raster import ArrayRaster
 from fcnkit.errors import ConfigError
-from fcnkit.rowstream import NotStreamable, RowStreamer
+from fcnkit.rowstream import NotStreamable, RowStreamer, block_max
 from fcnkit.tiling import choose_scan, net_geometry, predict_scores
 
 
@@ -136,3 +137,29 @@ def test_predict_scores_rows_equal_exact_tiles():
     rows = predict_scores(net, img, scan="rows")
     tiles = predict_scores(net, img, scan="tiles", tile=96, exact=True)
     np.testing.assert_allclose(rows, tiles, atol=1e-5)
+
+
+@settings(max_examples=40, deadline=None)
+@given(k=st.sampled_from([2, 3]), c=st.integers(1, 9), h=st.integers(1, 40), w=st.integers(1, 40),
+       seed=st.integers(0, 100), channels_last=st.booleans())
+def test_block_max_equals_torch_max_pooling(k, c, h, w, seed, channels_last):
+    # Reference: torch.nn.functional.max_pool2d (kernel = stride = k, no padding), NaN included.
+    assume(h >= k and w >= k)
+    x = torch.randn(1, c, h, w, generator=torch.Generator().manual_seed(seed))
+    x[0, 0, 0, 0] = float("nan")
+    if channels_last:
+        x = x.contiguous(memory_format=torch.channels_last)
+    torch.testing.assert_close(block_max(x, k), F.max_pool2d(x, k), equal_nan=True, rtol=0, atol=0)
+
+
+def test_fused_convolution_relu_equals_conv_then_relu():
+    # Reference: F.conv2d followed by F.relu (torch), on the fused oneDNN kernel row streaming uses.
+    from fcnkit.rowstream import FUSED_RELU, _conv_relu
+
+    if not FUSED_RELU:
+        pytest.skip("this torch build has no fused oneDNN convolution")
+    conv = nn.Conv2d(5, 7, 3, stride=(2, 1), padding=1, dilation=(1, 2))
+    x = torch.randn(1, 5, 23, 31).contiguous(memory_format=torch.channels_last)
+    with torch.no_grad():
+        ref = F.relu(F.conv2d(x, conv.weight, conv.bias, (2, 1), (0, 1), (1, 2)))
+        torch.testing.assert_close(_conv_relu(x, conv, (2, 1), (0, 1), (1, 2)), ref, rtol=0, atol=1e-5)
