@@ -7,8 +7,8 @@ Everything happens in one output folder (default ``fcnkit-demo``), in the invent
 2. ``configs/demo.toml`` is trained on the training scenes (a validation split is held back by the trainer);
 3. the best model is evaluated on the test scenes, with the JSON scores and the HTML report;
 4. a large GeoTIFF mosaic (8192×8192 by default) and its true labels are written block by block;
-5. the mosaic is mapped by tiled inference (labels, confidence, uncertainty, overlay, area table), and the
-   map is scored against the mosaic's true labels.
+5. the mosaic is mapped by exact row streaming (labels, confidence, uncertainty, overlay, area table), and
+   the map is scored against the mosaic's true labels.
 
 The ``quick`` plan runs the same steps at toy sizes in seconds (the test suite runs it).
 """
@@ -42,14 +42,12 @@ class DemoPlan:
     test_scenes: int = 8
     scene_size: int = 256
     mosaic_size: int = 8192
-    tile: int = 512
-    batch: int = 4
     seed: int = 2026
     train: dict[str, Any] = field(default_factory=dict)  # overrides of the config's [train] table
 
 
 FULL = DemoPlan()
-QUICK = DemoPlan(train_scenes=5, test_scenes=2, scene_size=96, mosaic_size=640, tile=256, batch=2,
+QUICK = DemoPlan(train_scenes=5, test_scenes=2, scene_size=96, mosaic_size=640,
                  train={"epochs": 1, "patches_per_epoch": 8, "batch": 4, "patch": 64})
 
 
@@ -161,8 +159,7 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
 
     echo(f"[3/{n}] evaluating the model on the {plan.test_scenes} held-out test scenes")
     ev = evaluate(paths["model"], paths["test_scenes"], json_path=out / "evaluation.json",
-                  report=out / "report.html", curves=paths["curves"], tile=plan.tile, batch=plan.batch,
-                  progress=progress)
+                  report=out / "report.html", curves=paths["curves"], progress=progress)
     paths["evaluation"], paths["report"] = ev.paths["json"], ev.paths["report"]
     figures["test"] = {k: ev.scores[k] for k in ("pixel_accuracy", "mean_accuracy", "mean_iou", "fw_iou")}
     step("evaluate", "\n".join("      " + line for line in ev.table().splitlines()))
@@ -175,9 +172,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     paths["mosaic_truth"] = out / "mosaic_truth.tif"
     step("mosaic", "")
 
-    echo(f"[5/{n}] mapping the mosaic by tiled inference ({plan.tile} px tiles, Hann blending)")
-    seg = segment_image(paths["model"], paths["mosaic"], out / "map", tile=plan.tile, batch=plan.batch,
-                        progress=progress)
+    echo(f"[5/{n}] mapping the mosaic in bands of rows (exact: equal to whole-image inference)")
+    seg = segment_image(paths["model"], paths["mosaic"], out / "map", progress=progress)
     paths.update({f"map_{k}": Path(v) for k, v in seg.paths.items()})
     label_path = seg.paths["labels"]
     mosaic_scores = _score_map(label_path, paths["mosaic_truth"], SCENE_CLASSES.num_classes, SCENE_CLASSES.ignore)

@@ -20,6 +20,7 @@ from __future__ import annotations
 import copy
 import math
 import time
+import weakref
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -31,6 +32,7 @@ from torch import nn
 
 from fcnkit.data.raster import SEGMENT_MAX_PIXELS, ArrayRaster, Raster
 from fcnkit.errors import ConfigError
+from fcnkit.rowstream import NotStreamable, RowStreamer
 from fcnkit.windows import check_window, window
 
 Engine = Callable[[torch.Tensor], torch.Tensor]
@@ -41,6 +43,25 @@ AUTO_BATCH_PIXELS = 512 * 512
 SCORES_IN_MEMORY_BYTES = 256 << 20
 SCANS = ("auto", "rows", "tiles")
 DEFAULT_TILE = 512  # predict_scores returns larger results as a memory map on a file
+
+
+_PREPARED: weakref.WeakKeyDictionary[nn.Module, dict[str, tuple[tuple, object]]] = weakref.WeakKeyDictionary()
+
+
+def prepared(model: nn.Module, what: str, build: Callable[[nn.Module], object]) -> object:
+    """``build(model)`` (a BN-folded copy, a traced graph…), remembered for ``model`` as long as its weights
+    are the same tensors, unchanged (their storage and in-place version counters), so mapping many images or
+    bands with one model prepares it once; any change to the weights prepares it afresh."""
+    try:
+        state = tuple((t.data_ptr(), t._version) for t in (*model.parameters(), *model.buffers()))
+    except RuntimeError:  # tensors made under inference mode carry no version counter: do not remember
+        return build(model)
+    entry = _PREPARED.setdefault(model, {})
+    if what in entry and entry[what][0] == state:
+        return entry[what][1]
+    value = build(model)
+    entry[what] = (state, value)
+    return value
 
 
 # --- geometry of the net ----------------------------------------------------------------------------------
@@ -58,6 +79,10 @@ class NetGeometry:
 
 def net_geometry(model: nn.Module) -> NetGeometry:
     """Read the geometry off ``model`` (any module whose graph :func:`fcnkit.nets.layer_graph` can trace)."""
+    return prepared(model, "geometry", _read_geometry)  # type: ignore[return-value]
+
+
+def _read_geometry(model: nn.Module) -> NetGeometry:
     from fcnkit.describe import describe_graph
     from fcnkit.nets import layer_graph
 
@@ -351,8 +376,6 @@ def choose_scan(model: nn.Module, scan: str = "auto", *, tiles_asked: bool = Fal
     """How an image will be scanned: ``"rows"`` (exact row streaming, :mod:`fcnkit.rowstream`) or ``"tiles"``
     (overlapping tiles, blended). ``auto`` takes rows for a config-built net run by torch, unless flip TTA or
     tile settings (``tiles_asked``) call for tiles; ConfigError when ``rows`` is asked for and impossible."""
-    from fcnkit.rowstream import NotStreamable, RowStreamer
-
     if scan not in SCANS:
         raise ConfigError(f"scan: {scan!r} is not one of: {', '.join(SCANS)}")
     if scan == "tiles":
@@ -364,12 +387,16 @@ def choose_scan(model: nn.Module, scan: str = "auto", *, tiles_asked: bool = Fal
             raise ConfigError(f"scan: rows cannot be combined with {', '.join(conflicts)} (use scan tiles)")
         return "tiles"
     try:
-        RowStreamer(model)
+        _streamer(model, False)
     except NotStreamable:
         if scan == "rows":
             raise
         return "tiles"
     return "rows"
+
+
+def _streamer(model: nn.Module, bf16: bool) -> RowStreamer:
+    return prepared(model, f"rows-bf16={bf16}", lambda m: RowStreamer(m, bf16))  # type: ignore[return-value]
 
 
 def tiled_scores(model: nn.Module, raster: Raster, *, mean: Sequence[float] | None,
@@ -382,7 +409,6 @@ def tiled_scores(model: nn.Module, raster: Raster, *, mean: Sequence[float] | No
     (first row, C×h×W float32) bands from top to bottom. The checks run at once, before the first band is
     asked for. Tile settings left as None take their defaults (512 px tiles, Hann window)."""
     from fcnkit.export import make_engine
-    from fcnkit.rowstream import RowStreamer
 
     if batch is not None and batch < 1:
         raise ConfigError(f"batch: {batch} must be >= 1")
@@ -394,7 +420,7 @@ def tiled_scores(model: nn.Module, raster: Raster, *, mean: Sequence[float] | No
     std = [1.0] * bands if std is None else list(std)
     asked = any(v is not None for v in (tile, overlap, batch, window))
     if choose_scan(model, scan, tiles_asked=asked, tta=tta, engine=engine) == "rows":
-        streamer = RowStreamer(model, bf16)
+        streamer = _streamer(model, bf16)
         check_forward_memory_of(model, streamer.band_rows(width), width, 1, bands)
         return streamer.stream(raster, mean=mean, std=std, logits=logits, progress=progress, desc=desc)
     plan = plan_tiles(net_geometry(model), height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
@@ -402,7 +428,8 @@ def tiled_scores(model: nn.Module, raster: Raster, *, mean: Sequence[float] | No
     batch = batch or auto_batch(plan)
     check_plan_memory(model, plan, batch, bands)
     if engine is None or isinstance(engine, str):
-        engine = TorchEngine(model, bf16) if engine in (None, "torch") else make_engine(engine, model)
+        engine = (prepared(model, f"engine-bf16={bf16}", lambda m: TorchEngine(m, bf16)) if engine in (None, "torch")
+                  else make_engine(engine, model))
     return stream_scores(engine, raster, plan, mean=mean, std=std, batch=batch, tta=tta, logits=logits,
                          progress=progress, desc=desc)
 
@@ -417,7 +444,8 @@ def check_forward_memory_of(model: nn.Module, rows: int, cols: int, batch: int, 
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
 
-    check_forward_memory(layer_graph(model), rows, cols, batch, bands, factor=net_geometry(model).factor)
+    graph = prepared(model, "graph", layer_graph)
+    check_forward_memory(graph, rows, cols, batch, bands, factor=net_geometry(model).factor)  # type: ignore[arg-type]
 
 
 def _probe_classes(engine: Engine, bands: int, factor: int) -> int:

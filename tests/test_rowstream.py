@@ -163,3 +163,20 @@ def test_fused_convolution_relu_equals_conv_then_relu():
     with torch.no_grad():
         ref = F.relu(F.conv2d(x, conv.weight, conv.bias, (2, 1), (0, 1), (1, 2)))
         torch.testing.assert_close(_conv_relu(x, conv, (2, 1), (0, 1), (1, 2)), ref, rtol=0, atol=1e-5)
+
+
+def test_prepared_nets_are_rebuilt_when_the_weights_change():
+    # Regression guard for the per-model cache: a BN-folded copy must never outlive a change of the weights
+    # (in-place updates as by an optimiser, or new parameter tensors).
+    net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
+    net = _randomise(net, 0)
+    img = np.random.default_rng(0).random((32, 40, 1)).astype(np.float32)
+    before = predict_scores(net, img, logits=True)
+    np.testing.assert_array_equal(predict_scores(net, img, logits=True), before)
+    with torch.no_grad():
+        next(net.parameters()).mul_(-1.5)  # in place
+    after = predict_scores(net, img, logits=True)
+    np.testing.assert_allclose(after, _whole(net, img), atol=1e-4)
+    assert not np.allclose(after, before)
+    net.body.decoder.head[-1].weight = nn.Parameter(torch.zeros_like(net.body.decoder.head[-1].weight))
+    np.testing.assert_allclose(predict_scores(net, img, logits=True), _whole(net, img), atol=1e-4)
