@@ -165,11 +165,21 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
     return paths, rows
 
 
+def display_rgb(image: np.ndarray) -> np.ndarray:
+    """H×W×3 uint8 for display: first three bands (or one, as grey), each stretched between its 2nd and 98th
+    percentile, so 16-bit and float images show as well as 8-bit ones."""
+    bands = image[..., :3] if image.shape[-1] >= 3 else np.repeat(image[..., :1], 3, axis=-1)
+    out = np.empty(bands.shape, np.uint8)
+    for b in range(3):
+        v = bands[..., b].astype(np.float32)
+        lo, hi = np.percentile(v, [2, 98]) if v.size else (0.0, 1.0)
+        out[..., b] = np.clip((v - lo) / max(hi - lo, 1e-6) * 255, 0, 255).astype(np.uint8)
+    return out
+
+
 def strided_rgb(raster: Raster, step: int, offset: int = 0) -> np.ndarray:
     """Every ``step``-th pixel of the image from ``offset``, as display RGB, read a band of rows at a time
     (copies, so each band's full rows are freed at once)."""
-    from fcnkit.report import display_rgb
-
     height, width, _ = raster.shape
     band = step * max(1, 512 // step)
     parts = [raster.read(y0, min(y0 + band, height), 0, width)[offset::step, offset::step].copy()

@@ -60,18 +60,6 @@ class Example:
     uncertainty: np.ndarray  # H×W in [0, 1] (normalised entropy)
 
 
-def display_rgb(image: np.ndarray) -> np.ndarray:
-    """H×W×3 uint8 for display: first three bands (or one, as grey), each stretched between its 2nd and 98th
-    percentile, so 16-bit and float images show as well as 8-bit ones."""
-    bands = image[..., :3] if image.shape[-1] >= 3 else np.repeat(image[..., :1], 3, axis=-1)
-    out = np.empty(bands.shape, np.uint8)
-    for b in range(3):
-        v = bands[..., b].astype(np.float32)
-        lo, hi = np.percentile(v, [2, 98]) if v.size else (0.0, 1.0)
-        out[..., b] = np.clip((v - lo) / max(hi - lo, 1e-6) * 255, 0, 255).astype(np.uint8)
-    return out
-
-
 def shrink(array: np.ndarray, side: int = PANEL_SIDE) -> np.ndarray:
     """Nearest-neighbour subsample so the longest side is at most ``side`` (keeps class ids intact)."""
     step = max(1, math.ceil(max(array.shape[:2]) / side))

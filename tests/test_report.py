@@ -16,7 +16,8 @@ from sklearn.metrics import accuracy_score, balanced_accuracy_score, f1_score, j
 
 from fcnkit.data.classes import ClassInfo, ClassTable
 from fcnkit.metrics import confusion_matrix, segmentation_scores
-from fcnkit.report import CAUTION, Example, display_rgb, render_report, write_report
+from fcnkit.outputs import display_rgb
+from fcnkit.report import CAUTION, Example, render_report, write_report
 
 CLASSES = ClassTable((ClassInfo(0, "dry heath", (181, 156, 112)), ClassInfo(1, "pond <deep>", (38, 84, 170)),
                       ClassInfo(2, "scrub & hedge", (52, 140, 64)), ClassInfo(3, "slate roof", (170, 60, 52))))
