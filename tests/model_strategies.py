@@ -1,11 +1,15 @@
-"""Hypothesis strategies for small but varied ModelConfigs (shared by the geometry and net tests)."""
+"""Hypothesis strategies for small but varied ModelConfigs, and helpers for nets under test (shared by the
+geometry, net, tiling and row-streaming tests)."""
 
 from __future__ import annotations
 
 import math
 
+import numpy as np
+import torch
 from hypothesis import assume
 from hypothesis import strategies as st
+from torch import nn
 
 from fcnkit.config import ModelConfig, config_from_dict
 
@@ -54,3 +58,22 @@ def model_configs(draw: st.DrawFn, *, norms: tuple[str, ...] = ("batch", "none",
     if skips is None:
         del table["skips"]
     return config_from_dict({"model": table}).model  # validated like a config file
+
+
+def randomise_statistics(net: nn.Module, seed: int, deconv: bool = False) -> nn.Module:
+    """Non-trivial batch-norm statistics (so folding them into convolutions is exercised) and, with ``deconv``,
+    transposed-convolution kernels moved off bilinear, as after training; returns the net in eval mode."""
+    g = torch.Generator().manual_seed(seed)
+    for m in net.modules():
+        if isinstance(m, nn.BatchNorm2d):
+            m.running_mean.copy_(torch.rand(m.num_features, generator=g) - 0.5)
+            m.running_var.copy_(torch.rand(m.num_features, generator=g) + 0.5)
+        if deconv and isinstance(m, nn.ConvTranspose2d):
+            m.weight.data.add_(0.1 * torch.randn(m.weight.shape, generator=g))
+    return net.eval()
+
+
+def whole_image(net: nn.Module, img: np.ndarray) -> np.ndarray:
+    """The reference for tiled and streamed inference: the net run on the whole H×W×B image at once (torch)."""
+    with torch.no_grad():
+        return net(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()

@@ -6,7 +6,7 @@ import pytest
 import torch
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
-from model_strategies import model_configs
+from model_strategies import model_configs, randomise_statistics, whole_image
 from torch import nn
 from torch.nn import functional as F
 
@@ -16,23 +16,6 @@ from fcnkit.data.raster import ArrayRaster
 from fcnkit.errors import ConfigError
 from fcnkit.rowstream import NotStreamable, RowStreamer, block_max
 from fcnkit.tiling import choose_scan, net_geometry, predict_scores
-
-
-def _randomise(net: nn.Module, seed: int) -> nn.Module:
-    """Non-trivial batch-norm statistics and transposed kernels (not just bilinear), as after training."""
-    g = torch.Generator().manual_seed(seed)
-    for m in net.modules():
-        if isinstance(m, nn.BatchNorm2d):
-            m.running_mean.copy_(torch.rand(m.num_features, generator=g) - 0.5)
-            m.running_var.copy_(torch.rand(m.num_features, generator=g) + 0.5)
-        if isinstance(m, nn.ConvTranspose2d):
-            m.weight.data.add_(0.1 * torch.randn(m.weight.shape, generator=g))
-    return net.eval()
-
-
-def _whole(net: nn.Module, img: np.ndarray) -> np.ndarray:
-    with torch.no_grad():
-        return net(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()
 
 
 def _stream(net: nn.Module, img: np.ndarray, rows: int | None = None) -> list[tuple[int, np.ndarray]]:
@@ -51,9 +34,9 @@ def test_row_streaming_equals_whole_image_inference(m, seed, h, w, rows):
     # sizes and band heights that are not multiples of the factor.
     assume(h * w >= 1)
     torch.manual_seed(seed)
-    net = _randomise(build_model(m), seed)
+    net = randomise_statistics(build_model(m), seed, deconv=True)
     img = np.random.default_rng(seed).normal(size=(h, w, m.bands)).astype(np.float32)
-    ref = _whole(net, img)
+    ref = whole_image(net, img)
     bands = _stream(net, img, rows * net.factor)
     assert [y0 for y0, _ in bands] == list(np.cumsum([0] + [b.shape[1] for _, b in bands])[:-1])
     out = np.concatenate([b for _, b in bands], axis=1)
@@ -70,11 +53,12 @@ def test_shipped_configs_stream_exactly():
     from fcnkit.config import load_config
 
     for name in ("demo", "fcn8s", "fcn32s", "unet", "tiny"):
-        net = _randomise(build_model(load_config(Path(__file__).parents[1] / "configs" / f"{name}.toml")), 1)
+        cfg = load_config(Path(__file__).parents[1] / "configs" / f"{name}.toml")
+        net = randomise_statistics(build_model(cfg), 1, deconv=True)
         img = np.random.default_rng(0).normal(size=(157, 83, net.bands)).astype(np.float32)
         bands = _stream(net, img, rows=net.factor)
         assert len(bands) > 1
-        np.testing.assert_allclose(np.concatenate([b for _, b in bands], axis=1), _whole(net, img), atol=1e-4)
+        np.testing.assert_allclose(np.concatenate([b for _, b in bands], axis=1), whole_image(net, img), atol=1e-4)
 
 
 class _CountingRaster(ArrayRaster):
@@ -132,7 +116,7 @@ def test_predict_scores_rows_equal_exact_tiles():
     # Two independent exact paths must agree: row streaming and exact tiling (both against the whole image).
     cfg = config_from_dict({"model": {"bands": 2, "classes": 3, "widths": [4, 8, 8], "fusion": "sum",
                                       "skips": [2], "min_size": 8}})
-    net = _randomise(build_model(cfg), 5)
+    net = randomise_statistics(build_model(cfg), 5, deconv=True)
     img = np.random.default_rng(2).random((301, 257, 2)).astype(np.float32)
     rows = predict_scores(net, img, scan="rows")
     tiles = predict_scores(net, img, scan="tiles", tile=96, exact=True)
@@ -169,14 +153,14 @@ def test_prepared_nets_are_rebuilt_when_the_weights_change():
     # Regression guard for the per-model cache: a BN-folded copy must never outlive a change of the weights
     # (in-place updates as by an optimiser, or new parameter tensors).
     net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
-    net = _randomise(net, 0)
+    net = randomise_statistics(net, 0, deconv=True)
     img = np.random.default_rng(0).random((32, 40, 1)).astype(np.float32)
     before = predict_scores(net, img, logits=True)
     np.testing.assert_array_equal(predict_scores(net, img, logits=True), before)
     with torch.no_grad():
         next(net.parameters()).mul_(-1.5)  # in place
     after = predict_scores(net, img, logits=True)
-    np.testing.assert_allclose(after, _whole(net, img), atol=1e-4)
+    np.testing.assert_allclose(after, whole_image(net, img), atol=1e-4)
     assert not np.allclose(after, before)
     net.body.decoder.head[-1].weight = nn.Parameter(torch.zeros_like(net.body.decoder.head[-1].weight))
-    np.testing.assert_allclose(predict_scores(net, img, logits=True), _whole(net, img), atol=1e-4)
+    np.testing.assert_allclose(predict_scores(net, img, logits=True), whole_image(net, img), atol=1e-4)

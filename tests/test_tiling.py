@@ -7,27 +7,13 @@ import pytest
 import torch
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
+from model_strategies import randomise_statistics, whole_image
 from torch import nn
 
 from fcnkit import build_model
 from fcnkit.config import config_from_dict
 from fcnkit.errors import ConfigError
 from fcnkit.tiling import net_geometry, plan_axis, plan_tiles, predict_scores
-
-
-def _randomise_bn(net: nn.Module, seed: int) -> nn.Module:
-    """Non-trivial batch-norm statistics, so folding them into convolutions is actually exercised."""
-    g = torch.Generator().manual_seed(seed)
-    for m in net.modules():
-        if isinstance(m, nn.BatchNorm2d):
-            m.running_mean.copy_(torch.rand(m.num_features, generator=g) - 0.5)
-            m.running_var.copy_(torch.rand(m.num_features, generator=g) + 0.5)
-    return net.eval()
-
-
-def _whole(net: nn.Module, img: np.ndarray) -> np.ndarray:
-    with torch.no_grad():
-        return net(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()
 
 
 @settings(max_examples=80, deadline=None)
@@ -77,12 +63,12 @@ def test_exact_mode_equals_whole_image_inference(cfg, seed, extra, hw):
     # Reference: the same net run on the whole image at once (torch). Exact tiling must give the same logits
     # up to float rounding (<= 1e-4) and the same labels, for odd sizes and any local net.
     torch.manual_seed(seed)
-    net = _randomise_bn(build_model(cfg), seed)
+    net = randomise_statistics(build_model(cfg), seed)
     geom = net_geometry(net)
     tile = (math.ceil(2 * geom.margin / geom.factor) + extra) * geom.factor
     h, w = (max(1, int(tile * r)) | 1 for r in hw)  # odd sizes
     img = np.random.default_rng(seed).normal(size=(h, w, cfg.model.bands)).astype(np.float32)
-    ref = _whole(net, img)
+    ref = whole_image(net, img)
     out = predict_scores(net, img, tile=tile, exact=True, logits=True, batch=2)
     assert out.shape == ref.shape
     np.testing.assert_allclose(out, ref, atol=1e-4, rtol=0)
@@ -92,14 +78,14 @@ def test_exact_mode_equals_whole_image_inference(cfg, seed, extra, hw):
 def test_exact_mode_uses_several_tiles_on_the_demo_net():
     cfg = config_from_dict({"model": {"bands": 4, "classes": 5, "widths": [8, 16, 16, 24], "blocks": [1, 2, 2, 2],
                                       "head": [24], "fusion": "sum", "skips": [4, 2], "min_size": 64}})
-    net = _randomise_bn(build_model(cfg), 3)
+    net = randomise_statistics(build_model(cfg), 3)
     geom = net_geometry(net)
     tile = 2 * geom.margin + 3 * geom.factor
     plan = plan_tiles(geom, 301, 333, tile=tile, exact=True)
     assert len(plan.rows) >= 3 and len(plan.cols) >= 3
     img = np.random.default_rng(1).random((301, 333, 4)).astype(np.float32)
     out = predict_scores(net, img, tile=tile, exact=True, logits=True)
-    np.testing.assert_allclose(out, _whole(net, img), atol=1e-4, rtol=0)
+    np.testing.assert_allclose(out, whole_image(net, img), atol=1e-4, rtol=0)
 
 
 def test_any_local_module_works_and_probabilities_sum_to_one():
@@ -109,7 +95,7 @@ def test_any_local_module_works_and_probabilities_sum_to_one():
     geom = net_geometry(net)
     assert geom.factor == 2 and geom.margin is not None
     out = predict_scores(net, img, tile=32, exact=True, logits=True)
-    np.testing.assert_allclose(out, _whole(net, img), atol=1e-4, rtol=0)
+    np.testing.assert_allclose(out, whole_image(net, img), atol=1e-4, rtol=0)
     probs = predict_scores(net, img, tile=32, window="hann")
     np.testing.assert_allclose(probs.sum(0), 1.0, atol=1e-5)
 
@@ -124,9 +110,9 @@ def _seam_error(out: np.ndarray, ref: np.ndarray, borders: list[int]) -> float:
 def test_blending_beats_non_overlapping_tiles_at_the_seams(window):
     cfg = config_from_dict({"model": {"bands": 3, "classes": 4, "widths": [8, 16, 16], "blocks": [1, 1, 1],
                                       "fusion": "sum", "min_size": 16}})
-    net = _randomise_bn(build_model(cfg), 5)
+    net = randomise_statistics(build_model(cfg), 5)
     img = np.random.default_rng(2).random((64, 256, 3)).astype(np.float32)
-    ref = torch.softmax(torch.from_numpy(_whole(net, img)), 0).numpy()
+    ref = torch.softmax(torch.from_numpy(whole_image(net, img)), 0).numpy()
     tile = 64
     geom = net_geometry(net)
     borders = [s.start for s in plan_tiles(geom, 64, 256, tile=tile, overlap=0, window="none").cols[1:]]
@@ -139,7 +125,7 @@ def test_blending_beats_non_overlapping_tiles_at_the_seams(window):
 
 def test_flip_tta_on_one_tile_matches_averaged_flips():
     # Reference: the four flips of the image run through the net whole, un-flipped and their softmax averaged.
-    net = _randomise_bn(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [4, 8],
+    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [4, 8],
                                                                 "fusion": "sum", "min_size": 16}})), 1)
     img = np.random.default_rng(3).random((40, 56, 3)).astype(np.float32)
     x = torch.from_numpy(img).permute(2, 0, 1)[None]
@@ -150,17 +136,17 @@ def test_flip_tta_on_one_tile_matches_averaged_flips():
 
 
 def test_mean_std_normalise_the_bands():
-    net = _randomise_bn(build_model(config_from_dict({"model": {"bands": 2, "classes": 2, "widths": [4],
+    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 2, "classes": 2, "widths": [4],
                                                                 "min_size": 16}})), 2)
     raw = np.random.default_rng(4).integers(0, 4000, size=(30, 30, 2)).astype(np.uint16)
     mean, std = [1000.0, 2000.0], [300.0, 700.0]
     norm = ((raw - np.array(mean)) / np.array(std)).astype(np.float32)
     out = predict_scores(net, raw, mean=mean, std=std, tile=64, logits=True)
-    np.testing.assert_allclose(out, _whole(net, norm), atol=1e-4)
+    np.testing.assert_allclose(out, whole_image(net, norm), atol=1e-4)
 
 
 def test_scores_on_disk_equal_scores_in_memory(tmp_path):
-    net = _randomise_bn(build_model(config_from_dict({"model": {"bands": 1, "classes": 3, "widths": [4, 4],
+    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 1, "classes": 3, "widths": [4, 4],
                                                                 "min_size": 16}})), 4)
     img = np.random.default_rng(5).random((70, 90, 1)).astype(np.float32)
     mem = predict_scores(net, img, tile=32, overlap=8)
@@ -202,7 +188,7 @@ def test_bad_options_name_the_option(kwargs, match):
 def test_bf16_engine_keeps_transposed_convolutions_in_float32():
     from fcnkit.tiling import Float32, TorchEngine
 
-    net = _randomise_bn(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [8, 8],
+    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [8, 8],
                                                                 "fusion": "sum", "min_size": 16}})), 6)
     engine = TorchEngine(net, bf16=True)
     wrapped = [m for m in engine.model.modules() if isinstance(m, Float32)]
