@@ -1,4 +1,5 @@
-"""Killed runs: SIGKILL at random points of training and of tiled inference, and Ctrl-C (SIGINT) in both.
+"""Killed runs: SIGKILL at random points of training and of mapping (tiles and row streaming), and Ctrl-C
+(SIGINT) in training and tiled inference.
 
 Training killed anywhere and continued with ``--resume`` must end bit-identical to an uninterrupted run
 (single thread, torch.use_deterministic_algorithms, fixed seeds); tiled inference killed anywhere must leave
@@ -45,7 +46,9 @@ def _child(argv: list[str], log: str, hook: tuple | None) -> None:
     """Run the CLI with stderr going to ``log`` (stdout to ``log``.out); exit with its status.
 
     ``hook`` = (function path, n, delay, signal): the n-th call of that function starts a timer that sends
-    ``signal`` to this process after ``delay`` seconds; n = 0 counts the calls into ``log``.calls instead."""
+    ``signal`` to this process after ``delay`` seconds (waited for if the run ends sooner, so the signal always
+    lands: on a fast machine the last steps can finish within the delay); n = 0 counts the calls into
+    ``log``.calls instead."""
     os.dup2(os.open(log + ".out", os.O_WRONLY | os.O_CREAT | os.O_TRUNC), 1)
     os.dup2(os.open(log, os.O_WRONLY | os.O_CREAT | os.O_TRUNC), 2)
     sys.stdout = open(1, "w", closefd=False)  # noqa: SIM115
@@ -54,6 +57,7 @@ def _child(argv: list[str], log: str, hook: tuple | None) -> None:
     torch.set_num_threads(1)
     torch.use_deterministic_algorithms(True)
     calls = [0]
+    timers: list[threading.Timer] = []
     if hook is not None:
         target, at, delay, sig = hook
         module_name, name = target.rsplit(".", 1)
@@ -63,13 +67,16 @@ def _child(argv: list[str], log: str, hook: tuple | None) -> None:
         def counted(*args, **kwargs):
             calls[0] += 1
             if calls[0] == at:
-                threading.Timer(delay, os.kill, (os.getpid(), sig)).start()
+                timers.append(threading.Timer(delay, os.kill, (os.getpid(), sig)))
+                timers[-1].start()
             return real(*args, **kwargs)
 
         setattr(module, name, counted)
     from fcnkit.cli import main
 
     code = main(argv)
+    for timer in timers:  # a run that ends before its signal is due still gets it: a kill after the last write
+        timer.join()
     Path(log + ".calls").write_text(str(calls[0]))
     sys.stdout.flush()
     sys.stderr.flush()
@@ -121,6 +128,7 @@ def _assert_same(a: dict, b: dict) -> None:
 
 STEP = "fcnkit.train.segmentation_loss"  # called once per training batch
 TILES = "fcnkit.tiling._scores"  # called once per batch of tiles
+ROWS = "fcnkit.rowstream.block_max"  # called by each max pooling, once per band of rows
 WRITES = "fcnkit.atomic.partial_path"  # called as each output file starts being written
 
 
@@ -213,6 +221,27 @@ def test_tiled_inference_killed_at_random_points_leaves_no_half_written_output(r
         for name, data in _finals(out).items():  # whatever has a final name is complete
             assert data == reference[name], name
         code, log = runner.run([*argv, "--out", out])
+        assert code == 0, log
+        assert _finals(out) == reference
+
+
+def test_row_streaming_killed_at_random_points_leaves_no_half_written_output(runner, mapping):
+    # The default scan (rows) writes through the same path; kill it mid-band and compare with its own complete run.
+    root, argv, _, _ = mapping
+    rows_argv = [a for a in argv if a not in ("--tile", 48, "--batch", 2)]
+    code, log = runner.run([*rows_argv, "--out", root / "rows-reference"], (ROWS, 0, 0.0, 0))
+    assert code == 0, log
+    calls, reference = runner.last_calls, _finals(root / "rows-reference")
+    assert calls > 2 and len(reference) >= 10
+    rng = np.random.default_rng(5)
+    for trial in range(3):
+        out = root / f"rows-kill-{trial}"
+        hook = (ROWS, int(rng.integers(1, calls)), float(rng.uniform(0, 0.01)), signal.SIGKILL)
+        code, log = runner.run([*rows_argv, "--out", out], hook)
+        assert code == -signal.SIGKILL, (hook, log)
+        for name, data in _finals(out).items():
+            assert data == reference[name], name
+        code, log = runner.run([*rows_argv, "--out", out])
         assert code == 0, log
         assert _finals(out) == reference
 
