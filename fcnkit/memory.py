@@ -1,4 +1,4 @@
-"""Memory a forward pass needs, and refusing tile or batch settings that cannot fit.
+"""Memory a forward pass or a training step needs, and refusing tile, batch or patch settings that cannot fit.
 
 A tile batch that does not fit in memory does not fail cleanly: the machine swaps, or the kernel's
 out-of-memory killer ends the process (and maybe a colleague's) hours into a run. So tiled inference
@@ -10,6 +10,10 @@ The estimate replays the graph in order with float32 activations: each layer's o
 connections stay alive and plain chains hold two activations at a time; the peak of that sum is the estimate.
 It leaves out the framework's scratch buffers, so it is a floor for the true peak; the check multiplies it by
 HEADROOM (scripts/bench_memory.py measured the real peak at 1.09-1.40x the floor for the shipped configs).
+
+A training step keeps every activation for the backward pass, so its estimate is all activations of a batch
+of patches at once, times TRAIN_FACTOR (batch norm and ReLU outputs, which the layer graph folds into their
+convolutions, and the gradients), plus the weights, their gradients and the optimiser's two moments.
 """
 
 from __future__ import annotations
@@ -22,6 +26,9 @@ from fcnkit import geometry
 from fcnkit.errors import ConfigError
 from fcnkit.geometry import INPUT, Layer
 
+# Growth of a training step's peak resident memory per byte of activations, measured from the peaks at
+# batch 8 × 128² and 4 × 256² patches: 1.23 (unet), 1.41 (demo), 1.66 (fcn8s), 1.74 (tiny).
+TRAIN_FACTOR = 2.0
 HEADROOM = 1.5  # measured peak / floor: 1.09-1.40 over configs/*.toml at 1024² px x 2 (bench_memory.py)
 MEMORY_ENV = "FCNKIT_MAX_MEMORY"  # optional cap, e.g. "4G": the most memory fcnkit may plan a forward pass for
 _UNITS = {"": 1, "K": 2**10, "M": 2**20, "G": 2**30, "T": 2**40}
@@ -131,3 +138,28 @@ def check_forward_memory(graph: Sequence[Layer], height: int, width: int, batch:
     tiles = f"{batch} tiles of {height}x{width} px need" if batch > 1 else f"one tile of {height}x{width} px needs"
     raise ConfigError(f"tile/batch: {tiles} about {_gib(need)} of memory for "
                       f"the forward pass, more than the {_gib(available)} available; {hint}")
+
+
+def training_bytes(graph: Sequence[Layer], patch: int, batch: int, bands: int, params: int) -> int:
+    """Memory of one training step on ``batch`` patches of patch×patch px: every activation kept for the
+    backward pass (times TRAIN_FACTOR) and four float32 copies of the ``params`` weights (weights, gradients,
+    two optimiser moments)."""
+    jump = geometry.jumps(graph)
+    ch = channels(graph, bands)
+    acts = sum(ch[n] * math.ceil(patch / jump[n]) ** 2 for n in ch) * batch * 4
+    return math.ceil(TRAIN_FACTOR * acts) + 16 * params
+
+
+def check_training_memory(graph: Sequence[Layer], patch: int, batch: int, bands: int, params: int, *,
+                          available: int | None = None) -> int:
+    """Refuse (ConfigError) a train.batch × train.patch whose training step would not fit in ``available`` bytes
+    (default :func:`available_memory`), naming a batch that fits; returns the estimate in bytes."""
+    available = available_memory() if available is None else available
+    need = training_bytes(graph, patch, batch, bands, params)
+    if need <= available:
+        return need
+    fits = max((b for b in range(1, batch) if training_bytes(graph, patch, b, bands, params) <= available),
+               default=0)
+    hint = f"use train.batch = {fits}" if fits else "use a smaller train.patch"
+    raise ConfigError(f"train.batch: {batch} patches of {patch}x{patch} px need about {_gib(need)} of memory for "
+                      f"a training step, more than the {_gib(available)} available; {hint}")

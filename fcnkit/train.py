@@ -116,6 +116,7 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
     np.random.seed(t.seed)
     random.seed(t.seed)
     model, cfg, base = _initial_model(cfg, init)
+    _check_memory(model, cfg)
     config = base.config if base else config_to_dict(cfg)
     if group.main:
         runstate.claim_run_dir(run_dir, resume)
@@ -277,6 +278,19 @@ def _read(samples: list[Sample], classes: Any, bands: int,
         images.append(image)
         masks.append(mask)
     return images, masks
+
+
+def _check_memory(model: nn.Module, cfg: Config) -> None:
+    """Refuse a batch of patches whose training step would not fit in memory, before any file is touched."""
+    from fcnkit.memory import check_training_memory
+    from fcnkit.nets import layer_graph
+
+    try:
+        graph = layer_graph(model)
+    except (ValueError, TypeError, RuntimeError):
+        return  # a net the geometry reader cannot trace: no estimate
+    check_training_memory(graph, cfg.train.patch, cfg.train.batch, model.bands, sum(p.numel() for p in
+                                                                                    model.parameters()))
 
 
 def _context_margin(model: nn.Module) -> int:

@@ -695,6 +695,13 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _train(ws, folder, ws.data, "--epochs", 0)
 
 
+@case("train.batch of patches beyond available memory", "train", "train.batch", "memory")
+def _(ws: Workspace, folder: Path) -> Call:
+    call = _train(ws, folder, ws.data)
+    call.env = {"FCNKIT_MAX_MEMORY": "16K"}  # a very small machine (the test net's whole step needs ~0.2 MiB)
+    return call
+
+
 @case("--epochs not a number", "train", "--epochs", "int")
 def _(ws: Workspace, folder: Path) -> Call:
     return _train(ws, folder, ws.data, "--epochs", "many")

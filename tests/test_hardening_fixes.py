@@ -15,7 +15,15 @@ from fcnkit.config import config_from_dict
 from fcnkit.data.imageio import read_image
 from fcnkit.data.raster import TiffRaster
 from fcnkit.errors import ConfigError, DataError, FcnkitError
-from fcnkit.memory import available_memory, check_forward_memory, forward_bytes, parse_size, peak_bytes
+from fcnkit.memory import (
+    available_memory,
+    check_forward_memory,
+    check_training_memory,
+    forward_bytes,
+    parse_size,
+    peak_bytes,
+    training_bytes,
+)
 from fcnkit.nets import build_model, layer_graph
 from fcnkit.tiling import find_images, segment_image
 
@@ -127,6 +135,41 @@ def test_a_setting_beyond_memory_is_refused_with_a_batch_or_tile_that_fits():
     with pytest.raises(ConfigError, match=r"use tile 128 with batch 1 \(--tile 128 --batch 1\)"):
         check_forward_memory(graph, 256, 256, 8, 3, factor=4, available=one // 2)
     assert check_forward_memory(graph, 256, 256, 8, 3, available=8 * one) == peak_bytes(graph, 256, 256, 8, 3)
+
+
+@pytest.mark.parametrize("name", NETS)
+def test_training_estimate_covers_the_tensors_autograd_keeps(name):
+    """Reference: the distinct tensors the real module's layers output in a training-mode forward pass (forward
+    hooks, deduplicated by storage, as in-place ReLU reuses its input's): all of them stay alive for the
+    backward pass, so the estimate's activation part must cover them, within the factor its rule allows."""
+    net = build_model(config_from_dict({"model": {"classes": 3, **NETS[name]}})).train()
+    graph = layer_graph(net)
+    seen: dict[int, int] = {}
+
+    def keep(mod: torch.nn.Module, inputs: object, out: torch.Tensor) -> None:
+        seen.setdefault(out.data_ptr(), out.numel() * out.element_size())
+
+    for m in net.modules():
+        if not list(m.children()):
+            m.register_forward_hook(keep)
+    batch, patch = 2, 48
+    net(torch.zeros(batch, 3, patch, patch))
+    kept = sum(seen.values()) + batch * 3 * patch * patch * 4  # the input too
+    activations = training_bytes(graph, patch, batch, 3, 0)
+    assert kept <= activations <= 3 * kept
+    params = sum(p.numel() for p in net.parameters())
+    assert training_bytes(graph, patch, batch, 3, params) == activations + 16 * params  # weights, grads, 2 moments
+    assert training_bytes(graph, patch, 2 * batch, 3, 0) == 2 * activations
+
+
+def test_a_training_batch_beyond_memory_is_refused_with_one_that_fits():
+    graph = layer_graph(build_model(config_from_dict({"model": NETS["sum"]})))
+    one = training_bytes(graph, 128, 1, 3, 1000)
+    with pytest.raises(ConfigError, match=r"train.batch: 8 patches of 128x128 px .* use train.batch = 2"):
+        check_training_memory(graph, 128, 8, 3, 1000, available=2 * one + 1)
+    with pytest.raises(ConfigError, match=r"use a smaller train.patch"):
+        check_training_memory(graph, 128, 8, 3, 1000, available=one // 2)
+    assert check_training_memory(graph, 128, 8, 3, 1000, available=10 * one) == training_bytes(graph, 128, 8, 3, 1000)
 
 
 def test_available_memory_reads_meminfo_and_honours_the_cap(monkeypatch):
