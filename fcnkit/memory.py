@@ -110,7 +110,9 @@ def available_memory() -> int:
 
 
 def _gib(n: float) -> str:
-    return f"{n / 2**30:.2f} GiB" if n >= 2**28 else f"{n / 2**20:.0f} MiB"
+    if n >= 2**28:
+        return f"{n / 2**30:.2f} GiB"
+    return f"{n / 2**20:.0f} MiB" if n >= 2**20 else f"{math.ceil(n / 2**10)} KiB"
 
 
 def check_forward_memory(graph: Sequence[Layer], height: int, width: int, batch: int, bands: int, *,

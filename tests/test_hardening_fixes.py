@@ -170,6 +170,8 @@ def test_a_training_batch_beyond_memory_is_refused_with_one_that_fits():
     with pytest.raises(ConfigError, match=r"use a smaller train.patch"):
         check_training_memory(graph, 128, 8, 3, 1000, available=one // 2)
     assert check_training_memory(graph, 128, 8, 3, 1000, available=10 * one) == training_bytes(graph, 128, 8, 3, 1000)
+    with pytest.raises(ConfigError, match=r"need about \d+ KiB of memory .* more than the 16 KiB available"):
+        check_training_memory(graph, 16, 2, 3, 1000, available=16 * 2**10)  # regression: said "0 MiB"
 
 
 def test_available_memory_reads_meminfo_and_honours_the_cap(monkeypatch):
