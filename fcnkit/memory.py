@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import math
 import os
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 from fcnkit import geometry
 from fcnkit.errors import ConfigError
@@ -115,17 +115,25 @@ def _gib(n: float) -> str:
     return f"{n / 2**20:.0f} MiB" if n >= 2**20 else f"{math.ceil(n / 2**10)} KiB"
 
 
+def _over_budget(cost: Callable[[int], int], batch: int, available: int | None) -> tuple[int, int, int] | None:
+    """None when ``cost(batch)`` bytes fit in ``available`` (default :func:`available_memory`); else the bytes
+    needed, the bytes available and the largest smaller batch that fits (0 if none)."""
+    available = available_memory() if available is None else available
+    need = cost(batch)
+    if need <= available:
+        return None
+    return need, available, max((b for b in range(1, batch) if cost(b) <= available), default=0)
+
+
 def check_forward_memory(graph: Sequence[Layer], height: int, width: int, batch: int, bands: int, *,
                          factor: int = 1, available: int | None = None) -> int:
     """Refuse (ConfigError) a batch of height×width tiles whose forward pass would not fit in ``available``
     bytes (default :func:`available_memory`), suggesting a batch, or else a tile, that fits; returns the
     estimate in bytes."""
-    available = available_memory() if available is None else available
-    need = peak_bytes(graph, height, width, batch, bands)
-    if need <= available:
-        return need
-    fits = max((b for b in range(1, batch) if peak_bytes(graph, height, width, b, bands) <= available),
-               default=0)
+    over = _over_budget(lambda b: peak_bytes(graph, height, width, b, bands), batch, available)
+    if over is None:
+        return peak_bytes(graph, height, width, batch, bands)
+    need, available, fits = over
     if fits:
         hint = f"use batch {fits} (--batch {fits}) or smaller tiles"
     else:
@@ -156,12 +164,10 @@ def check_training_memory(graph: Sequence[Layer], patch: int, batch: int, bands:
                           available: int | None = None) -> int:
     """Refuse (ConfigError) a train.batch × train.patch whose training step would not fit in ``available`` bytes
     (default :func:`available_memory`), naming a batch that fits; returns the estimate in bytes."""
-    available = available_memory() if available is None else available
-    need = training_bytes(graph, patch, batch, bands, params)
-    if need <= available:
-        return need
-    fits = max((b for b in range(1, batch) if training_bytes(graph, patch, b, bands, params) <= available),
-               default=0)
+    over = _over_budget(lambda b: training_bytes(graph, patch, b, bands, params), batch, available)
+    if over is None:
+        return training_bytes(graph, patch, batch, bands, params)
+    need, available, fits = over
     hint = f"use train.batch = {fits}" if fits else "use a smaller train.patch"
     raise ConfigError(f"train.batch: {batch} patches of {patch}x{patch} px need about {_gib(need)} of memory for "
                       f"a training step, more than the {_gib(available)} available; {hint}")
