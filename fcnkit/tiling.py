@@ -1,16 +1,21 @@
-"""Tiled inference on images of any size: tile plans, exact mode, blending, on-disk score accumulation.
+"""Mapping images of any size: the choice of scan, tiled inference with blending, exact tiles, and the files.
 
-An image is cut into overlapping tiles whose origins lie on multiples of the net's down-sampling factor,
-so every tile sees the same pooling grid as the whole image. Tiles are read one batch at a time (the next
-batch is read while the net runs), and each tile's class scores, weighted by a blending window
-(:mod:`fcnkit.windows`), are added into a float32 H×W×C array kept on disk (:class:`~fcnkit.data.raster.RowStore`)
-so memory does not grow with the image. Because the tiles form a grid and the weights are outer products,
-the total weight at a pixel is the product of two 1-D sums: no weight array is stored.
+Two scans produce the same thing, class scores streamed as finished bands of rows from top to bottom:
+exact row streaming (:mod:`fcnkit.rowstream`, the default for config-built nets) and overlapping tiles, for
+every other case (global layers, flip TTA, other runtimes, or tile settings asked for).
+
+Tiles: the image is cut into overlapping tiles whose origins lie on multiples of the net's down-sampling
+factor, so every tile sees the same pooling grid as the whole image. Tiles are read one batch at a time (the
+next batch is read while the net runs), and each tile's class scores, weighted by a blending window
+(:mod:`fcnkit.windows`), are added into a float32 buffer one tile row high and the image's width. When a row of
+tiles is done, the rows above the next one receive nothing more: they are divided by their total weight and
+handed on, so memory does not grow with the image's height. Because the tiles form a grid and the weights are
+outer products, the total weight at a pixel is the product of two 1-D sums: no weight array is stored.
 
 Tiles end at the image border instead of running past it, and a tile side lying on the border gets no taper,
 so the net sees the same border the whole image has and weights never vanish there.
 
-Exact mode keeps from each tile only the pixels at least the receptive-field radius (``tile margin`` of
+Exact tiles keep only the pixels at least the receptive-field radius (``tile margin`` of
 :mod:`fcnkit.geometry`) away from any interior tile edge, centre-crop style: the result then equals
 whole-image inference (to float rounding), which is impossible for nets with global layers.
 """
@@ -36,13 +41,13 @@ from fcnkit.rowstream import NotStreamable, RowStreamer
 from fcnkit.windows import check_window, window
 
 Engine = Callable[[torch.Tensor], torch.Tensor]
-IN_MEMORY_PIXELS = 4_000_000  # scores of smaller images stay in memory, of larger ones go to disk
+IN_MEMORY_PIXELS = 4_000_000  # segment keeps the 8-bit maps of smaller images in memory, of larger ones on disk
 # Measured with scripts/bench_tiling.py on a 2-core CPU: one pass of a 512×512 tile ran 1.4× faster per pixel
 # than a batch of four (activations of a few tens of MB stay in the last-level cache).
 AUTO_BATCH_PIXELS = 512 * 512
-SCORES_IN_MEMORY_BYTES = 256 << 20
+SCORES_IN_MEMORY_BYTES = 256 << 20  # predict_scores returns larger results as a memory map on a file
 SCANS = ("auto", "rows", "tiles")
-DEFAULT_TILE = 512  # predict_scores returns larger results as a memory map on a file
+DEFAULT_TILE = 512
 
 
 _PREPARED: weakref.WeakKeyDictionary[nn.Module, dict[str, tuple[tuple, object]]] = weakref.WeakKeyDictionary()
