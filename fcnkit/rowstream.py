@@ -133,9 +133,11 @@ class _Local(_Op):
         buf = self.inputs[0]
         end = buf.end
         stop = self.stop(end, last)
+        if stop <= self.done:
+            return []
         out: Rows = []
         o = self.done
-        for a, b, piece in buf.spans() if stop > o else ():
+        for a, b, piece in buf.spans():
             m0, m1 = self.inside(a, b, end, last)
             m0, m1 = max(m0, o), min(m1, stop)
             if m1 - m0 < self.MIN_ROWS:
@@ -147,7 +149,7 @@ class _Local(_Op):
             o = m1
         if stop > o:
             out.append(self._from_buffer(o, stop, end))
-        self.done = max(self.done, stop)
+        self.done = stop
         buf.drop_before(self.need(self.done, self.done + 1, end)[0])
         return out
 
@@ -445,8 +447,9 @@ class RowStreamer:
             y1 = min(y0 + rows, height)
             x = torch.from_numpy(raster.read(y0, y1, 0, width).astype("float32", copy=False))
             x = x.permute(2, 0, 1)[None].sub(m).div_(s)
-            x = F.pad(x, (0, pad_w, 0, pad_h if y1 == height else 0), mode="replicate") if pad_w or (
-                pad_h and y1 == height) else x
+            bottom = pad_h if y1 == height else 0
+            if pad_w or bottom:
+                x = F.pad(x, (0, pad_w, 0, bottom), mode="replicate")
             return x.contiguous(memory_format=torch.channels_last)
 
         nodes = self._build()

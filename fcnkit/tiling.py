@@ -315,7 +315,7 @@ def _load(raster: Raster, tiles: Sequence[Tile], mean: torch.Tensor, std: torch.
 
 
 def stream_scores(engine: Engine, raster: Raster, plan: TilePlan, *, mean: Sequence[float], std: Sequence[float],
-                  batch: int | None = None, tta: bool = False, logits: bool = False, progress: bool = False,
+                  batch: int, tta: bool = False, logits: bool = False, progress: bool = False,
                   desc: str = "tiles") -> Iterator[tuple[int, torch.Tensor]]:
     """Run every tile of ``plan`` and yield the blended class scores top to bottom, as (first row, C×h×W
     float32) bands that are final when yielded.
@@ -330,10 +330,10 @@ def stream_scores(engine: Engine, raster: Raster, plan: TilePlan, *, mean: Seque
     bands = raster.shape[2]
     m = torch.tensor(mean, dtype=torch.float32).view(1, bands, 1, 1)
     s = torch.tensor(std, dtype=torch.float32).view(1, bands, 1, 1)
-    groups = batches(plan, batch or auto_batch(plan))
+    groups = batches(plan, batch)
     wy = torch.from_numpy(plan.total_weight(0).astype(np.float32))
     wx = torch.from_numpy(plan.total_weight(1).astype(np.float32))
-    weights: dict[Tile, torch.Tensor] = {}  # by tile shape and overlaps (a handful of kinds)
+    weights: dict[tuple[int, ...], torch.Tensor] = {}  # by tile shape and overlaps (a handful of kinds)
     band_rows = max(r.stop - r.start for r in plan.rows)
     buf: torch.Tensor | None = None
     top, row = 0, plan.rows[0]  # image row of buf[:, 0]; the tile row being filled
@@ -356,8 +356,7 @@ def stream_scores(engine: Engine, raster: Raster, plan: TilePlan, *, mean: Seque
             if buf is None:
                 buf = torch.zeros(y.shape[1], band_rows, plan.width)
             for tile, scores in zip(group, y, strict=True):
-                key = Tile(Span(0, tile.shape[0], tile.row.rise, tile.row.fall),
-                           Span(0, tile.shape[1], tile.col.rise, tile.col.fall))
+                key = (*tile.shape, tile.row.rise, tile.row.fall, tile.col.rise, tile.col.fall)
                 if key not in weights:
                     weights[key] = torch.from_numpy(plan.weights(tile))
                 region = buf[:, tile.row.start - top:tile.row.stop - top, tile.col.start:tile.col.stop]

@@ -207,6 +207,19 @@ def _finals(out: Path) -> dict[str, bytes]:
         if out.exists() else {}
 
 
+def _kill_then_rerun(runner: Runner, argv: list, out: Path, hook: tuple, reference: dict[str, bytes]) -> None:
+    """Map with ``hook`` killing the run: whatever has a final name must be complete; a rerun completes the rest."""
+    code, log = runner.run([*argv, "--out", out], hook)
+    print(f"mapping kill: {hook[0]} call {hook[1]} + {hook[2]:.4f} s -> status {code}, {len(_finals(out))} of "
+          f"{len(reference)} outputs final")
+    assert code == -signal.SIGKILL, (hook, log)
+    for name, data in _finals(out).items():  # whatever has a final name is complete
+        assert data == reference[name], name
+    code, log = runner.run([*argv, "--out", out])
+    assert code == 0, log
+    assert _finals(out) == reference
+
+
 def test_tiled_inference_killed_at_random_points_leaves_no_half_written_output(runner, mapping):
     root, argv, reference, counts = mapping
     rng = np.random.default_rng(4)
@@ -214,15 +227,7 @@ def test_tiled_inference_killed_at_random_points_leaves_no_half_written_output(r
         out = root / f"kill-{trial}"
         target, delay = (TILES, 0.01) if trial % 2 == 0 else (WRITES, 0.002)  # mid-inference or mid-writing
         hook = (target, int(rng.integers(1, counts[target])), float(rng.uniform(0, delay)), signal.SIGKILL)
-        code, log = runner.run([*argv, "--out", out], hook)
-        print(f"mapping kill {trial}: {target} call {hook[1]} of {counts[target]} + {hook[2]:.4f} s -> status "
-              f"{code}, {len(_finals(out))} of {len(reference)} outputs final")
-        assert code == -signal.SIGKILL, (hook, log)
-        for name, data in _finals(out).items():  # whatever has a final name is complete
-            assert data == reference[name], name
-        code, log = runner.run([*argv, "--out", out])
-        assert code == 0, log
-        assert _finals(out) == reference
+        _kill_then_rerun(runner, argv, out, hook, reference)
 
 
 def test_row_streaming_killed_at_random_points_leaves_no_half_written_output(runner, mapping):
@@ -237,13 +242,7 @@ def test_row_streaming_killed_at_random_points_leaves_no_half_written_output(run
     for trial in range(3):
         out = root / f"rows-kill-{trial}"
         hook = (ROWS, int(rng.integers(1, calls)), float(rng.uniform(0, 0.01)), signal.SIGKILL)
-        code, log = runner.run([*rows_argv, "--out", out], hook)
-        assert code == -signal.SIGKILL, (hook, log)
-        for name, data in _finals(out).items():
-            assert data == reference[name], name
-        code, log = runner.run([*rows_argv, "--out", out])
-        assert code == 0, log
-        assert _finals(out) == reference
+        _kill_then_rerun(runner, rows_argv, out, hook, reference)
 
 
 def test_ctrl_c_in_tiled_inference_exits_130_leaving_nothing_partial(runner, mapping):
