@@ -17,15 +17,16 @@ __version__ = "0.1.0"
 
 # public name -> module that defines it
 _API = {
+    "Model": "fcnkit.model",
     "Config": "fcnkit.config", "load_config": "fcnkit.config",
     "build_model": "fcnkit.nets", "describe": "fcnkit.describe",
-    "load_classes": "fcnkit.data.classes",
+    "load_classes": "fcnkit.data.classes", "ClassTable": "fcnkit.data.classes",
     "band_stats": "fcnkit.data.dataset", "check_dataset": "fcnkit.data.dataset", "find_samples": "fcnkit.data.dataset",
     "read_image": "fcnkit.data.imageio", "read_mask": "fcnkit.data.imageio",
     "make_scenes": "fcnkit.data.scenes", "write_mosaic": "fcnkit.data.scenes",
-    "load_model": "fcnkit.modelfile", "save_model": "fcnkit.modelfile",
     "train": "fcnkit.train",
-    "predict_scores": "fcnkit.tiling", "segment_image": "fcnkit.tiling", "segment_images": "fcnkit.tiling",
+    "predict_scores": "fcnkit.inference.scan", "segment_image": "fcnkit.inference.segment",
+    "segment_images": "fcnkit.inference.segment",
     "evaluate": "fcnkit.evaluate", "write_report": "fcnkit.report", "export_model": "fcnkit.export",
     "convert_classifier": "fcnkit.convert", "grow_segmenter": "fcnkit.convert",
 }

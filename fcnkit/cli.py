@@ -19,6 +19,11 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(2)
 
 
+def _note(text: str) -> None:
+    """A one-line remark on what a command chose to do (stderr, so standard output stays the results)."""
+    sys.stderr.write(f"fcnkit: note: {text}\n")
+
+
 def _describe(args: argparse.Namespace) -> int:
     from fcnkit.config import load_config  # not `from fcnkit import describe`: an imported submodule
     from fcnkit.describe import describe, format_description  # of that name would shadow the function
@@ -40,9 +45,11 @@ def _add_describe(sub: argparse._SubParsersAction) -> None:
 
 
 def _export(args: argparse.Namespace) -> int:
-    from fcnkit import export_model
+    from fcnkit.export import check_destination
+    from fcnkit.model import Model
 
-    print(export_model(args.model, args.out, args.format).summary())
+    check_destination(args.out)
+    print(Model.load(args.model).export(args.out, args.format).summary())
     return 0
 
 
@@ -58,15 +65,16 @@ def _train(args: argparse.Namespace) -> int:
     import math
     import os
 
-    from fcnkit.config import load_config, replace_section
-    from fcnkit.train import train
+    from fcnkit.config import config_to_dict, load_config
+    from fcnkit.model import Model
 
     cfg = load_config(args.config)
-    changes = {k: v for k, v in (("epochs", args.epochs), ("threads", args.threads)) if v is not None}
-    if changes:
-        cfg = replace_section(cfg, "train", **changes)
-    r = train(cfg, args.data, args.out, resume=args.resume, init=args.init, progress=not args.quiet,
-              max_pixels=args.max_pixels)
+    model = Model.build(cfg) if args.init is None else Model.load(args.init)  # --init: that net, trained further
+    settings = {**config_to_dict(cfg)["train"], **{k: v for k, v in (("epochs", args.epochs),
+                                                                      ("threads", args.threads)) if v is not None}}
+    model.fit(args.data, out_dir=args.out, resume=args.resume, progress=not args.quiet, max_pixels=args.max_pixels,
+              **settings)
+    r = model.last_run
     if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
         best = "no validation images, model of the last epoch kept" if math.isnan(r.best_miou) else \
             f"best val mIoU {r.best_miou:.4f} at epoch {r.best_epoch}"
@@ -77,7 +85,8 @@ def _train(args: argparse.Namespace) -> int:
 
 def _add_train(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser("train", help="train a net on a dataset folder; resumable, best model kept by val mIoU")
-    p.add_argument("config", metavar="CONFIG", help="TOML config file ([model] and [train] tables)")
+    p.add_argument("config", metavar="CONFIG", help="TOML config file ([model] and [train] tables), or the name of "
+                   "a shipped config (tiny, demo, fcn8s, fcn32s, unet)")
     p.add_argument("--data", required=True, metavar="DIR", help="dataset folder (images/, masks/, classes.toml)")
     p.add_argument("--out", required=True, metavar="RUN_DIR", help="run folder: model, resume point, metrics.csv")
     p.add_argument("--resume", action="store_true", help="continue the run in RUN_DIR exactly where it stopped")
@@ -92,9 +101,10 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
 
 def add_tile_options(p: argparse.ArgumentParser, max_pixels: int = 2**27) -> None:
     """Options of tiled inference shared by the commands that run it."""
-    p.add_argument("--scan", choices=("auto", "rows", "tiles"), default="auto",
-                   help="rows: exact, full-width bands of rows, each layer computed once; tiles: overlapping tiles, "
-                   "blended (any net, flip TTA, other engines); auto (default): rows when the net and settings allow")
+    p.add_argument("--scan", choices=("auto", "rows", "whole", "tiles"), default="auto",
+                   help="rows: exact, full-width bands of rows, each layer computed once; whole: the whole image in "
+                   "one pass (exact); tiles: overlapping tiles, blended (any net, flip TTA, other engines); auto "
+                   "(default): rows when the net allows, else whole when the image fits in memory, else tiles")
     p.add_argument("--tile", type=int, metavar="PX", help="tile side in pixels (default 512)")
     p.add_argument("--overlap", type=int, metavar="PX", help="tile overlap (default: from the net's receptive field)")
     p.add_argument("--batch", type=int, metavar="N",
@@ -138,12 +148,12 @@ def _add_evaluate(sub: argparse._SubParsersAction) -> None:
 
 
 def _segment(args: argparse.Namespace) -> int:
-    from fcnkit import segment_images
+    from fcnkit.inference.segment import segment_images
 
     segment_images(args.model, args.inputs, args.out, scan=args.scan, tile=args.tile, overlap=args.overlap,
                    batch=args.batch, window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
                    bf16=args.bf16, pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
-                   progress=not args.quiet, echo=print)
+                   progress=not args.quiet, echo=print, note=_note)
     return 0
 
 
@@ -189,8 +199,9 @@ def _csv(cast: Callable[[str], object], what: str) -> Callable[[str], list]:
 
 
 def _convert(args: argparse.Namespace) -> int:
-    from fcnkit.convert import convert_classifier, grow_segmenter, load_classifier, save_converted
+    from fcnkit.convert import convert_classifier, grow_segmenter, load_classifier
     from fcnkit.data.classes import load_classes
+    from fcnkit.model import Model
 
     if args.grow and args.save is None:
         raise FcnkitError("--grow: give --save MODEL for the segmenter's model file")
@@ -209,14 +220,16 @@ def _convert(args: argparse.Namespace) -> int:
         print(f"== {args.source} at {args.native} px\n{cert.format()}")
     if args.save is None:
         return 0
-    net = conv.net
     if args.grow:
-        net = grow_segmenter(src.module, args.native, classes=table.num_classes if table and not args.keep else None,
-                             keep=args.keep, skips=tuple(args.skips), bands=args.bands, global_pool=args.pool)
-    save_converted(args.save, net, src.source, classes=table, mean=args.mean, std=args.std, certificate=cert)
+        conv = grow_segmenter(src.module, args.native, classes=table.num_classes if table and not args.keep else None,
+                              keep=args.keep, skips=tuple(args.skips), bands=args.bands, global_pool=args.pool)
+    model = Model.from_conversion(conv, source=src.source, classes=table, mean=args.mean, std=args.std)
+    if args.grow:
+        model.extra["certificate"] = cert.to_dict()
+    model.save(args.save)
     if not args.json:
         what = "segmenter" if args.grow else "dense classifier"
-        print(f"wrote {args.save} ({what}: {net.bands} bands, {net.classes} classes)")
+        print(f"wrote {args.save} ({what}: {model.bands} bands, {model.num_classes} classes)")
     return 0
 
 

@@ -30,8 +30,8 @@ def _opt(default: Any, **rules: Any) -> Any:
 class ModelConfig:
     """The net: encoder stages, 1×1-convolution head, up-sampling and skip fusion."""
 
-    bands: int = _opt(3, min=1, max=1024)
-    classes: int = _opt(2, min=2, max=255)
+    bands: int | None = _opt(None, min=1, max=1024)  # None: from the training data
+    classes: int | None = _opt(None, min=2, max=255)  # None: from the training data
     widths: list[int] = _opt([16, 32, 64, 128], min=1, max=4096)
     blocks: list[int] | None = _opt(None, min=1, max=32)
     strides: list[int] | None = _opt(None, choices=(1, 2, 3, 4))
@@ -116,13 +116,23 @@ class Config:
 _SECTIONS = {"model": ModelConfig, "train": TrainConfig}
 
 
+SHIPPED = Path(__file__).resolve().parent / "configs"  # the configs installed with fcnkit
+
+
+def shipped_configs() -> list[str]:
+    """Names of the configs that come with fcnkit (``load_config`` takes them in place of a path)."""
+    return sorted(p.stem for p in SHIPPED.glob("*.toml"))
+
+
 def load_config(path: str | Path) -> Config:
-    """Read and validate a TOML config file."""
+    """Read and validate a TOML config file, or a shipped config by name (e.g. ``demo``)."""
     path = Path(path)
+    if not path.exists() and path.suffix == "" and len(path.parts) == 1 and (SHIPPED / f"{path}.toml").is_file():
+        path = SHIPPED / f"{path}.toml"
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise ConfigError(f"{path}: no such config file") from None
+        raise ConfigError(f"{path}: no such config file (or shipped config: {', '.join(shipped_configs())})") from None
     except IsADirectoryError:
         raise ConfigError(f"{path}: is a directory, expected a TOML config file") from None
     except UnicodeDecodeError:

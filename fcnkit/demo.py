@@ -4,7 +4,7 @@ Everything happens in one output folder (default ``fcnkit-demo``), in the invent
 :mod:`fcnkit.data.scenes`:
 
 1. training and held-out test scenes are rendered as dataset folders;
-2. ``configs/demo.toml`` is trained on the training scenes (a validation split is held back by the trainer);
+2. the shipped ``demo`` config is trained on the training scenes (a validation split is held back by the trainer);
 3. the best model is evaluated on the test scenes, with the JSON scores and the HTML report;
 4. a large GeoTIFF mosaic (8192×8192 by default) and its true labels are written block by block;
 5. the mosaic is mapped by exact row streaming (labels, confidence, uncertainty, overlay, area table), and
@@ -26,9 +26,9 @@ import numpy as np
 import torch
 
 from fcnkit.config import Config, load_config, replace_section
-from fcnkit.errors import ConfigError, DataError
+from fcnkit.errors import DataError
 
-CONFIG = Path(__file__).resolve().parent.parent / "configs" / "demo.toml"
+CONFIG = "demo"  # the shipped config (fcnkit/configs/demo.toml)
 MARKER = ".fcnkit-demo"
 PARTS = ("scenes", "run", "map", "evaluation.json", "report.html", "mosaic.tif", "mosaic_truth.tif",
          "mosaic_scores.json")
@@ -81,8 +81,6 @@ def prepare(out: Path) -> None:
 
 
 def demo_config(plan: DemoPlan) -> Config:
-    if not CONFIG.is_file():
-        raise ConfigError(f"{CONFIG}: the demo config is missing (run the demo from a clone of the repository)")
     cfg = load_config(CONFIG)
     return replace_section(cfg, "train", **plan.train) if plan.train else cfg
 
@@ -123,8 +121,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     """Run every demo step into ``out_dir`` and print what happened and where each output is."""
     from fcnkit.data.scenes import SCENE_CLASSES, make_scenes, write_mosaic
     from fcnkit.evaluate import evaluate
-    from fcnkit.tiling import segment_image
-    from fcnkit.train import train
+    from fcnkit.inference.segment import segment_image
+    from fcnkit.model import Model
 
     plan = QUICK if quick else FULL
     out = Path(out_dir)
@@ -151,8 +149,10 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     step("scenes", "")
 
     epochs = f"{cfg.train.epochs} epoch" + ("s" if cfg.train.epochs > 1 else "")
-    echo(f"[2/{n}] training {CONFIG.name} ({epochs} of {cfg.train.patches_per_epoch} patches of {cfg.train.patch} px)")
-    result = train(cfg, paths["train_scenes"], out / "run", progress=progress)
+    echo(f"[2/{n}] training the {CONFIG} config ({epochs} of {cfg.train.patches_per_epoch} patches of "
+         f"{cfg.train.patch} px)")
+    model = Model.build(cfg).fit(paths["train_scenes"], out_dir=out / "run", progress=progress)
+    result = model.last_run
     paths["model"], paths["curves"] = result.model_path, result.run_dir / "metrics.csv"
     figures["best_epoch"], figures["val_miou"] = result.best_epoch, result.best_miou
     step("train", f"      best validation mean IoU {result.best_miou:.4f} at epoch {result.best_epoch}")

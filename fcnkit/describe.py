@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import re
 from collections import Counter
 from collections.abc import Sequence
@@ -13,6 +14,9 @@ from torch import nn
 from fcnkit import geometry
 from fcnkit.config import Config, ModelConfig
 from fcnkit.geometry import Layer
+
+# What a config that leaves bands and classes to the data is described with.
+DEFAULT_BANDS, DEFAULT_CLASSES = 3, 2
 
 
 def _part_of(name: str) -> str:
@@ -76,12 +80,17 @@ def describe(cfg: Config | ModelConfig | nn.Module) -> dict[str, Any]:
     Keys: ``output_stride`` (total down-sampling factor), ``receptive_field`` (pixels an output pixel can
     see, exact over every path), ``tile_margin`` (context exact tiled inference needs on each side),
     ``params``, ``macs_per_megapixel``, ``exact_tiling`` and ``global_layers`` (what prevents it), and
-    ``stages`` (the same per encoder stage and decoder part).
+    ``stages`` (the same per encoder stage and decoder part); ``assumed`` lists the band and class counts
+    taken for a config that leaves them to the training data (they change parameters and MACs a little).
     """
     from fcnkit.nets import build_model, layer_graph
 
-    module = build_model(cfg) if isinstance(cfg, (Config, ModelConfig)) else cfg
-    return describe_graph(layer_graph(module))
+    if isinstance(cfg, (Config, ModelConfig)):
+        m = cfg.model if isinstance(cfg, Config) else cfg
+        assumed = {k: v for k, v in (("bands", DEFAULT_BANDS), ("classes", DEFAULT_CLASSES)) if getattr(m, k) is None}
+        d = describe_graph(layer_graph(build_model(dataclasses.replace(m, **assumed))))
+        return {**d, "assumed": {f"model.{k}": v for k, v in assumed.items()}} if assumed else d
+    return describe_graph(layer_graph(cfg))
 
 
 def _si(n: float) -> str:
@@ -109,6 +118,9 @@ def format_description(d: dict[str, Any]) -> str:
         f"MACs per megapixel             {_si(d['macs_per_megapixel'])}",
         f"exact tiling possible          {'yes' if d['exact_tiling'] else 'no: ' + _global_summary(d)}",
     ]
+    if d.get("assumed"):
+        lines.append("counted with                   " + ", ".join(f"{k} = {v}" for k, v in d["assumed"].items())
+                     + " (the config leaves them to the training data)")
     if d.get("stages"):
         lines += ["", f"{'part':<22}{'stride':>7}{'channels':>10}{'field':>8}{'params':>12}{'MACs/MP':>12}"]
         for r in d["stages"]:

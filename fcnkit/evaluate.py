@@ -1,28 +1,18 @@
-"""Score a net on labelled images: ``evaluate`` for a model file and a dataset folder, and the in-memory
-``evaluate_images`` that training uses for validation.
-
-``evaluate`` runs each image through the same tiled inference as ``segment`` (so labelled images of any
-size work), accumulates one confusion matrix over every labelled pixel, prints the scores of Long et al. 2015
-with per-class IoU and Dice, and writes them as JSON and, on request, as an HTML report (fcnkit.report).
-
-``evaluate_images``: images up to ``block`` × ``block`` pixels go through the net in one piece (the net pads
-and crops itself). Larger ones are cut into blocks, each run with ``margin`` pixels of context on every side
-and cropped back, so memory stays bounded; with the net's tile margin as ``margin`` the blocks give the
-whole-image result.
+"""Score a model on a labelled folder: ``evaluate`` runs each image through the same inference as ``segment``
+(so labelled images of any size work), accumulates one confusion matrix over every labelled pixel, prints the
+scores of Long et al. 2015 with per-class IoU and Dice, and writes them as JSON and, on request, as an HTML
+report (fcnkit.report).
 """
 
 from __future__ import annotations
 
 import json
 import math
-from collections.abc import Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import torch
-from torch import nn
 
 from fcnkit.atomic import write_text_atomic
 from fcnkit.data.classes import ClassTable
@@ -31,54 +21,16 @@ from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError
-from fcnkit.export import check_destination, make_engine
-from fcnkit.losses import pixel_cross_entropy
+from fcnkit.export import check_destination
+from fcnkit.inference.engines import make_engine
+from fcnkit.inference.scan import predict_scores
+from fcnkit.inference.tiles import DEFAULT_TILE
 from fcnkit.metrics import confusion_matrix, segmentation_scores
-from fcnkit.modelfile import LoadedModel, load_model
+from fcnkit.model import Model
 from fcnkit.outputs import normalised_entropy, strided_rgb
-from fcnkit.tiling import DEFAULT_TILE, choose_scan, predict_scores
 
 if TYPE_CHECKING:
     from fcnkit.report import Example
-
-
-def _blocks(n: int, block: int, margin: int) -> Iterator[tuple[int, int, int, int]]:
-    """(read_start, read_stop, keep_start, keep_stop) along one axis of length n."""
-    for start in range(0, n, block):
-        stop = min(start + block, n)
-        yield max(start - margin, 0), min(stop + margin, n), start, stop
-
-
-def evaluate_images(model: nn.Module, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
-                    mean: Sequence[float], std: Sequence[float], num_classes: int, ignore: int = 255,
-                    weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
-                    channels_last: bool = False) -> tuple[np.ndarray, float, float]:
-    """Confusion matrix (rows = truth) over H×W×B images and H×W masks, plus the summed cross-entropy of
-    the labelled pixels and its normaliser (their count, or their summed class weights)."""
-    factor = int(getattr(model, "factor", 1))
-    block = max(factor, block // factor * factor)
-    margin = -(-margin // factor) * factor  # block and read origins stay on the net's pooling grid
-    m = torch.tensor(mean, dtype=torch.float32).view(-1, 1, 1)
-    s = torch.tensor(std, dtype=torch.float32).view(-1, 1, 1)
-    fmt = torch.channels_last if channels_last else torch.contiguous_format
-    cm = np.zeros((num_classes, num_classes), np.int64)
-    ce = norm = 0.0
-    was_training = model.training
-    model.eval()
-    with torch.inference_mode():
-        for image, mask in zip(images, masks, strict=True):
-            h, w = mask.shape
-            for y0, y1, ky0, ky1 in _blocks(h, block, margin):
-                for x0, x1, kx0, kx1 in _blocks(w, block, margin):
-                    x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
-                    x = ((x - m) / s).unsqueeze(0).contiguous(memory_format=fmt)
-                    logits = model(x)[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0]
-                    target = torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0)
-                    total, n = pixel_cross_entropy(logits, target, weight, ignore)
-                    ce, norm = ce + total.item(), norm + n.item()
-                    cm += confusion_matrix(target, logits.argmax(1), num_classes, ignore)
-    model.train(was_training)
-    return cm, ce, norm
 
 
 # --- evaluating a model file on a labelled folder --------------------------------------------------------
@@ -151,21 +103,21 @@ def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str
         raise DataError(f"{data_dir / 'classes.toml'}: classes ({shown}) differ from those of {model} ({want})")
 
 
-def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, settings: dict[str, Any],
-               engine: Any, max_pixels: int | None, progress: bool) -> tuple[np.ndarray, ImageScore, Example]:
+def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict[str, Any],
+               max_pixels: int | None, progress: bool,
+               notes: list[str]) -> tuple[np.ndarray, ImageScore, Example]:
     from fcnkit.report import PANEL_SIDE, Example
 
     k = classes.num_classes
     raster = open_raster(sample.image, max_pixels)
     try:
         h, w, bands = raster.shape
-        if bands != len(loaded.meta.mean):
-            raise DataError(f"{sample.image}: has {bands} bands but the model expects {len(loaded.meta.mean)}")
+        if bands != model.bands:
+            raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
         mask = read_mask(sample.mask, classes, max_pixels)
         if mask.shape != (h, w):
             raise DataError(f"{sample.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image is {w}x{h}")
-        probs = predict_scores(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, engine=engine,
-                               progress=progress, **settings)
+        probs = predict_scores(model, raster, progress=progress, echo=notes.append, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))
         for y0 in range(0, h, 256):
@@ -182,7 +134,7 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
     return cm, score, example
 
 
-def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path: str | Path | None = None,
+def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str | Path | None = None,
              report: str | Path | None = None, curves: str | Path | None = None, examples: int = 3,
              scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
              window: str | None = None, exact: bool = False, tta: bool = False, engine: str = "torch",
@@ -202,23 +154,22 @@ def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path
             check_destination(out, DataError)
     if curves is not None and not Path(curves).is_file():
         raise DataError(f"{curves}: no such training metrics CSV")
-    name = str(model) if not isinstance(model, LoadedModel) else "model"
-    if isinstance(model, (str, Path)):
+    name = str(model) if not isinstance(model, Model) else "model"
+    if not isinstance(model, Model):
         if curves is None and (Path(model).parent / "metrics.csv").is_file():
             curves = Path(model).parent / "metrics.csv"
-        model = load_model(model)
+        model = Model.load(model)
     samples, classes = find_samples(data_dir)
-    same_classes(model.meta.classes, classes, name, data_dir)
+    same_classes(model.classes, classes, name, data_dir)
+    runner = make_engine(engine, model) if engine != "torch" else "torch"  # built once for every image
     settings = {"scan": scan, "tile": tile, "overlap": overlap, "batch": batch, "window": window, "exact": exact,
-                "tta": tta}
-    tiles_asked = any(v is not None for v in (tile, overlap, batch, window))
-    used = choose_scan(model.model, scan, tiles_asked=tiles_asked, tta=tta, engine=engine)
-    runner = make_engine(engine, model.model) if engine != "torch" else None
+                "tta": tta, "engine": runner}
     k = classes.num_classes
     cm = np.zeros((k, k), np.int64)
     scored: list[tuple[ImageScore, Example]] = []
+    notes: list[str] = []
     for sample in samples:
-        one, score, example = _score_one(model, sample, classes, settings, runner, max_pixels, progress)
+        one, score, example = _score_one(model, sample, classes, settings, max_pixels, progress, notes)
         cm += one
         scored.append((score, example))
     if not cm.sum():
@@ -233,10 +184,18 @@ def evaluate(model: str | Path | LoadedModel, data_dir: str | Path, *, json_path
 
         worst = sorted((e for _, e in scored if not math.isnan(e.score)), key=lambda e: e.score)[:examples]
         facts = {"model": name, "data": str(data_dir), "images": str(len(samples)),
-                 "scan": "rows (exact)" if used == "rows" else
-                 f"tiles of {tile or DEFAULT_TILE} px, {window or 'hann'} window" + (", exact" if exact else "")
-                 + (", flip TTA" if tta else "")}
+                 "scan": _scan_fact(scan, tile, window, exact, tta, notes)}
         result.paths["report"] = write_report(report, result.scores, cm, classes, facts=facts, curves=curves,
                                               title=f"Evaluation on {data_dir.name}", examples=worst,
-                                              description=describe(model.model))
+                                              description=describe(model.net))
     return result
+
+
+def _scan_fact(scan: str, tile: int | None, window: str | None, exact: bool, tta: bool, notes: list[str]) -> str:
+    """How the images were scanned, for the report."""
+    if notes:
+        return sorted(set(notes))[0] if len(set(notes)) == 1 else "; ".join(sorted(set(notes)))
+    if scan in ("auto", "rows", "whole"):
+        return "rows (exact)" if scan != "whole" else "whole images (exact)"
+    return (f"tiles of {tile or DEFAULT_TILE} px, {window or 'hann'} window" + (", exact" if exact else "")
+            + (", flip TTA" if tta else ""))

@@ -13,9 +13,10 @@ up-sampling included), not estimated from a single chain.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from fractions import Fraction
+from typing import Any
 
 import numpy as np
 
@@ -290,3 +291,52 @@ def macs(graph: Sequence[Layer], height: int, width: int) -> int:
         elif layer.op == "deconv":
             total += hi * wi * layer.cin * (layer.cout // layer.groups) * k2
     return total
+
+
+# --- feeding a net images of any size -------------------------------------------------------------------
+
+
+def _at_least_zero(v: Any) -> Any:
+    return max(v, 0)
+
+
+@dataclass(frozen=True)
+class PadPlan:
+    """How an image of any size is fed to a net whose pooling grid needs aligned input: the one padding rule
+    every inference path, training and export follow.
+
+    The net's coarse outputs sit on a grid of ``factor`` pixels, ``offset`` pixels off the input's origin (0 for
+    config-built nets; a converted classifier's window of w pixels at stride s has offset w − s). The input is
+    padded (edge pixels repeated) by ``before`` pixels at the top and left, so each coarse output lands on the
+    centre of what it saw, and at the bottom and right to a whole number of cells (at least one); the output
+    is then cropped back to the input's size from ``crop`` on. A padded side is always ``offset`` more than a
+    multiple of ``factor``, so tiles or bands starting on multiples of ``factor`` see the same grid as the
+    whole image.
+    """
+
+    factor: int = 1
+    offset: int = 0
+
+    @property
+    def before(self) -> int:
+        return max(0, self.offset // 2)
+
+    @property
+    def crop(self) -> int:
+        return self.before - self.offset // 2
+
+    def after(self, n: Any, at_least_zero: Callable[[Any], Any] = _at_least_zero) -> Any:
+        """Padding after ``n`` input pixels. Plain arithmetic on ``n``, so a tracer given a symbolic size (and
+        a matching ``at_least_zero``) records it for every size."""
+        d, s = self.offset, self.factor
+        need = self.before + n  # the input itself,
+        need = need + at_least_zero(self.crop + n + d - need)  # an output covering the crop,
+        need = need + at_least_zero(d + s - need)  # at least one whole cell,
+        return need + (d - need) % s - n - self.before  # rounded up to the offset plus whole cells
+
+    def padded(self, n: int) -> int:
+        """Side of the padded input for ``n`` input pixels."""
+        return self.before + n + self.after(n)
+
+    def to_dict(self) -> dict[str, int]:
+        return {"factor": self.factor, "offset": self.offset}

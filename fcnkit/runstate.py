@@ -61,8 +61,18 @@ def _first_difference(old: dict[str, Any], new: dict[str, Any], prefix: str = ""
     return ""
 
 
-def load_resume(path: Path, config: dict[str, Any]) -> dict[str, Any]:
-    """Read a resume point and check it belongs to ``config``."""
+def array_digest(images: list[np.ndarray], masks: list[np.ndarray]) -> str:
+    """A short hash of in-memory training data (shapes, types and bytes), so a resume point knows its data."""
+    h = hashlib.sha256()
+    for a in (*images, *masks):
+        h.update(f"{a.shape}{a.dtype}".encode())
+        h.update(np.ascontiguousarray(a).tobytes())
+    return h.hexdigest()[:16]
+
+
+def load_resume(path: Path, config: dict[str, Any], data: str) -> dict[str, Any]:
+    """Read a resume point and check it belongs to ``config`` and to the training ``data`` (its identity: the
+    dataset folder's files and sizes, or a digest of arrays)."""
     try:
         with warnings.catch_warnings():  # torch remarks on the pickle protocol of files it then refuses
             warnings.simplefilter("ignore")
@@ -78,6 +88,11 @@ def load_resume(path: Path, config: dict[str, Any]) -> dict[str, Any]:
             diff = "config differs"
         raise ModelFileError(f"{path}: resume point belongs to a different config ({diff}); "
                              "use the run's own config or another output folder")
+    if state.get("data") != data:
+        was, now = str(state.get("data", "?")).split("|")[0], data.split("|")[0]
+        what = f"it was {was}, now {now}" if was != now else f"the files of {now} changed since"
+        raise ModelFileError(f"{path}: resume point belongs to other training data ({what}); resume with the same "
+                             "data or start a new run in another output folder")
     return state
 
 

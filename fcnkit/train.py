@@ -1,4 +1,4 @@
-"""Train a segmenter from a dataset folder into a run folder, resumably.
+"""Train a model from a dataset folder (or image and mask arrays) into a run folder, resumably.
 
 Each epoch draws ``train.patches_per_epoch`` patches from the training images (fcnkit.data.patches), fits
 them with per-pixel cross-entropy over labelled pixels (optionally class-weighted and with a Dice term),
@@ -10,15 +10,19 @@ processes (DistributedDataParallel, gloo), validation images too, and rank 0 alo
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import random
+import shutil
 import signal
+import tempfile
 import threading
 import time
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -27,17 +31,19 @@ from torch.nn.parallel import DistributedDataParallel
 from torch.utils.data import DataLoader
 from tqdm import tqdm
 
-from fcnkit import geometry, parallel, runstate
-from fcnkit.config import Config, config_from_dict, config_to_dict
+from fcnkit import parallel, runstate
+from fcnkit.config import TrainConfig, config_from_dict
+from fcnkit.data.classes import ClassTable
 from fcnkit.data.dataset import Sample, band_stats, find_samples
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_image, read_mask
 from fcnkit.data.patches import PatchDataset
 from fcnkit.errors import ConfigError, DataError
-from fcnkit.evaluate import evaluate_images
-from fcnkit.losses import median_frequency_weights, segmentation_loss
-from fcnkit.metrics import segmentation_scores
-from fcnkit.modelfile import ModelMeta, load_model, save_model
+from fcnkit.losses import median_frequency_weights, pixel_cross_entropy, segmentation_loss
+from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.schedules import lr_factor
+
+if TYPE_CHECKING:
+    from fcnkit.model import Model
 
 
 @dataclass
@@ -57,46 +63,55 @@ class TrainingInterrupted(KeyboardInterrupt):
     """Ctrl-C during training: a resume point was written first; the message says where."""
 
 
-def split_samples(samples: list[Sample], val_fraction: float, seed: int) -> tuple[list[Sample], list[Sample]]:
-    """Deterministic split into training and validation by whole images: a seeded permutation of the samples
-    sorted by stem; round(n × val_fraction) images (at least 1 and at most n − 1) go to validation when
-    val_fraction > 0 and there are at least two images."""
-    ordered = sorted(samples, key=lambda s: s.stem)
-    n = len(ordered)
-    n_val = min(max(round(n * val_fraction), 1), n - 1) if val_fraction > 0 and n >= 2 else 0
-    val = set(np.random.default_rng(seed).permutation(n)[:n_val].tolist())
-    return [s for i, s in enumerate(ordered) if i not in val], [s for i, s in enumerate(ordered) if i in val]
-
-
-def train(cfg: Config, data_dir: str | Path, out_dir: str | Path, *, resume: bool = False,
-          init: str | Path | None = None, progress: bool = True,
-          max_pixels: int | None = DEFAULT_MAX_PIXELS) -> TrainResult:
-    """Train ``cfg``'s net (or the model file ``init``, whose architecture and weights then replace
-    cfg.model) on the dataset folder ``data_dir``, writing the run to ``out_dir``. Images and masks above
-    ``max_pixels`` pixels are refused (None: no limit)."""
+def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None = None, *,
+          out_dir: str | Path | None = None, resume: bool = False, progress: bool = True,
+          max_pixels: int | None = None, **settings: Any) -> TrainResult:
+    """Train ``model`` on a dataset folder ``data``, or on image arrays ``data`` (H×W×B) and ``masks`` (H×W class
+    ids), writing the run to ``out_dir`` (a temporary folder, removed afterwards, when None). ``settings``
+    override the model config's [train] table. The model's net is built first when the data has to give its
+    band and class counts; its normalisation is measured on the training images unless it has one already
+    (a loaded model being fine-tuned keeps its own). The model ends holding the weights of its best epoch.
+    Images and masks above ``max_pixels`` pixels are refused (default 2^27)."""
+    t = _settings(model, settings)
     group, threads = parallel.start(), torch.get_num_threads()
+    temporary = out_dir is None
+    run_dir = Path(tempfile.mkdtemp(prefix="fcnkit-run-")) if temporary else Path(out_dir)
     try:
-        if cfg.train.threads:
-            torch.set_num_threads(cfg.train.threads)
-        run = _prepare(cfg, Path(data_dir), Path(out_dir), resume, init, group, max_pixels)
+        if t.threads:
+            torch.set_num_threads(t.threads)
+        run = _prepare(model, t, data, masks, run_dir, resume, group,
+                       DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels)
         with _StopRequest() as stop:
-            return _loop(run, stop, progress)
+            result = _loop(run, stop, progress)
+        model.net.load_state_dict(run.best_state)
+        model.eval()
+        return result
     finally:
         torch.set_num_threads(threads)
         parallel.finish(group)
+        if temporary:
+            shutil.rmtree(run_dir, ignore_errors=True)
+
+
+def _settings(model: Model, overrides: dict[str, Any]) -> TrainConfig:
+    """The model config's [train] table with ``overrides``, validated (and written back into the config, so the
+    model file records what the run used)."""
+    table = {**model.config.get("train", {}), **overrides}
+    t = config_from_dict({"train": table}).train
+    model.config = {**model.config, "train": dataclasses.asdict(t)}
+    return t
 
 
 @dataclass
 class _Run:
     """Everything the loop needs; ``p`` is the progress saved in each resume point."""
 
-    cfg: Config
+    t: TrainConfig
     run_dir: Path
     group: parallel.Group
-    model: nn.Module
+    model: Model
     net: nn.Module  # the model, wrapped for data-parallel training when there are several processes
     opt: torch.optim.Optimizer
-    meta: ModelMeta
     patches: PatchDataset
     val_images: list[np.ndarray]
     val_masks: list[np.ndarray]
@@ -104,33 +119,36 @@ class _Run:
     weight: torch.Tensor | None
     margin: int
     steps_per_epoch: int
+    data_id: str
     p: dict[str, Any]
+    best_state: dict[str, torch.Tensor]
 
 
-def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str | Path | None,
-             group: parallel.Group, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> _Run:
-    from fcnkit import __version__
-
-    t = cfg.train
+def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarray],
+             masks: Sequence[np.ndarray] | None, run_dir: Path, resume: bool, group: parallel.Group,
+             max_pixels: int | None) -> _Run:
     torch.manual_seed(t.seed)
     np.random.seed(t.seed)
     random.seed(t.seed)
-    model, cfg, base = _initial_model(cfg, init)
-    _check_memory(model, cfg)
-    config = base.config if base else config_to_dict(cfg)
+    images, labels, classes, keys, data_id = _data(data, masks, model, max_pixels)
+    if not model.built:
+        model._make_net(images[0].shape[2], classes.num_classes)
+    if model.path is not None:  # fine-tuning a model file: the run records where it started
+        model.extra = {**model.extra, "init": str(model.path)}
+    _check_fits(model, images, classes)
+    _check_memory(model, t)
     if group.main:
         runstate.claim_run_dir(run_dir, resume)
-    state = runstate.load_resume(run_dir / runstate.RESUME_FILE, config) if resume else None
-    samples, classes = find_samples(data_dir)
-    if classes.num_classes != model.classes:
-        raise ConfigError(f"model.classes: the net has {model.classes} classes but {data_dir / 'classes.toml'} "
-                          f"lists {classes.num_classes}")
-    train_s, val_s = split_samples(samples, t.val_fraction, t.seed)
-    train_x, train_y = _read(train_s, classes, model.bands, max_pixels)
-    val_x, val_y = _read(val_s[group.rank::group.world], classes, model.bands, max_pixels)
-    mean, std = (base.mean, base.std) if base else band_stats(train_x)
-    meta = ModelMeta(base.kind if base else "segnet", config, classes, list(mean), [v if v > 0 else 1.0 for v in std],
-                     __version__, base.extra if base else {})
+    state = runstate.load_resume(run_dir / runstate.RESUME_FILE, model.config, data_id) if resume else None
+    order = sorted(range(len(images)), key=lambda i: keys[i])
+    train_i, val_i = split_indices(len(order), t.val_fraction, t.seed)
+    train_x, train_y = [images[order[i]] for i in train_i], [labels[order[i]] for i in train_i]
+    val_x = [images[order[i]] for i in val_i][group.rank::group.world]
+    val_y = [labels[order[i]] for i in val_i][group.rank::group.world]
+    if state is not None:  # the normalisation the run began with, whatever the data says now
+        model.set_normalisation(state["mean"].tolist(), state["std"].tolist())
+    elif model.normalisation is None:
+        model.set_normalisation(*band_stats(train_x))
     weight = None
     if t.class_weights == "median":
         weight = torch.tensor(median_frequency_weights(train_y, classes.num_classes, classes.ignore),
@@ -142,7 +160,7 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
     patches = PatchDataset(train_x, train_y, t.patch, t.patches_per_epoch, balanced=t.balanced,
                            ignore=classes.ignore, augment=t.augment, scale=tuple(t.scale), seed=t.seed)
     fmt = torch.channels_last if t.channels_last else torch.contiguous_format
-    model = model.to(memory_format=fmt)
+    model.to(memory_format=fmt)
     if t.optimizer == "adamw":
         opt: torch.optim.Optimizer = torch.optim.AdamW(model.parameters(), lr=t.lr, weight_decay=t.weight_decay)
     else:
@@ -150,16 +168,18 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
     p = {"epoch": 0, "batch": 0, "step": 0, "seconds": 0.0, "epoch_seconds": 0.0, "loss_sum": 0.0,
          "loss_batches": 0, "pixels": 0, "best_miou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
          "stopped_early": False, "history": []}
+    best_state = _copy_state(model)
     if state is not None:
-        model.load_state_dict(state["model"])
+        model.net.load_state_dict(state["model"])
         opt.load_state_dict(state["optimizer"])
         runstate.set_rng_states(state["rng"])
         if len(state.get("torch_rng_by_rank", [])) == group.world:  # each process's own dropout stream
             torch.set_rng_state(state["torch_rng_by_rank"][group.rank])
         p = state["progress"]
+        best_state = {k: v.clone() for k, v in state.get("best", _copy_state(model)).items()}
     net = DistributedDataParallel(model) if group.world > 1 else model
-    run = _Run(cfg, run_dir, group, model, net, opt, meta, patches, val_x, val_y, bool(val_s), weight,
-               _context_margin(model), math.ceil(per_rank / t.batch), p)
+    run = _Run(t, run_dir, group, model, net, opt, patches, val_x, val_y, bool(val_i), weight,
+               _context_margin(model), math.ceil(per_rank / t.batch), data_id, p, best_state)
     if state is None:
         if group.main:
             run_dir.mkdir(parents=True, exist_ok=True)
@@ -167,10 +187,72 @@ def _prepare(cfg: Config, data_dir: Path, run_dir: Path, resume: bool, init: str
     return run
 
 
+def _copy_state(model: Model) -> dict[str, torch.Tensor]:
+    return {k: v.detach().clone() for k, v in model.net.state_dict().items()}
+
+
+def split_indices(n: int, val_fraction: float, seed: int) -> tuple[list[int], list[int]]:
+    """Deterministic split of n images (sorted by name) into training and validation: a seeded permutation;
+    round(n × val_fraction) images (at least 1 and at most n − 1) go to validation when val_fraction > 0 and
+    there are at least two images."""
+    n_val = min(max(round(n * val_fraction), 1), n - 1) if val_fraction > 0 and n >= 2 else 0
+    val = set(np.random.default_rng(seed).permutation(n)[:n_val].tolist())
+    return [i for i in range(n) if i not in val], [i for i in range(n) if i in val]
+
+
+def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None, model: Model,
+          max_pixels: int | None) -> tuple[list[np.ndarray], list[np.ndarray], ClassTable, list[str], str]:
+    """Images, masks, class table, each image's name (file stem, or index) and an identity of the data (what a
+    resume point must find again)."""
+    if isinstance(data, (str, Path)):
+        if masks is not None:
+            raise ConfigError("masks: give them only with image arrays (a dataset folder holds its own masks/)")
+        samples, classes = find_samples(data)
+        images, labels = _read(samples, classes, max_pixels, model.bands if model.built else None)
+        ident = ",".join(f"{s.stem}:{s.image.stat().st_size}:{s.mask.stat().st_size}" for s in samples)
+        return images, labels, classes, [s.stem for s in samples], f"{Path(data).resolve()}|{ident}"
+    if masks is None or len(masks) != len(data) or not len(data):
+        raise ConfigError(f"masks: expected one H×W mask per image ({len(data)} images, "
+                          f"{'no' if masks is None else len(masks)} masks)")
+    images = [np.asarray(x)[..., None] if np.asarray(x).ndim == 2 else np.asarray(x) for x in data]
+    labels = [np.asarray(m) for m in masks]
+    for i, (x, m) in enumerate(zip(images, labels, strict=True)):
+        if x.ndim != 3 or m.shape != x.shape[:2]:
+            raise DataError(f"images[{i}]: image {x.shape} and mask {m.shape} (expected H×W×B and H×W)")
+        if m.dtype.kind not in "ui" or (m.size and (m.min() < 0 or m.max() > 255)):
+            raise DataError(f"masks[{i}]: expected class ids 0..254 (255 = unlabelled), got {m.dtype} values")
+    labels = [m.astype(np.uint8) for m in labels]
+    classes = model.classes
+    if classes is None:
+        ignore = 255
+        top = max(int(m[m != ignore].max(initial=0)) for m in labels)
+        classes = ClassTable.generic(max(top + 1, 2))
+    for i, m in enumerate(labels):
+        bad = (m >= classes.num_classes) & (m != classes.ignore)
+        if bad.any():
+            raise DataError(f"masks[{i}]: ids {sorted(set(m[bad].tolist()))[:5]} are not classes 0.."
+                            f"{classes.num_classes - 1} or the ignore value {classes.ignore}")
+    digest = runstate.array_digest(images, labels)
+    return images, labels, classes, [f"{i:09d}" for i in range(len(images))], f"arrays|{digest}"
+
+
+def _check_fits(model: Model, images: list[np.ndarray], classes: ClassTable) -> None:
+    """The data must have the model's bands and classes."""
+    if classes.num_classes != model.num_classes:
+        raise ConfigError(f"model.classes: the net has {model.num_classes} classes but the data has "
+                          f"{classes.num_classes}")
+    if model.classes is not None and model.classes.names != classes.names:
+        raise DataError(f"classes: the data's classes ({', '.join(classes.names)}) differ from the model's "
+                        f"({', '.join(model.classes.names)})")
+    model.classes = classes
+    for i, x in enumerate(images):
+        if x.shape[2] != model.bands:
+            raise ConfigError(f"model.bands: the net takes {model.bands} bands but image {i} has {x.shape[2]}")
+
+
 def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
-    t, p, g = run.cfg.train, run.p, run.group
-    ignore, total_steps = run.meta.classes.ignore, t.epochs * run.steps_per_epoch
-    mean, std = (torch.tensor(v, dtype=torch.float32).view(1, -1, 1, 1) for v in (run.meta.mean, run.meta.std))
+    t, p, g = run.t, run.p, run.group
+    ignore, total_steps = run.model.classes.ignore, t.epochs * run.steps_per_epoch
     fmt = torch.channels_last if t.channels_last else torch.contiguous_format
     while p["epoch"] < t.epochs and not p["stopped_early"]:
         epoch, tic, lr = p["epoch"], time.perf_counter() - p["epoch_seconds"], 0.0
@@ -181,7 +263,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             lr = t.lr * lr_factor(p["step"], total_steps, t.warmup * run.steps_per_epoch, t.schedule)
             for group in run.opt.param_groups:
                 group["lr"] = lr
-            x = ((x - mean) / std).contiguous(memory_format=fmt)
+            x = x.contiguous(memory_format=fmt)  # raw pixels: the model normalises them
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=t.bf16):
                 logits = run.net(x)
             loss = segmentation_loss(logits, y, run.weight, ignore, t.dice)
@@ -213,12 +295,11 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
 
 def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     """Validate, record the epoch, keep the best model, write the resume point and the metrics table."""
-    t, p, g = run.cfg.train, run.p, run.group
-    k, tic = run.meta.classes.num_classes, time.perf_counter()
-    parallel.share_buffers(g, run.model)
-    cm, ce, norm = evaluate_images(run.model, run.val_images, run.val_masks, mean=run.meta.mean, std=run.meta.std,
-                                   num_classes=k, ignore=run.meta.classes.ignore, weight=run.weight,
-                                   margin=run.margin, channels_last=t.channels_last)
+    t, p, g, model = run.t, run.p, run.group, run.model
+    tic = time.perf_counter()
+    parallel.share_buffers(g, model)
+    cm, ce, norm = validate(model, run.val_images, run.val_masks, weight=run.weight, margin=run.margin,
+                            channels_last=t.channels_last)
     sums = parallel.all_sum(g, torch.tensor([p["loss_sum"], p["loss_batches"], p["pixels"], ce, norm]))
     cm = parallel.all_sum(g, torch.from_numpy(cm)).numpy().round().astype(np.int64)
     scores = segmentation_scores(cm)
@@ -228,18 +309,17 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
            "val_pixel_acc": scores["pixel_accuracy"], "val_mean_acc": scores["mean_accuracy"],
            "val_miou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
            "pixels_per_s": round(pixels / max(train_seconds, 1e-9))}
-    names = [name.replace(" ", "_") for name in run.meta.classes.names]
+    names = [name.replace(" ", "_") for name in model.classes.names]
     row.update({f"iou_{name}": v for name, v in zip(names, scores["iou"], strict=True)})
     miou = scores["mean_iou"] if not math.isnan(scores["mean_iou"]) else -math.inf
     p.update(epoch=p["epoch"] + 1, batch=0, seconds=row["seconds"], epoch_seconds=0.0, loss_sum=0.0,
              loss_batches=0, pixels=0, history=[*p["history"], row])
     if p["best_epoch"] == 0 or miou > p["best_miou"] or not run.has_val:  # without validation: keep the latest
         p.update(best_miou=miou, best_epoch=p["epoch"], bad_epochs=0)
+        run.best_state = _copy_state(model)
+        model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:
-            meta = ModelMeta(run.meta.kind, run.meta.config, run.meta.classes, run.meta.mean, run.meta.std,
-                             run.meta.version, {**run.meta.extra, "epoch": p["epoch"],
-                                                "val_mean_iou": scores["mean_iou"]})
-            save_model(run.run_dir / runstate.MODEL_FILE, run.model, meta)
+            model.save(run.run_dir / runstate.MODEL_FILE)
     else:
         p["bad_epochs"] += 1
         p["stopped_early"] = bool(t.patience) and p["bad_epochs"] >= t.patience
@@ -248,29 +328,59 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
         runstate.write_metrics(run.run_dir / "metrics.csv", p["history"])
 
 
-def _initial_model(cfg: Config, init: str | Path | None) -> tuple[nn.Module, Config, ModelMeta | None]:
-    """A fresh net from cfg; or the net of model file ``init``, whose model table then replaces cfg.model and
-    whose metadata (kind, resolved config, normalisation) the run carries on."""
-    from fcnkit.nets import build_model
-
-    if init is None:
-        return build_model(cfg), cfg, None
-    loaded = load_model(init)
-    m = loaded.meta
-    config = {**m.config, "train": config_to_dict(cfg)["train"]}
-    if m.kind == "segnet":
-        cfg = config_from_dict(config)
-    return loaded.model, cfg, ModelMeta(m.kind, config, m.classes, m.mean, m.std, m.version,
-                                        {**m.extra, "init": str(init)})
+def _blocks(n: int, block: int, margin: int) -> Iterator[tuple[int, int, int, int]]:
+    """(read_start, read_stop, keep_start, keep_stop) along one axis of length n."""
+    for start in range(0, n, block):
+        stop = min(start + block, n)
+        yield max(start - margin, 0), min(stop + margin, n), start, stop
 
 
-def _read(samples: list[Sample], classes: Any, bands: int,
-          max_pixels: int | None = DEFAULT_MAX_PIXELS) -> tuple[list[np.ndarray], list[np.ndarray]]:
+def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
+             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
+             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
+    """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
+    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights).
+
+    Images up to ``block`` × ``block`` pixels go through the model in one piece. Larger ones are cut into
+    blocks, each run with ``margin`` pixels of context on every side and cropped back, so memory stays bounded;
+    with the net's tile margin as ``margin`` the blocks give the whole-image result."""
+    k, ignore = model.num_classes, model.classes.ignore
+    factor = model.plan.factor
+    block = max(factor, block // factor * factor)
+    margin = -(-margin // factor) * factor  # block and read origins stay on the net's pooling grid
+    fmt = torch.channels_last if channels_last else torch.contiguous_format
+    cm = np.zeros((k, k), np.int64)
+    ce = norm = 0.0
+    was_training = model.training
+    model.eval()
+    with torch.inference_mode():
+        for image, mask in zip(images, masks, strict=True):
+            h, w = mask.shape
+            for y0, y1, ky0, ky1 in _blocks(h, block, margin):
+                for x0, x1, kx0, kx1 in _blocks(w, block, margin):
+                    x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
+                    logits = model(x.unsqueeze(0).contiguous(memory_format=fmt))
+                    logits = logits[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0]
+                    target = torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0)
+                    total, n = pixel_cross_entropy(logits, target, weight, ignore)
+                    ce, norm = ce + total.item(), norm + n.item()
+                    cm += confusion_matrix(target, logits.argmax(1), k, ignore)
+    model.train(was_training)
+    return cm, ce, norm
+
+
+def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+          bands: int | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """Every image and mask of a dataset folder; each image must have ``bands`` bands (the net's, when it is
+    built) and as many as the first."""
     images, masks = [], []
     for s in samples:
         image = read_image(s.image, max_pixels)
-        if image.shape[2] != bands:
+        if bands is not None and image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
+        if images and image.shape[2] != images[0].shape[2]:
+            raise DataError(f"{s.image}: has {image.shape[2]} bands but {samples[0].image.name} has "
+                            f"{images[0].shape[2]} (every image needs the same bands)")
         mask = read_mask(s.mask, classes, max_pixels)
         if mask.shape != image.shape[:2]:
             raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
@@ -280,29 +390,25 @@ def _read(samples: list[Sample], classes: Any, bands: int,
     return images, masks
 
 
-def _check_memory(model: nn.Module, cfg: Config) -> None:
+def _check_memory(model: Model, t: TrainConfig) -> None:
     """Refuse a batch of patches whose training step would not fit in memory, before any file is touched."""
     from fcnkit.memory import check_training_memory
     from fcnkit.nets import layer_graph
 
     try:
-        graph = layer_graph(model)
+        graph = layer_graph(model.net)
     except (ValueError, TypeError, RuntimeError):
         return  # a net the geometry reader cannot trace: no estimate
-    check_training_memory(graph, cfg.train.patch, cfg.train.batch, model.bands, sum(p.numel() for p in
-                                                                                    model.parameters()))
+    check_training_memory(graph, t.patch, t.batch, model.bands, sum(p.numel() for p in model.parameters()))
 
 
-def _context_margin(model: nn.Module) -> int:
+def _context_margin(model: Model) -> int:
     """Context validation blocks need to match whole-image predictions: the net's tile margin (0 when the
     net mixes every position, and so cannot be cut exactly anyway)."""
-    from fcnkit.nets import layer_graph
-
     try:
-        graph = layer_graph(model)
-    except (ValueError, TypeError, RuntimeError):
+        return model.geometry.margin or 0
+    except (ValueError, ConfigError):
         return 0
-    return geometry.tile_margin(graph) if geometry.is_local(graph) else 0
 
 
 def _ignore_sigint(_: int) -> None:
@@ -311,7 +417,7 @@ def _ignore_sigint(_: int) -> None:
 
 def _batches(run: _Run, epoch: int, skip: int) -> DataLoader:
     """This process's share of the epoch's patches, in batches, from batch ``skip`` on."""
-    t, g = run.cfg.train, run.group
+    t, g = run.t, run.group
     run.patches.set_epoch(epoch)
     per_rank = t.patches_per_epoch // g.world
     indices = list(range(g.rank, per_rank * g.world, g.world))[skip * t.batch:]
@@ -325,10 +431,12 @@ def _save_resume(run: _Run) -> None:
     """Write the resume point (rank 0; every process takes part, as each one's torch RNG state is kept)."""
     torch_by_rank = parallel.gather(run.group, torch.get_rng_state())
     if run.group.main:
+        mean, std = run.model.normalisation
         runstate.save_resume(run.run_dir / runstate.RESUME_FILE, {
-            "config_hash": runstate.config_hash(run.meta.config), "config": json.dumps(run.meta.config),
-            "model": run.model.state_dict(), "optimizer": run.opt.state_dict(), "rng": runstate.rng_states(),
-            "torch_rng_by_rank": torch_by_rank, "progress": run.p})
+            "config_hash": runstate.config_hash(run.model.config), "config": json.dumps(run.model.config),
+            "data": run.data_id, "model": run.model.net.state_dict(), "best": run.best_state,
+            "mean": torch.tensor(mean), "std": torch.tensor(std), "optimizer": run.opt.state_dict(),
+            "rng": runstate.rng_states(), "torch_rng_by_rank": torch_by_rank, "progress": run.p})
 
 
 def _interrupt(run: _Run) -> None:

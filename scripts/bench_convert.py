@@ -20,9 +20,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from fcnkit import convert_classifier, grow_segmenter, load_model, make_scenes, train
-from fcnkit.config import config_from_dict
-from fcnkit.convert import save_converted
+from fcnkit import Model, convert_classifier, grow_segmenter, make_scenes
 from fcnkit.convert.sources import sequential_spec
 from fcnkit.data.dataset import find_samples
 from fcnkit.data.imageio import read_image, read_mask
@@ -124,16 +122,15 @@ def main() -> None:
           f"window (max |difference| {diff:.2g}; with padding the windows' borders differ, OverFeat §3.5)")
 
     grown = grow_segmenter(clf, PATCH, keep=tuple(range(k)), skips=(4, 2))
-    model = out / "grown.safetensors"
-    save_converted(model, grown, {"source": "sequential", "layers": sequential_spec(clf, "bench")},
-                   classes=classes, mean=mean, std=std)
+    model = Model.from_conversion(grown, source={"source": "sequential", "layers": sequential_spec(clf, "bench")},
+                                  classes=classes, mean=mean, std=std)
     print(f"grown FCN (skips 4, 2), before fine-tuning: test-scene mIoU "
-          f"{miou(grown, test_images, test_masks, k, mean, std):.3f}")
-    cfg = config_from_dict({"train": {"epochs": args.epochs, "batch": 8, "patch": 64, "patches_per_epoch": 128,
-                                      "val_fraction": 0.25, "lr": 1e-3}})
+          f"{miou(grown.net, test_images, test_masks, k, mean, std):.3f}")
+    settings = {"epochs": args.epochs, "batch": 8, "patch": 64, "patches_per_epoch": 128, "val_fraction": 0.25,
+                "lr": 1e-3}
     t = time.perf_counter()
-    result = train(cfg, data, out / "run", init=model, progress=False)
-    tuned = load_model(result.model_path).model
+    result = model.fit(data, out_dir=out / "run", progress=False, **settings).last_run
+    tuned = model.net
     print(f"after {args.epochs} epochs of fine-tuning ({time.perf_counter() - t:.0f} s): test-scene mIoU "
           f"{miou(tuned, test_images, test_masks, k, mean, std):.3f} (validation split of the run: "
           f"{result.best_miou:.3f})")

@@ -20,9 +20,9 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from fcnkit import build_model, load_config
-from fcnkit.export import OnnxEngine
-from fcnkit.tiling import TorchEngine, predict_scores
+from fcnkit import Model, load_config
+from fcnkit.inference.engines import OnnxEngine, TorchEngine
+from fcnkit.inference.scan import predict_scores
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -39,23 +39,22 @@ def best_of_each(repeats: int, fns: dict[str, Callable[[], object]]) -> dict[str
 
 
 def bench(config: str, side: int, tile: int, batch: int, repeats: int) -> None:
-    cfg = load_config(ROOT / "configs" / config)
-    torch.manual_seed(0)
-    net = build_model(cfg).eval()
+    cfg = load_config(ROOT / "fcnkit" / "configs" / config)
+    net = Model.build(cfg).eval()
     bands = cfg.model.bands
     rng = np.random.default_rng(0)
     image = rng.integers(0, 256, size=(side, side, bands), dtype=np.uint8)
-    mean, std = [128.0] * bands, [64.0] * bands
+    net.set_normalisation([128.0] * bands, [64.0] * bands)
     torch_engine, ort_engine = TorchEngine(net), OnnxEngine(net)
 
-    x = torch.randn(batch, bands, tile, tile).contiguous(memory_format=torch.channels_last)
+    x = (128 + 64 * torch.randn(batch, bands, tile, tile)).contiguous(memory_format=torch.channels_last)
     torch_engine(x), ort_engine(x)  # warm-up
     mp = batch * tile * tile / 1e6
     fwd = best_of_each(repeats, {"torch": lambda: torch_engine(x), "ort": lambda: ort_engine(x)})
     t_fwd, o_fwd = fwd["torch"], fwd["ort"]
 
     def tiled(engine):
-        return predict_scores(net, image, mean=mean, std=std, tile=tile, batch=batch, engine=engine)
+        return predict_scores(net, image, scan="tiles", tile=tile, batch=batch, engine=engine)
 
     labels_t = tiled(torch_engine).argmax(0)
     labels_o = tiled(ort_engine).argmax(0)

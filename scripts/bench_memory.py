@@ -15,14 +15,15 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 CHILD = """
 import resource, sys, torch
-from fcnkit import build_model, load_config
+from fcnkit import Model, load_config
+from fcnkit.inference.engines import TorchEngine
 from fcnkit.memory import forward_bytes
 from fcnkit.nets import layer_graph
-from fcnkit.tiling import TorchEngine
 torch.set_num_threads(1)
 cfg = load_config(sys.argv[1]); tile, batch = int(sys.argv[2]), int(sys.argv[3])
-net = build_model(cfg).eval()
-floor = forward_bytes(layer_graph(net), tile, tile, batch, cfg.model.bands)
+net = Model.build(cfg).eval()
+net.set_normalisation([0.0] * cfg.model.bands, [1.0] * cfg.model.bands)
+floor = forward_bytes(layer_graph(net.net), tile, tile, batch, cfg.model.bands)
 engine = TorchEngine(net)
 engine(torch.zeros(1, cfg.model.bands, 64, 64))  # warm up: one-off allocations are not the pass's
 x = torch.zeros(batch, cfg.model.bands, tile, tile).contiguous(memory_format=torch.channels_last)
@@ -39,7 +40,7 @@ def main() -> None:
     batch = int(sys.argv[2]) if len(sys.argv) > 2 else 2
     print(f"tile {tile}, batch {batch}; the check plans {HEADROOM} x the floor")
     print(f"{'config':<12}{'floor MiB':>11}{'measured MiB':>14}{'measured / floor':>18}")
-    for config in sorted((ROOT / "configs").glob("*.toml")):
+    for config in sorted((ROOT / "fcnkit" / "configs").glob("*.toml")):
         out = subprocess.run([sys.executable, "-c", CHILD, str(config), str(tile), str(batch)], capture_output=True,
                              text=True, check=True).stdout.split()
         floor, rise = int(out[0]), int(out[1])

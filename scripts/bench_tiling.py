@@ -24,10 +24,12 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from fcnkit import build_model, load_config
+from fcnkit import Model, load_config
 from fcnkit.geometry import macs
+from fcnkit.inference.engines import TorchEngine
+from fcnkit.inference.scan import predict_scores
+from fcnkit.inference.tiles import auto_batch, plan_tiles
 from fcnkit.nets import layer_graph
-from fcnkit.tiling import TorchEngine, auto_batch, net_geometry, plan_tiles, predict_scores
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -49,9 +51,10 @@ def matmul_peak(n: int = 2048, repeats: int = 5) -> float:
     return 2 * n**3 / best_of(lambda: torch.mm(a, b), repeats)
 
 
-def random_net(config: str) -> torch.nn.Module:
-    torch.manual_seed(0)
-    net = build_model(load_config(ROOT / config)).eval()
+def random_net(config: str) -> Model:
+    """The config's net with random weights and batch-norm statistics, normalising 8-bit pixels."""
+    net = Model.build(load_config(config)).eval()
+    net.set_normalisation([128.0] * net.bands, [64.0] * net.bands)
     for m in net.modules():  # non-trivial statistics, as after training
         if isinstance(m, torch.nn.BatchNorm2d):
             m.running_mean.uniform_(-0.2, 0.2)
@@ -84,9 +87,9 @@ def speed(config: str, side: int, repeats: int, peak: float, tile: int = 512) ->
     t_tiles = best_of(run(scan="tiles", tile=tile), repeats)
     t_bf16 = best_of(run(True), repeats)
     agree = float((run()().argmax(0) == run(True)().argmax(0)).mean())
-    graph = layer_graph(net)
+    graph = layer_graph(net.net)
     useful = 2 * macs(graph, side, side)
-    plan = plan_tiles(net_geometry(net), side, side, tile=tile)
+    plan = plan_tiles(net.geometry, side, side, tile=tile)
     executed = 2 * sum(macs(graph, *t.shape) for t in plan.tiles())
     return {
         "config": config, "image": f"{side}x{side}x{bands}", "tile": tile, "tile_batch": auto_batch(plan),
@@ -106,10 +109,10 @@ CHILD = """
 import json, resource, sys, time
 import torch
 sys.path.insert(0, {root!r})
-from fcnkit import build_model, load_config
-from fcnkit.tiling import segment_image
-torch.manual_seed(0)
-net = build_model(load_config({config!r})).eval()
+from fcnkit import Model, load_config
+from fcnkit.inference.segment import segment_image
+net = Model.build(load_config({config!r})).eval()
+net.set_normalisation([128.0] * net.bands, [64.0] * net.bands)
 t = time.perf_counter()
 res = segment_image(net, {image!r}, {out!r}, progress=False)
 seconds = time.perf_counter() - t
@@ -129,7 +132,7 @@ def segment_child(config: str, image: Path, out: Path, again: bool = False) -> d
     the time of a second run in the same process). The peak is read as VmHWM from /proc (the high-water mark
     of the child's own address space): Linux seeds a child's ru_maxrss at exec with the parent's peak, which
     here is the whole-image runs' memory."""
-    code = CHILD.format(root=str(ROOT), config=str(ROOT / config), image=str(image), out=str(out), again=again)
+    code = CHILD.format(root=str(ROOT), config=config, image=str(image), out=str(out), again=again)
     run = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     return json.loads(run.stdout.strip().splitlines()[-1])
 
@@ -150,7 +153,7 @@ def main() -> None:
           "work, so absolute speeds are noisy; ratios are taken within this run")
     peak = matmul_peak()
     print(f"float32 matmul peak (torch.mm 2048^3): {peak / 1e9:.1f} GFLOP/s")
-    rows = (("configs/demo.toml", 512), ("configs/fcn8s.toml", 512), ("configs/fcn8s.toml", 1024))
+    rows = (("demo", 512), ("fcn8s", 512), ("fcn8s", 1024))
     for config, tile in rows if args.only in (None, "speed") else ():
         r = speed(config, side, repeats, peak, tile)
         print(json.dumps(r))
@@ -170,7 +173,7 @@ def main() -> None:
     sizes, seconds, warm = [], [], []
     for s in scaling_sides if args.only in (None, "scaling") else ():
         img = write_mosaic(work / f"scale{s}.tif", s, 1)
-        r = segment_child("configs/demo.toml", img, work / f"scale{s}", again=True)
+        r = segment_child("demo", img, work / f"scale{s}", again=True)
         sizes.append(s * s / 1e6)
         seconds.append(r["seconds"])
         warm.append(r["again"])
@@ -192,7 +195,7 @@ def main() -> None:
     mosaic = work / f"mosaic{mosaic_side}.tif"
     if not mosaic.exists():
         write_mosaic(mosaic, mosaic_side, 2)
-    r = segment_child("configs/demo.toml", mosaic, work / "mosaic_out")
+    r = segment_child("demo", mosaic, work / "mosaic_out")
     print(f"  {mosaic_side}x{mosaic_side} 4-band mosaic: {r['seconds']:.0f} s "
           f"({mosaic_side**2 / 1e6 / r['seconds']:.2f} MP/s incl. reading and writing outputs), peak RSS "
           f"{r['hwm_kb'] / 2**20:.2f} GB (VmHWM of the child process; target <= 1.5 GB; its ru_maxrss, which "

@@ -1,11 +1,11 @@
-"""Time to a useful model, from nothing: render synthetic scenes, train configs/demo.toml on them, score the
+"""Time to a useful model, from nothing: render synthetic scenes, train demo on them, score the
 best model on held-out scenes it never saw. Target: validation mean IoU ≥ 0.85 within 5 minutes of wall time
 on 2 cores, data generation included.
 
 Prints the training curve (epoch, seconds since the start including scene rendering, validation mIoU) and
 the held-out test mIoU. Timings on a shared machine are noisy; the load average is printed with them.
 
-    .venv/bin/python scripts/bench_time_to_model.py [--config configs/demo.toml] [--scenes 40] [--size 256]
+    .venv/bin/python scripts/bench_time_to_model.py [--config demo] [--scenes 40] [--size 256]
         [--set threads=1 ...]
 """
 
@@ -21,18 +21,18 @@ from pathlib import Path
 
 import torch
 
-from fcnkit import load_config, load_model, train
+from fcnkit import Model, load_config
 from fcnkit.config import replace_section
 from fcnkit.data.dataset import find_samples
 from fcnkit.data.imageio import read_image, read_mask
 from fcnkit.data.scenes import make_scenes
-from fcnkit.evaluate import evaluate_images
 from fcnkit.metrics import segmentation_scores
+from fcnkit.train import validate
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--config", default="configs/demo.toml")
+    ap.add_argument("--config", default="demo")
     ap.add_argument("--scenes", type=int, default=40, help="training scenes (the trainer holds out its val split)")
     ap.add_argument("--test", type=int, default=10, help="held-out test scenes")
     ap.add_argument("--size", type=int, default=256, help="scene side in pixels")
@@ -53,14 +53,13 @@ def main() -> None:
         test_dir = make_scenes(Path(tmp) / "test", args.test, args.size, args.seed + 1)
         rendered = time.perf_counter() - start
         print(f"rendered {args.scenes} + {args.test} scenes of {args.size}x{args.size} px in {rendered:.1f} s")
-        result = train(cfg, train_dir, Path(tmp) / "run", progress=True)
+        model = Model.build(cfg).fit(train_dir, out_dir=Path(tmp) / "run", progress=True)
+        result = model.last_run
         trained = time.perf_counter() - start
         rows = list(csv.DictReader((Path(tmp) / "run" / "metrics.csv").open()))
-        loaded = load_model(result.model_path)
         samples, classes = find_samples(test_dir)
-        cm, _, _ = evaluate_images(loaded.model, [read_image(s.image) for s in samples],
-                                   [read_mask(s.mask, classes) for s in samples], mean=loaded.meta.mean,
-                                   std=loaded.meta.std, num_classes=classes.num_classes)
+        cm, _, _ = validate(model, [read_image(s.image) for s in samples],
+                            [read_mask(s.mask, classes) for s in samples])
         test = segmentation_scores(cm)
     total = time.perf_counter() - start
     print(f"\n{'epoch':>5}{'seconds':>9}{'val mIoU':>10}{'train loss':>12}{'Mpx/s':>8}")

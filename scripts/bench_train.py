@@ -7,7 +7,7 @@ inputs and to weights; a common rule of thumb). Batch-norm, ReLU, loss and optim
 so the fraction is a slight underestimate. The peak is the best of several torch.mm calls on large square
 float32 matrices. Timings on a shared machine are noisy: each figure is the best of a few repeats.
 
-    .venv/bin/python scripts/bench_train.py [configs/demo.toml] [--batch 8] [--patch 128] [--steps 6]
+    .venv/bin/python scripts/bench_train.py [demo] [--batch 8] [--patch 128] [--steps 6]
 """
 
 from __future__ import annotations
@@ -58,7 +58,7 @@ def step_time(cfg, batch: int, patch: int, steps: int, channels_last: bool, bf16
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("config", nargs="?", default="configs/demo.toml")
+    ap.add_argument("config", nargs="?", default="demo")
     ap.add_argument("--batch", type=int, default=8)
     ap.add_argument("--patch", type=int, default=128)
     ap.add_argument("--steps", type=int, default=6)

@@ -165,35 +165,25 @@ def write_dataset(folder: Path, count: int = 3, size: int = 24) -> Path:
     return folder
 
 
-def model_meta(bands: int = 3, **changes: object):
-    """Metadata of a tiny fcnkit model file (see fcnkit.modelfile)."""
+def write_model(path: Path, bands: int = 3) -> Path:
+    """A tiny fcnkit model file (random weights) with three classes."""
     import tomllib
 
-    from fcnkit import __version__
-    from fcnkit.config import config_from_dict, config_to_dict
-    from fcnkit.data.classes import ClassInfo, ClassTable
-    from fcnkit.modelfile import ModelMeta
-    table = tomllib.loads(TINY_CONFIG)
-    table["model"]["bands"] = bands
-    config = config_to_dict(config_from_dict(table))
-    classes = ClassTable(tuple(ClassInfo(i, n, tuple(int(v) for v in COLORS[i]))
-                               for i, n in enumerate(("ground", "water", "roof"))))
-    values = {"kind": "segnet", "config": config, "classes": classes, "mean": [100.0] * bands,
-              "std": [50.0] * bands, "version": __version__, "extra": {}}
-    values.update(changes)
-    return ModelMeta(**values)
-
-
-def write_model(path: Path, bands: int = 3) -> Path:
     import torch
 
-    from fcnkit.config import config_from_dict
-    from fcnkit.modelfile import save_model
+    from fcnkit.config import config_from_dict, config_to_dict
+    from fcnkit.data.classes import ClassInfo, ClassTable
+    from fcnkit.model import Model
     from fcnkit.nets import build_model
 
-    meta = model_meta(bands)
+    table = tomllib.loads(TINY_CONFIG)
+    table["model"]["bands"] = bands
+    cfg = config_from_dict(table)
+    classes = ClassTable(tuple(ClassInfo(i, n, tuple(int(v) for v in COLORS[i]))
+                               for i, n in enumerate(("ground", "water", "roof"))))
     torch.manual_seed(0)
-    save_model(path, build_model(config_from_dict(meta.config)), meta)
+    Model(build_model(cfg), classes=classes, mean=[100.0] * bands, std=[50.0] * bands,
+          config=config_to_dict(cfg)).save(path)
     return path
 
 

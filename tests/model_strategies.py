@@ -12,6 +12,7 @@ from hypothesis import strategies as st
 from torch import nn
 
 from fcnkit.config import ModelConfig, config_from_dict
+from fcnkit.model import Model
 
 
 @st.composite
@@ -73,7 +74,13 @@ def randomise_statistics(net: nn.Module, seed: int, deconv: bool = False) -> nn.
     return net.eval()
 
 
-def whole_image(net: nn.Module, img: np.ndarray) -> np.ndarray:
-    """The reference for tiled and streamed inference: the net run on the whole H×W×B image at once (torch)."""
+def as_model(net: nn.Module, mean: list[float] | None = None, std: list[float] | None = None) -> Model:
+    """A net (with its padding plan) as a model: no normalisation unless given, generic classes."""
+    return Model(net, classes=None, mean=mean or [0.0] * net.bands, std=std or [1.0] * net.bands).eval()
+
+
+def whole_image(model: nn.Module, img: np.ndarray) -> np.ndarray:
+    """The reference for tiled and streamed inference: the model (or net) run on the whole H×W×B image at once
+    by its own forward pass (torch)."""
     with torch.no_grad():
-        return net(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()
+        return model(torch.from_numpy(img).permute(2, 0, 1)[None].float())[0].numpy()

@@ -14,7 +14,7 @@ from fcnkit.config import Config, ModelConfig, config_from_dict, config_to_dict,
 from fcnkit.errors import ConfigError, FcnkitError
 
 ROOT = Path(__file__).resolve().parents[1]
-CONFIGS = sorted((ROOT / "configs").glob("*.toml"))
+CONFIGS = sorted((ROOT / "fcnkit" / "configs").glob("*.toml"))
 
 # (TOML text, pieces the one-line message must contain: key path, bad value, what is allowed)
 BAD = {
@@ -126,7 +126,7 @@ def test_round_trip_dict_and_json(path: Path) -> None:
 
 
 def test_replace_section_revalidates() -> None:
-    cfg = load_config(ROOT / "configs" / "tiny.toml")
+    cfg = load_config(ROOT / "fcnkit" / "configs" / "tiny.toml")
     assert replace_section(cfg, "model", classes=7).model.classes == 7
     assert replace_section(cfg, "model", classes=7).model.widths == cfg.model.widths
     with pytest.raises(ConfigError, match=r"^model\.clases: unknown key \(did you mean 'classes'\?\)"):

@@ -227,10 +227,13 @@ def test_no_dense_layer_or_no_flatten() -> None:
 def test_tiled_inference_equals_whole_image_map(padded: bool) -> None:
     """The converted net runs through tiled inference; in exact mode the tiles reproduce the map of the whole
     image (reference: the same net on the whole image, softmax from torch.nn.functional)."""
-    tiling = pytest.importorskip("fcnkit.tiling")
+    from fcnkit import Model
+    from fcnkit.inference.scan import predict_scores
+
     conv = convert_classifier(lively(user_cnn(padded=padded)), 28, keep=(0, 1, 2))
     image = np.random.default_rng(0).integers(0, 255, (150, 170, 3)).astype(np.uint8)
-    scores = tiling.predict_scores(conv.net, image, mean=[100.0] * 3, std=[50.0] * 3, tile=96, exact=True)
+    model = Model.from_conversion(conv, mean=[100.0] * 3, std=[50.0] * 3)
+    scores = predict_scores(model, image, tile=96, exact=True)
     x = torch.from_numpy(((image.astype(np.float32) - 100) / 50).transpose(2, 0, 1))[None]
     with torch.no_grad():
         whole = torch.softmax(conv.net(x), dim=1)[0].numpy()

@@ -18,7 +18,7 @@ from torch import nn
 
 from fcnkit.cli import main
 from fcnkit.convert import convert_classifier, load_classifier
-from fcnkit.modelfile import load_model
+from fcnkit.model import Model
 from tests.test_convert import lively, user_cnn
 
 
@@ -58,9 +58,9 @@ def test_factory_source_certificate_and_model_file(user_package, capsys) -> None
     cert = json.loads(out)
     assert cert["passed"] and cert["max_abs_diff"] <= 1e-4
     assert cert["stride"] == 4 and cert["receptive_field"] == 28 and cert["output_sides"]["44"] == 5
-    loaded = load_model(model)  # a plain Sequential: rebuilt from its layer list, no import of fieldnets
-    assert loaded.meta.kind == "dense-classifier" and loaded.model.classes == 2
-    assert loaded.meta.extra["source"]["source"] == "sequential"
+    loaded = Model.load(model)  # a plain Sequential: rebuilt from its layer list, no import of fieldnets
+    assert loaded.kind == "dense-classifier" and loaded.num_classes == 2
+    assert loaded.extra["source"]["source"] == "sequential"
 
 
 def test_text_certificate(user_package, capsys) -> None:
@@ -107,9 +107,9 @@ def test_torchvision_with_local_torch_weights(tmp_path, capsys) -> None:
     assert rc == 0, err
     cert = json.loads(out)
     assert cert["passed"] and cert["receptive_field"] is None and cert["max_abs_logit"] > 0.05
-    loaded = load_model(model)  # rebuilt from the torchvision architecture name only
-    assert loaded.meta.kind == "grown-segmenter" and loaded.model.classes == 2
-    assert loaded.meta.extra["source"] == {"source": "torchvision", "arch": "mobilenet_v3_small", "num_classes": 7}
+    loaded = Model.load(model)  # rebuilt from the torchvision architecture name only
+    assert loaded.kind == "grown-segmenter" and loaded.num_classes == 2
+    assert loaded.extra["source"] == {"source": "torchvision", "arch": "mobilenet_v3_small", "num_classes": 7}
 
 
 def _one_line_error(argv: list[str], capsys, needle: str) -> None:

@@ -15,10 +15,10 @@ import torchvision
 from torch import nn
 from torch.nn import functional as F
 
-from fcnkit.convert import ConvertError, convert_classifier, grow_segmenter, rebuild, save_converted
+from fcnkit import Model
+from fcnkit.convert import ConvertError, convert_classifier, grow_segmenter, rebuild
 from fcnkit.errors import ModelFileError
 from fcnkit.geometry import downsampling_factor
-from fcnkit.modelfile import load_model
 from fcnkit.nets import layer_graph
 from tests.test_convert import lively, user_cnn
 
@@ -32,7 +32,7 @@ def resnet() -> nn.Module:
 
 
 def test_fcn8s_shapes_and_init(resnet: nn.Module) -> None:
-    net = grow_segmenter(resnet, 64, classes=3, skips=(16, 8))
+    net = grow_segmenter(resnet, 64, classes=3, skips=(16, 8)).net
     body = net.body
     assert len(body.skip_scores) == 2 and [u.factor for u in body.ups] == [2, 2] and body.final_up.factor == 8
     for conv in [body.score, *body.skip_scores]:  # new score layers start at zero (Long et al. 2015)
@@ -55,7 +55,7 @@ def test_kept_classes_reuse_the_classifier_rows(resnet: nn.Module) -> None:
     """With a subset of the classifier's classes and no skips, the coarse scores before up-sampling are the
     dense net's class-activation map rows (Zhou et al. 2016)."""
     keep = (7, 3, 500)
-    net = grow_segmenter(resnet, 64, keep=keep).eval()
+    net = grow_segmenter(resnet, 64, keep=keep).net.eval()
     dense = convert_classifier(resnet, 64).dense
     seen = {}
     net.body.final_up.register_forward_hook(lambda m, i, o: seen.setdefault("coarse", i[0]))
@@ -70,7 +70,7 @@ def test_same_padded_head_matches_dense_head_inside() -> None:
     scores are the dense net's, shifted by (k − 1)/2 cells (a padded 28 px CNN: 7×7 features, k = 7)."""
     module = lively(user_cnn(padded=True))
     dense = convert_classifier(module, 28).dense
-    net = grow_segmenter(module, 28, keep=(0, 1, 2, 3)).eval()
+    net = grow_segmenter(module, 28, keep=(0, 1, 2, 3)).net.eval()
     seen = {}
     net.body.final_up.register_forward_hook(lambda m, i, o: seen.setdefault("coarse", i[0]))
     x = torch.randn(1, 3, 56, 56)
@@ -83,7 +83,7 @@ def test_same_padded_head_matches_dense_head_inside() -> None:
 
 def test_extra_bands_widen_the_first_convolution(resnet: nn.Module) -> None:
     w = resnet.conv1.weight.detach().clone()
-    net = grow_segmenter(resnet, 64, classes=2, bands=4)
+    net = grow_segmenter(resnet, 64, classes=2, bands=4).net
     first = net.body.trunk.conv1.weight.detach()
     assert first.shape[1] == 4 and net.bands == 4
     torch.testing.assert_close(first[:, :3], w)
@@ -104,28 +104,31 @@ def test_misaligned_skips_are_refused() -> None:
 
 
 def test_grown_model_file_round_trip(tmp_path, resnet: nn.Module) -> None:
-    net = grow_segmenter(resnet, 64, classes=3, skips=(16,), bands=4)
+    grown = grow_segmenter(resnet, 64, classes=3, skips=(16,), bands=4)
     with torch.no_grad():
-        for conv in [net.body.score, *net.body.skip_scores]:
+        for conv in [grown.net.body.score, *grown.net.body.skip_scores]:
             conv.weight.normal_()
-    path = tmp_path / "grown.safetensors"
-    meta = save_converted(path, net, TV_SOURCE)
-    assert meta.kind == "grown-segmenter" and meta.classes.names == ["class 0", "class 1", "class 2"]
+    model = Model.from_conversion(grown, source=TV_SOURCE).eval()
+    assert model.kind == "grown-segmenter" and model.classes.names == ["class 0", "class 1", "class 2"]
     # torchvision's ImageNet statistics in 8-bit units (torchvision docs); the extra band gets their mean
-    assert meta.mean[:3] == pytest.approx([123.675, 116.28, 103.53]) and len(meta.mean) == 4
-    loaded = load_model(path)
-    x = torch.randn(1, 4, 64, 80)
+    mean, _ = model.normalisation
+    assert mean[:3] == pytest.approx([123.675, 116.28, 103.53]) and len(mean) == 4
+    path = model.save(tmp_path / "grown.safetensors")
+    loaded = Model.load(path)
+    x = 100 + 50 * torch.randn(1, 4, 64, 80)
     with torch.no_grad():
-        torch.testing.assert_close(loaded.model(x), net.eval()(x))
+        torch.testing.assert_close(loaded(x), model(x))
 
 
 def test_dense_model_file_keeps_certificate(tmp_path) -> None:
     module = lively(user_cnn())
     conv = convert_classifier(module, 28, keep=(1, 3))
-    path = tmp_path / "dense.safetensors"
-    save_converted(path, conv.net, {"source": "factory", "factory": "somewhere:make"}, certificate=conv.certificate)
+    path = Model.from_conversion(conv, source={"source": "factory", "factory": "somewhere:make"}).save(
+        tmp_path / "dense.safetensors")
     with pytest.raises(ModelFileError, match="user factory 'somewhere:make'"):
-        load_model(path)
+        Model.load(path)
+    loaded = Model.load(path, classifier=module)  # the user gives the classifier back: nothing imported
+    assert loaded.extra["certificate"]["passed"] and loaded.num_classes == 2
 
 
 def test_sequential_source_rebuilds_without_imports(tmp_path) -> None:
@@ -133,14 +136,12 @@ def test_sequential_source_rebuilds_without_imports(tmp_path) -> None:
 
     module = lively(user_cnn())
     conv = convert_classifier(module, 28, keep=(1, 3))
-    path = tmp_path / "dense.safetensors"
-    meta = save_converted(path, conv.net, {"source": "sequential", "layers": sequential_spec(module, "test")},
-                          certificate=conv.certificate)
-    assert meta.extra["certificate"]["passed"]
-    loaded = load_model(path)
+    model = Model.from_conversion(conv, source={"source": "sequential", "layers": sequential_spec(module, "test")})
+    assert model.extra["certificate"]["passed"]
+    loaded = Model.load(model.save(tmp_path / "dense.safetensors"))
     x = torch.randn(1, 3, 40, 52)
     with torch.no_grad():
-        torch.testing.assert_close(loaded.model(x), conv.net(x))
+        torch.testing.assert_close(loaded(x), conv.net(x))  # no normalisation for a user's classifier
 
 
 @pytest.mark.parametrize("source", [
@@ -158,23 +159,25 @@ def test_rebuild_never_imports_named_code(source: dict) -> None:
 
 def test_fine_tune_end_to_end_on_demo_scenes(tmp_path) -> None:
     """The grown segmenter trains with `fcnkit train --init` on a dataset folder of demo scenes."""
-    scenes = pytest.importorskip("fcnkit.data.scenes")
-    train_mod = pytest.importorskip("fcnkit.train")
+    from tiny_train import fit
+
     from fcnkit.config import config_from_dict
+    from fcnkit.data import scenes
 
     data = tmp_path / "scenes"
     scenes.make_scenes(data, 4, 64, seed=3)  # 4-band (R, G, B, NIR) scenes
     k = scenes.SCENE_CLASSES.num_classes
-    net = grow_segmenter(lively(user_cnn(padded=True)), 28, classes=k, skips=(), bands=4)
-    model = tmp_path / "grown.safetensors"
-    save_converted(model, net, {"source": "sequential", "layers": _spec()}, mean=[100.0] * 4, std=[50.0] * 4)
+    grown = grow_segmenter(lively(user_cnn(padded=True)), 28, classes=k, skips=(), bands=4)
+    model = Model.from_conversion(grown, source={"source": "sequential", "layers": _spec()},
+                                  classes=scenes.SCENE_CLASSES, mean=[100.0] * 4, std=[50.0] * 4)
+    path = model.save(tmp_path / "grown.safetensors")
     cfg = config_from_dict({"train": {"epochs": 1, "batch": 2, "patch": 32, "patches_per_epoch": 4,
                                       "val_fraction": 0.25}})
-    result = train_mod.train(cfg, data, tmp_path / "run", init=model, progress=False)
-    out = load_model(result.model_path)
-    assert out.meta.kind == "grown-segmenter" and out.model.classes == k and out.model.bands == 4
-    before = load_model(model).model.state_dict()
-    after = out.model.state_dict()
+    result = fit(cfg, data, tmp_path / "run", init=path, progress=False)
+    out = Model.load(result.model_path)
+    assert out.kind == "grown-segmenter" and out.num_classes == k and out.bands == 4
+    before = Model.load(path).net.state_dict()
+    after = out.net.state_dict()
     assert any(not torch.equal(before[n], after[n]) for n in before)  # training changed the weights
 
 

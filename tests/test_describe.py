@@ -21,7 +21,7 @@ from fcnkit.describe import format_description
 from fcnkit.nets import layer_graph
 
 ROOT = Path(__file__).resolve().parents[1]
-CONFIGS = sorted((ROOT / "configs").glob("*.toml"))
+CONFIGS = sorted((ROOT / "fcnkit" / "configs").glob("*.toml"))
 REQUIRED = ("output_stride", "receptive_field", "tile_margin", "params", "macs_per_megapixel")
 
 pytestmark = pytest.mark.usefixtures("torch_one_thread")
@@ -30,9 +30,9 @@ pytestmark = pytest.mark.usefixtures("torch_one_thread")
 def test_configs_are_shipped() -> None:
     names = {p.stem for p in CONFIGS}
     assert {"tiny", "demo", "fcn8s", "unet"} <= names
-    fcn8s = load_config(ROOT / "configs" / "fcn8s.toml").model
+    fcn8s = load_config(ROOT / "fcnkit" / "configs" / "fcn8s.toml").model
     assert fcn8s.fusion == "sum" and fcn8s.skip_strides() == [16, 8]  # FCN-8s: scores from strides 16 and 8
-    assert load_config(ROOT / "configs" / "unet.toml").model.fusion == "concat"
+    assert load_config(ROOT / "fcnkit" / "configs" / "unet.toml").model.fusion == "concat"
 
 
 @pytest.mark.parametrize("path", CONFIGS, ids=lambda p: p.name)
@@ -93,11 +93,11 @@ def test_cli_describe_runs_on_every_shipped_config(capsys: pytest.CaptureFixture
 
 def test_readme_figures_match_describe() -> None:
     readme = (ROOT / "README.md").read_text(encoding="utf-8")
-    row = r"^\| `(configs/\w+\.toml)` \| (\d+) \| (\d+) \| (\d+) \| ([\d,]+) \| ([\d.]+) G \|$"
+    row = r"^\| `(\w+)` \| (\d+) \| (\d+) \| (\d+) \| ([\d,]+) \| ([\d.]+) G \|$"
     rows = re.findall(row, readme, re.M)
-    assert {r[0] for r in rows} == {str(p.relative_to(ROOT)) for p in CONFIGS}
+    assert {r[0] for r in rows} == {p.stem for p in CONFIGS}
     for path, stride, field, margin, params, gmacs in rows:
-        d = describe(load_config(ROOT / path))
+        d = describe(load_config(path))
         assert (d["output_stride"], d["receptive_field"], d["tile_margin"]) == (int(stride), int(field), int(margin))
         assert d["params"] == int(params.replace(",", ""))
         assert f"{d['macs_per_megapixel'] / 1e9:.2f}" == gmacs

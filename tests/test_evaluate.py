@@ -11,15 +11,14 @@ import torch
 from PIL import Image
 from sklearn.metrics import accuracy_score, balanced_accuracy_score, f1_score, jaccard_score, recall_score
 
-from fcnkit import build_model
+from fcnkit import Model, build_model
 from fcnkit.cli import main
 from fcnkit.config import config_from_dict, config_to_dict
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
 from fcnkit.data.imageio import write_label_png
 from fcnkit.errors import DataError
 from fcnkit.evaluate import evaluate
-from fcnkit.modelfile import ModelMeta, save_model
-from fcnkit.tiling import predict_scores
+from fcnkit.inference.scan import predict_scores
 
 CLASSES = ClassTable((ClassInfo(0, "sand", (200, 180, 120)), ClassInfo(1, "pool", (40, 90, 200)),
                       ClassInfo(2, "moss", (40, 160, 60))))
@@ -49,20 +48,19 @@ def model_file(tmp_path):
     torch.manual_seed(0)
     net = build_model(cfg)
     path = tmp_path / "model.safetensors"
-    save_model(path, net, ModelMeta("segnet", config_to_dict(cfg), CLASSES, MEAN, STD, "test", {}))
+    Model(net, classes=CLASSES, mean=MEAN, std=STD, config=config_to_dict(cfg)).save(path)
     return path
 
 
 def _predictions(model_path, data_dir):
     """Labels from the tiled path itself, so the check is on the arithmetic of the scores."""
     from fcnkit.data.imageio import read_image, read_mask
-    from fcnkit.modelfile import load_model
 
-    loaded = load_model(model_path)
+    loaded = Model.load(model_path)
     truth, pred = [], []
     for i in range(len(SIZES)):
         image = read_image(data_dir / "images" / f"plot_{i}.png")
-        probs = predict_scores(loaded.model, image, mean=MEAN, std=STD, tile=64)
+        probs = predict_scores(loaded, image, tile=64)
         truth.append(read_mask(data_dir / "masks" / f"plot_{i}.png", CLASSES).ravel())
         pred.append(probs.argmax(0).ravel())
     t, p = np.concatenate(truth), np.concatenate(pred)

@@ -1,4 +1,5 @@
-"""ONNX and TorchScript export: the written files reproduce the PyTorch module at sizes it was not traced at."""
+"""ONNX and TorchScript export: the written files reproduce the model's own forward pass at sizes it was not
+traced at."""
 
 from __future__ import annotations
 
@@ -11,15 +12,18 @@ import pytest
 import torch
 from torch import nn
 
-from fcnkit import build_model
+from fcnkit import Model, build_model
 from fcnkit.config import config_from_dict
 from fcnkit.errors import ModelFileError
-from fcnkit.export import OnnxEngine, check_shapes, export_model
+from fcnkit.export import check_shapes, export_model
+from fcnkit.geometry import PadPlan
+from fcnkit.inference.engines import OnnxEngine
+from fcnkit.nets import PaddedNet
 
 MEAN, STD = [110.0, 95.0, 80.0], [40.0, 35.0, 30.0]
 
 
-def _net(fusion: str = "sum") -> nn.Module:
+def _net(fusion: str = "sum") -> Model:
     cfg = config_from_dict({"model": {"bands": 3, "classes": 4, "widths": [8, 12, 16], "blocks": [1, 1, 1],
                                       "fusion": fusion, "min_size": 16}})
     torch.manual_seed(0)
@@ -28,14 +32,14 @@ def _net(fusion: str = "sum") -> nn.Module:
         if isinstance(m, nn.BatchNorm2d):
             m.running_mean.uniform_(-0.5, 0.5)
             m.running_var.uniform_(0.5, 2.0)
-    return net.eval()
+    return Model(net, classes=None, mean=MEAN, std=STD).eval()
 
 
-def _reference(net: nn.Module, raw: np.ndarray) -> np.ndarray:
-    """PyTorch's own forward on inputs normalised here, independently of the exported graph."""
+def _reference(model: Model, raw: np.ndarray) -> np.ndarray:
+    """PyTorch's own forward of the net on inputs normalised here, independently of the exported graph."""
     x = (torch.from_numpy(raw) - torch.tensor(MEAN).view(1, -1, 1, 1)) / torch.tensor(STD).view(1, -1, 1, 1)
     with torch.no_grad():
-        return net(x).numpy()
+        return model.net(x).numpy()
 
 
 def _raw(shape: tuple[int, ...], seed: int) -> np.ndarray:
@@ -50,7 +54,7 @@ SHAPES = [(1, 3, 37, 50), (2, 3, 61, 29)]
 def test_onnx_matches_pytorch_at_two_sizes(tmp_path, fusion):
     net = _net(fusion)
     out = tmp_path / "net.onnx"
-    check = export_model(net, out, "onnx", mean=MEAN, std=STD)
+    check = export_model(net, out, "onnx")
     assert check.passed and len(check.shapes) == 2
     proto = onnx.load(str(out))
     onnx.checker.check_model(proto)  # onnx's own validator
@@ -68,7 +72,7 @@ def test_onnx_matches_pytorch_at_two_sizes(tmp_path, fusion):
 def test_torchscript_matches_pytorch_at_two_sizes(tmp_path):
     net = _net()
     out = tmp_path / "net.pt"
-    export_model(net, out, "torchscript", mean=MEAN, std=STD)
+    export_model(net, out, "torchscript")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         loaded = torch.jit.load(str(out))
@@ -85,15 +89,22 @@ def test_check_shapes_avoid_multiples_of_the_factor():
             assert h % factor and w % factor
 
 
-def test_plain_module_without_pad_wrapper_exports(tmp_path):
+def test_a_net_with_an_offset_plan_exports_at_any_size(tmp_path):
+    """A body whose coarse grid sits off the origin (as a converted classifier's does): the export keeps the
+    padding plan for every size, down to inputs smaller than one cell."""
     torch.manual_seed(1)
-    net = nn.Sequential(nn.Conv2d(2, 5, 3, padding=1), nn.ReLU(), nn.Conv2d(5, 3, 1)).eval()
-    check = export_model(net, tmp_path / "plain.onnx", "onnx")
+    body = nn.Sequential(nn.Conv2d(2, 5, 5), nn.ReLU(), nn.MaxPool2d(2), nn.Conv2d(5, 3, 3), nn.MaxPool2d(2),
+                         nn.Upsample(scale_factor=4, mode="bilinear"))
+    model = Model(PaddedNet(body, PadPlan(4, 8), 2, 3), classes=None, mean=[0.0, 0.0], std=[1.0, 1.0]).eval()
+    check = export_model(model, tmp_path / "offset.onnx", "onnx")
     assert check.passed
-    raw = _raw((1, 2, 23, 31), 3)
-    got = ort.InferenceSession(str(tmp_path / "plain.onnx")).run(None, {"image": raw})[0]
-    with torch.no_grad():
-        assert np.abs(got - net(torch.from_numpy(raw)).numpy()).max() <= 1e-4
+    session = ort.InferenceSession(str(tmp_path / "offset.onnx"))
+    for shape in ((1, 2, 23, 31), (1, 2, 3, 2), (2, 2, 41, 9)):
+        raw = _raw(shape, 3)
+        got = session.run(None, {"image": raw})[0]
+        with torch.no_grad():
+            ref = model(torch.from_numpy(raw)).numpy()
+        assert got.shape == ref.shape == (shape[0], 3, *shape[2:]) and np.abs(got - ref).max() <= 1e-4
 
 
 def test_onnx_engine_is_a_drop_in_forward():
@@ -130,12 +141,11 @@ def test_cli_exports_a_model_file_with_its_metadata(tmp_path, capsys):
     from fcnkit.cli import main
     from fcnkit.config import config_to_dict
     from fcnkit.data.classes import ClassInfo, ClassTable
-    from fcnkit.modelfile import ModelMeta, save_model
 
     cfg = config_from_dict({"model": {"bands": 3, "classes": 2, "widths": [8, 16], "min_size": 8}})
     classes = ClassTable((ClassInfo(0, "bare", (90, 80, 70)), ClassInfo(1, "crack", (250, 20, 20))))
     path = tmp_path / "model.safetensors"
-    save_model(path, build_model(cfg), ModelMeta("segnet", config_to_dict(cfg), classes, MEAN, STD, "t", {}))
+    Model(build_model(cfg), classes=classes, mean=MEAN, std=STD, config=config_to_dict(cfg)).save(path)
     assert main(["export", str(path), "--out", str(tmp_path / "m.onnx")]) == 0
     assert "checked with onnxruntime" in capsys.readouterr().out
     props = {p.key: p.value for p in onnx.load(str(tmp_path / "m.onnx")).metadata_props}

@@ -238,14 +238,35 @@ def test_params_and_macs_match_the_module(cfg: ModelConfig, h: int, w: int) -> N
             mod.register_forward_hook(hook)
     with torch.no_grad():
         net(torch.rand(2, cfg.bands, h, w))
-    ph, pw = net.factor * math.ceil(h / net.factor), net.factor * math.ceil(w / net.factor)  # SegNet pads
+    ph, pw = net.plan.padded(h), net.plan.padded(w)  # the net pads by its plan
     assert geometry.macs(graph, ph, pw) == counted
     assert geometry.macs_per_megapixel(graph) == round(Fraction(counted * 1_000_000, ph * pw))
 
 
 def test_global_layers_rule_out_exact_tiling() -> None:
-    graph = layer_graph(build_model(ModelConfig(widths=[4, 4], norm="group", groups=2)))
+    graph = layer_graph(build_model(ModelConfig(bands=3, classes=2, widths=[4, 4], norm="group", groups=2)))
     assert not geometry.is_local(graph)
     assert {g.note for g in geometry.global_layers(graph)} == {"GroupNorm"}
     with pytest.raises(ValueError, match="global layers"):
         geometry.receptive_field(graph)
+
+
+@settings(max_examples=300, deadline=None)
+@given(factor=st.integers(1, 64), offset=st.integers(-64, 400), n=st.integers(1, 3000))
+def test_padding_plan_aligns_every_size(factor: int, offset: int, n: int) -> None:
+    """The one padding rule: a padded side is the offset plus a whole number (at least one) of cells, holds the
+    crop and the input, and is the smallest such side (no cell computed in vain)."""
+    plan = geometry.PadPlan(factor, offset)
+    side = plan.padded(n)
+    assert plan.before >= 0 and plan.after(n) >= 0 and plan.crop >= 0
+    assert (side - offset) % factor == 0 and side - offset >= factor
+    # the net's output (side − offset pixels at full resolution, from the offset's half on) covers the crop
+    assert plan.crop + n <= side - offset
+    assert side - factor < max(plan.before + n, offset + factor, plan.crop + n + offset)
+
+
+def test_padding_plan_records_for_traced_sizes() -> None:
+    """The rule is plain arithmetic, so a size a tracer hands over as a tensor gives the same padding."""
+    plan = geometry.PadPlan(8, 12)
+    for n in (1, 5, 17, 40):
+        assert int(plan.after(torch.tensor(n), lambda v: v.clamp(min=0))) == plan.after(n)

@@ -15,6 +15,7 @@ from fcnkit.config import config_from_dict
 from fcnkit.data.imageio import read_image
 from fcnkit.data.raster import TiffRaster
 from fcnkit.errors import ConfigError, DataError, FcnkitError
+from fcnkit.inference.segment import find_images, segment_image
 from fcnkit.memory import (
     available_memory,
     check_forward_memory,
@@ -25,7 +26,6 @@ from fcnkit.memory import (
     training_bytes,
 )
 from fcnkit.nets import build_model, layer_graph
-from fcnkit.tiling import find_images, segment_image
 
 
 def _tiff(path, array, **kw):
@@ -82,7 +82,10 @@ def test_segment_refuses_a_folder_without_images_and_a_negative_pixel_size(tmp_p
     (tmp_path / "empty").mkdir()
     with pytest.raises(DataError, match="empty: no image files"):  # used to do nothing and exit 0
         find_images([tmp_path / "empty"])
-    net = build_model(config_from_dict({"model": {"widths": [4], "blocks": [1], "classes": 2, "min_size": 1}}))
+    from model_strategies import as_model
+
+    net = as_model(build_model(config_from_dict({"model": {"widths": [4], "blocks": [1], "bands": 3, "classes": 2,
+                                                           "min_size": 1}})))
     image = _tiff(tmp_path / "i.tif", np.zeros((16, 16, 3), np.uint8))
     with pytest.raises(ConfigError, match="pixel_size: -0.5 is not a positive"):  # used to write negative areas
         segment_image(net, image, tmp_path / "out", pixel_size=-0.5, progress=False)
@@ -97,9 +100,9 @@ def test_atomic_output_names_the_final_file_when_its_folder_is_missing(tmp_path)
 # --- the memory check --------------------------------------------------------------------------------------------
 
 NETS = {
-    "chain": {"widths": [8, 16, 32], "blocks": [1, 1, 1], "min_size": 4},
-    "sum": {"widths": [8, 16, 32], "fusion": "sum", "min_size": 4},
-    "unet": {"widths": [8, 16, 32], "fusion": "concat", "min_size": 4},
+    "chain": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "blocks": [1, 1, 1], "min_size": 4},
+    "sum": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "fusion": "sum", "min_size": 4},
+    "unet": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "fusion": "concat", "min_size": 4},
 }
 
 
@@ -107,7 +110,7 @@ NETS = {
 def test_forward_estimate_lies_between_the_largest_activation_and_all_of_them(name):
     """Bracket the estimate with sizes measured on the real module by forward hooks: the peak is at least
     the largest single activation (plus its input) and at most every activation kept at once."""
-    net = build_model(config_from_dict({"model": {"classes": 3, **NETS[name]}})).eval()
+    net = build_model(config_from_dict({"model": {**NETS[name], "classes": 3}})).eval()
     graph = layer_graph(net)
     sizes = []
     for m in net.modules():
@@ -142,7 +145,7 @@ def test_training_estimate_covers_the_tensors_autograd_keeps(name):
     """Reference: the distinct tensors the real module's layers output in a training-mode forward pass (forward
     hooks, deduplicated by storage, as in-place ReLU reuses its input's): all of them stay alive for the
     backward pass, so the estimate's activation part must cover them, within the factor its rule allows."""
-    net = build_model(config_from_dict({"model": {"classes": 3, **NETS[name]}})).train()
+    net = build_model(config_from_dict({"model": {**NETS[name], "classes": 3}})).train()
     graph = layer_graph(net)
     seen: dict[int, int] = {}
 
@@ -188,9 +191,11 @@ def test_available_memory_reads_meminfo_and_honours_the_cap(monkeypatch):
 
 
 def test_tiled_inference_refuses_before_reading_any_tile(monkeypatch):
-    from fcnkit.tiling import predict_scores
+    from model_strategies import as_model
 
-    net = build_model(config_from_dict({"model": NETS["chain"]}))
+    from fcnkit.inference.scan import predict_scores
+
+    net = as_model(build_model(config_from_dict({"model": NETS["chain"]})))
     monkeypatch.setenv("FCNKIT_MAX_MEMORY", "1M")
     with pytest.raises(ConfigError, match="more than the 1 MiB available"):
         predict_scores(net, np.zeros((300, 300, 3), np.float32), tile=256, batch=4)
@@ -223,7 +228,7 @@ def test_a_resume_point_without_its_config_entries_is_refused_in_one_line(tmp_pa
 
     runstate.save_resume(tmp_path / "resume.pt", {"model": {}})  # right format tag, nothing else
     with pytest.raises(FcnkitError, match="resume.pt: resume point belongs to a different config"):
-        runstate.load_resume(tmp_path / "resume.pt", {"model": {}, "train": {}})  # was KeyError
+        runstate.load_resume(tmp_path / "resume.pt", {"model": {}, "train": {}}, "")  # was KeyError
 
 
 def test_convert_checks_the_save_path_before_converting(tmp_path, monkeypatch):
@@ -264,7 +269,7 @@ def test_cli_commands_work_after_their_submodules_were_imported(tmp_path):
     import fcnkit.evaluate  # noqa: F401
     import fcnkit.train  # noqa: F401
 
-    code, out, err = run_cli(["describe", ROOT / "configs" / "tiny.toml"])
+    code, out, err = run_cli(["describe", ROOT / "fcnkit" / "configs" / "tiny.toml"])
     assert code == 0 and "receptive field" in out, err
     code, _, err = run_cli(["evaluate", tmp_path / "none.safetensors", "--data", tmp_path, "--quiet"])
     assert code == 2 and "no such model file" in err, err  # was TypeError: 'module' object is not callable

@@ -22,7 +22,7 @@ from fcnkit.data.classes import ClassTable, load_classes
 from fcnkit.data.imageio import image_shape, read_image, read_mask
 from fcnkit.data.raster import open_raster
 from fcnkit.errors import FcnkitError
-from fcnkit.modelfile import load_model
+from fcnkit.model import Model
 
 FUZZ = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 LIMIT = 1 << 20  # pixel limit for fuzzed images: a flipped header byte must not make the test allocate gigabytes
@@ -153,7 +153,7 @@ def test_model_loader_on_damaged_model_files(tmp_path, model_bytes, data):
     else:
         blob = data.draw(st.one_of(st.binary(max_size=256), mutated(model_bytes)))
     path.write_bytes(blob)
-    _only_fcnkit_errors(load_model, path)
+    _only_fcnkit_errors(Model.load, path)
 
 
 @FUZZ
@@ -170,4 +170,4 @@ def test_model_loader_on_any_metadata_value(tmp_path, model_bytes, key, value):
         tensors = {k: f.get_tensor(k) for k in f.keys()}  # noqa: SIM118
     meta["fcnkit." + key] = json.dumps(value) if key != "kind" else str(value)
     save_file(tensors, str(tmp_path / "m.safetensors"), metadata=meta)
-    _only_fcnkit_errors(load_model, tmp_path / "m.safetensors")
+    _only_fcnkit_errors(Model.load, tmp_path / "m.safetensors")

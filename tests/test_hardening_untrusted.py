@@ -18,7 +18,7 @@ from bad_inputs import CLASSES_TOML, ROOT, Payload, pickle_payload, run_cli, tor
 from fcnkit import runstate
 from fcnkit.convert.sources import from_torchscript, load_state_dict
 from fcnkit.errors import FcnkitError
-from fcnkit.modelfile import load_model
+from fcnkit.model import Model
 
 PACKAGE = ROOT / "fcnkit"
 MAKERS = {"raw pickle": pickle_payload, "torch.save zip": torch_zip_payload}
@@ -39,8 +39,8 @@ def test_control_the_payload_runs_when_unpickled(tmp_path):
 def test_every_loader_refuses_a_payload_without_running_it(tmp_path, kind, name):
     marker = tmp_path / "MARKER"
     path = MAKERS[kind](tmp_path / name, marker)
-    loaders = [load_model, load_state_dict, from_torchscript,
-               lambda p: runstate.load_resume(p, {"model": {}, "train": {}})]
+    loaders = [Model.load, load_state_dict, from_torchscript,
+               lambda p: runstate.load_resume(p, {"model": {}, "train": {}}, "")]
     for load in loaders:
         with pytest.raises(FcnkitError, match=name):
             load(path)

@@ -4,16 +4,15 @@ import json
 import pickle
 from pathlib import Path
 
-import numpy as np
 import pytest
 import torch
 from safetensors import safe_open
 from safetensors.torch import save_file
 
-from fcnkit import ModelFileError, load_config, load_model, save_model
+from fcnkit import Model, ModelFileError, load_config
 from fcnkit.config import config_to_dict, replace_section
 from fcnkit.data.classes import ClassInfo, ClassTable
-from fcnkit.modelfile import ModelMeta, normalise
+from fcnkit.modelfile import write_model_file
 from fcnkit.nets import build_model
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -21,55 +20,72 @@ CLASSES = ClassTable((ClassInfo(0, "ground", (10, 20, 30)), ClassInfo(1, "water"
                       ClassInfo(2, "roof", (200, 0, 0))))
 
 
-def _model_and_meta():
-    cfg = load_config(ROOT / "configs" / "tiny.toml")
+MEAN, STD = [100.0, 110.5, 90.0], [30.0, 31.0, 29.5]
+
+
+def _model():
+    cfg = load_config(ROOT / "fcnkit" / "configs" / "tiny.toml")
     torch.manual_seed(1)
-    model = build_model(cfg)
+    net = build_model(cfg)
     with torch.no_grad():  # non-default batch-norm statistics, so buffers are checked too
-        for m in model.modules():
+        for m in net.modules():
             if isinstance(m, torch.nn.BatchNorm2d):
                 m.running_mean.uniform_(-1, 1)
                 m.running_var.uniform_(0.5, 2)
-    meta = ModelMeta("segnet", config_to_dict(cfg), CLASSES, [100.0, 110.5, 90.0], [30.0, 31.0, 29.5], "0.1.0",
-                     {"epoch": 3})
-    return cfg, model, meta
+    model = Model(net, classes=CLASSES, mean=MEAN, std=STD, config=config_to_dict(cfg), extra={"epoch": 3},
+                  temperature=1.5)
+    return cfg, model.eval()
 
 
 def test_round_trip_weights_metadata_and_outputs(tmp_path):
-    cfg, model, meta = _model_and_meta()
+    cfg, model = _model()
     path = tmp_path / "m.safetensors"
-    save_model(path, model, meta)
+    model.save(path)
     assert [p.name for p in tmp_path.iterdir()] == ["m.safetensors"]  # no temporary file left behind
-    loaded = load_model(path)
-    assert not loaded.model.training
-    assert loaded.meta == meta
-    want = model.state_dict()
-    got = loaded.model.state_dict()
+    loaded = Model.load(path)
+    assert not loaded.training
+    assert loaded.metadata() == model.metadata() and loaded.classes == CLASSES and loaded.temperature == 1.5
+    want = model.net.state_dict()
+    got = loaded.net.state_dict()
     assert want.keys() == got.keys() and all(torch.equal(want[k], got[k]) for k in want)
-    x = torch.randn(1, 3, 37, 29)
-    model.eval()
+    x = 100 + 30 * torch.randn(1, 3, 37, 29)
     with torch.no_grad():
-        assert torch.equal(model(x), loaded.model(x))
+        assert torch.equal(model(x), loaded(x))
     # read with the safetensors library directly: metadata are JSON strings (safetensors format docs)
     with safe_open(str(path), framework="pt") as f:
         raw = f.metadata()
         assert set(f.keys()) == set(want)
     assert json.loads(raw["fcnkit.config"]) == config_to_dict(cfg)
     assert json.loads(raw["fcnkit.classes"])["classes"][1]["name"] == "water"
-    assert raw["fcnkit.kind"] == "segnet" and json.loads(raw["fcnkit.std"]) == [30.0, 31.0, 29.5]
+    assert raw["fcnkit.kind"] == "encoder-decoder" and json.loads(raw["fcnkit.std"]) == STD
+    assert json.loads(raw["fcnkit.padding"]) == {"factor": 2, "offset": 0}
 
 
-def test_normalise_per_band():
-    _, _, meta = _model_and_meta()
-    image = np.arange(2 * 3 * 3, dtype=np.uint16).reshape(2, 3, 3) * 40
-    out = normalise(image, meta)
-    assert out.dtype == np.float32
-    np.testing.assert_allclose(out[..., 1], (image[..., 1] - 110.5) / 31.0, rtol=1e-6)
+def test_model_normalises_raw_pixels_per_band():
+    """The model's forward pass equals the net run on (pixel − mean) / std per band."""
+    _, model = _model()
+    x = torch.arange(2 * 3 * 4 * 4, dtype=torch.float32).reshape(2, 3, 4, 4) * 40
+    by_hand = (x - torch.tensor(MEAN).view(1, 3, 1, 1)) / torch.tensor(STD).view(1, 3, 1, 1)
+    with torch.no_grad():
+        torch.testing.assert_close(model(x), model.net(by_hand))
+
+
+def test_files_of_the_older_kind_name_still_load(tmp_path):
+    """Files written before the padding plan was stored, under the old kind name, load unchanged."""
+    _, model = _model()
+    values = {k: v for k, v in model.metadata().items() if k not in ("padding", "temperature")}
+    path = tmp_path / "old.safetensors"
+    write_model_file(path, model.net.state_dict(), {**values, "kind": "segnet"})
+    loaded = Model.load(path)
+    assert loaded.kind == "encoder-decoder" and loaded.plan == model.plan and loaded.temperature == 1.0
+    x = 100 + 30 * torch.randn(1, 3, 21, 19)
+    with torch.no_grad():
+        assert torch.equal(model(x), loaded(x))
 
 
 def _expect(path, match):
     with pytest.raises(ModelFileError, match=match) as e:
-        load_model(path)
+        Model.load(path)
     assert str(path) in str(e.value) and "\n" not in str(e.value)
 
 
@@ -93,10 +109,14 @@ def test_pickle_is_never_unpickled(tmp_path):
     assert not marker.exists()
 
 
+def _strings(model):
+    return {f"fcnkit.{k}": v if k in ("kind", "version") else json.dumps(v) for k, v in model.metadata().items()}
+
+
 def test_missing_or_bad_metadata(tmp_path):
-    _, model, meta = _model_and_meta()
-    tensors = {k: v.contiguous() for k, v in model.state_dict().items()}
-    strings = meta.to_strings()
+    _, model = _model()
+    tensors = {k: v.contiguous() for k, v in model.net.state_dict().items()}
+    strings = _strings(model)
     cases = {
         "nometa": ({}, "metadata key 'fcnkit.kind' is missing"),
         "nojson": ({**strings, "fcnkit.config": "{not json"}, "'fcnkit.config' is not valid JSON"),
@@ -105,6 +125,9 @@ def test_missing_or_bad_metadata(tmp_path):
         "kind": ({**strings, "fcnkit.kind": "mystery"}, "unknown model kind 'mystery'"),
         "classes": ({**strings, "fcnkit.classes": json.dumps({"classes": []})}, "fcnkit.classes"),
         "bands": ({**strings, "fcnkit.mean": "[1.0]", "fcnkit.std": "[1.0]"}, "1 bands"),
+        "padding": ({**strings, "fcnkit.padding": json.dumps({"factor": 4, "offset": 0})}, "padding"),
+        "temperature": ({**strings, "fcnkit.temperature": "-1"}, "fcnkit.temperature"),
+        "nested": ({**strings, "fcnkit.extra": "[" * 100000 + "]" * 100000}, "not valid JSON"),
     }
     for name, (metadata, match) in cases.items():
         path = tmp_path / f"{name}.safetensors"
@@ -113,21 +136,34 @@ def test_missing_or_bad_metadata(tmp_path):
 
 
 def test_weights_not_matching_config(tmp_path):
-    cfg, model, meta = _model_and_meta()
+    cfg, model = _model()
     wider = replace_section(cfg, "model", widths=[8, 24])
     path = tmp_path / "m.safetensors"
-    save_model(path, model, ModelMeta("segnet", config_to_dict(wider), CLASSES, meta.mean, meta.std, "0.1.0"))
-    _expect(path, "weights do not match the config in its metadata: wrong shape")
-    sd = {k: v.contiguous() for k, v in model.state_dict().items()}
+    write_model_file(path, model.net.state_dict(), {**model.metadata(), "config": config_to_dict(wider)})
+    _expect(path, "weights do not match the net its metadata describes: wrong shape")
+    sd = {k: v.contiguous() for k, v in model.net.state_dict().items()}
     sd.pop(next(iter(sd)))
-    save_file(sd, str(path), metadata=meta.to_strings())
+    save_file(sd, str(path), metadata=_strings(model))
     _expect(path, "missing")
 
 
+def test_weights_must_be_finite_floats(tmp_path):
+    """A NaN or infinite weight, or weights stored as integers, are refused when the file is read."""
+    _, model = _model()
+    for name, edit in (("nan", lambda t: t.fill_(float("nan"))), ("inf", lambda t: t.fill_(float("inf"))),
+                       ("int8", lambda t: t.to(torch.int8))):
+        sd = {k: v.clone() for k, v in model.net.state_dict().items()}
+        key = "body.decoder.head.0.weight" if "body.decoder.head.0.weight" in sd else next(iter(sd))
+        sd[key] = edit(sd[key])
+        path = tmp_path / f"{name}.safetensors"
+        save_file({k: v.contiguous() for k, v in sd.items()}, str(path), metadata=_strings(model))
+        _expect(path, "int8" if name == "int8" else "NaN or infinite")
+
+
 def test_failed_write_leaves_nothing(tmp_path, monkeypatch):
-    _, model, meta = _model_and_meta()
+    _, model = _model()
     path = tmp_path / "m.safetensors"
-    save_model(path, model, meta)
+    model.save(path)
     before = path.read_bytes()
 
     def half_written(tensors, filename, metadata=None):
@@ -136,5 +172,5 @@ def test_failed_write_leaves_nothing(tmp_path, monkeypatch):
 
     monkeypatch.setattr("fcnkit.modelfile.save_file", half_written)
     with pytest.raises(OSError, match="disk full"):
-        save_model(path, model, meta)
+        model.save(path)
     assert path.read_bytes() == before and [p.name for p in tmp_path.iterdir()] == ["m.safetensors"]

@@ -13,7 +13,7 @@ from torch import nn
 from torch.nn import functional as F
 
 from fcnkit.config import ModelConfig
-from fcnkit.nets import SegNet, build_model
+from fcnkit.nets import PaddedNet, build_model
 from fcnkit.nets.blocks import BilinearUp, ConvBlock, ScoreHead
 
 pytestmark = pytest.mark.usefixtures("torch_one_thread")
@@ -77,23 +77,23 @@ COMBOS = [(f, u, d) for f in ("none", "sum", "concat") for u in ("transposed", "
 @pytest.mark.parametrize(("fusion", "upsample", "down"), COMBOS)
 @settings(max_examples=8, deadline=None)
 @given(data=st.data(), h=st.integers(1, 40), w=st.integers(1, 40), n=st.integers(1, 2))
-def test_segnet_output_is_input_sized(fusion: str, upsample: str, down: str, data: st.DataObject,
+def test_net_output_is_input_sized(fusion: str, upsample: str, down: str, data: st.DataObject,
                                       h: int, w: int, n: int) -> None:
     cfg = data.draw(model_configs(fusion=fusion, upsample=upsample, down=down), label="cfg")
     net = build_model(cfg).eval()
-    assert isinstance(net, SegNet) and net.factor == cfg.stage_output_strides()[-1]
+    assert isinstance(net, PaddedNet) and net.factor == cfg.stage_output_strides()[-1]
     x = torch.rand(n, cfg.bands, h, w)
     with torch.no_grad():
         y = net(x)
     assert y.shape == (n, cfg.classes, h, w) and torch.isfinite(y).all()
-    # sides already multiples of the factor are not padded: SegNet is then exactly its body
+    # sides already multiples of the factor are not padded: the net is then exactly its body
     hh, ww = net.factor * -(-h // net.factor), net.factor * -(-w // net.factor)
     xp = torch.rand(n, cfg.bands, hh, ww)
     with torch.no_grad():
         torch.testing.assert_close(net(xp), net.body(xp))
 
 
-def test_segnet_trains_on_tiny_inputs() -> None:
+def test_net_trains_on_tiny_inputs() -> None:
     cfg = ModelConfig(bands=2, classes=3, widths=[4, 4, 4], fusion="sum")
     net = build_model(cfg).train()
     y = net(torch.rand(2, 2, 5, 3))

@@ -6,7 +6,7 @@ import pytest
 import torch
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
-from model_strategies import model_configs, randomise_statistics, whole_image
+from model_strategies import as_model, model_configs, randomise_statistics, whole_image
 from torch import nn
 from torch.nn import functional as F
 
@@ -14,14 +14,12 @@ from fcnkit import build_model
 from fcnkit.config import config_from_dict
 from fcnkit.data.raster import ArrayRaster
 from fcnkit.errors import ConfigError
-from fcnkit.rowstream import NotStreamable, RowStreamer, block_max
-from fcnkit.tiling import choose_scan, net_geometry, predict_scores
+from fcnkit.inference.rowstream import NotStreamable, RowStreamer, block_max
+from fcnkit.inference.scan import ScanChoice, choose_scan, predict_scores
 
 
-def _stream(net: nn.Module, img: np.ndarray, rows: int | None = None) -> list[tuple[int, np.ndarray]]:
-    bands = img.shape[2]
-    return [(y0, b.numpy()) for y0, b in RowStreamer(net).stream(ArrayRaster(img), mean=[0.0] * bands,
-                                                                 std=[1.0] * bands, logits=True, rows=rows)]
+def _stream(model: nn.Module, img: np.ndarray, rows: int | None = None) -> list[tuple[int, np.ndarray]]:
+    return [(y0, b.numpy()) for y0, b in RowStreamer(model).stream(ArrayRaster(img), logits=True, rows=rows)]
 
 
 @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
@@ -34,10 +32,10 @@ def test_row_streaming_equals_whole_image_inference(m, seed, h, w, rows):
     # sizes and band heights that are not multiples of the factor.
     assume(h * w >= 1)
     torch.manual_seed(seed)
-    net = randomise_statistics(build_model(m), seed, deconv=True)
+    net = as_model(randomise_statistics(build_model(m), seed, deconv=True))
     img = np.random.default_rng(seed).normal(size=(h, w, m.bands)).astype(np.float32)
     ref = whole_image(net, img)
-    bands = _stream(net, img, rows * net.factor)
+    bands = _stream(net, img, rows * net.plan.factor)
     assert [y0 for y0, _ in bands] == list(np.cumsum([0] + [b.shape[1] for _, b in bands])[:-1])
     out = np.concatenate([b for _, b in bands], axis=1)
     assert out.shape == ref.shape
@@ -53,10 +51,10 @@ def test_shipped_configs_stream_exactly():
     from fcnkit.config import load_config
 
     for name in ("demo", "fcn8s", "fcn32s", "unet", "tiny"):
-        cfg = load_config(Path(__file__).parents[1] / "configs" / f"{name}.toml")
-        net = randomise_statistics(build_model(cfg), 1, deconv=True)
+        cfg = load_config(Path(__file__).parents[1] / "fcnkit" / "configs" / f"{name}.toml")
+        net = as_model(randomise_statistics(build_model(cfg), 1, deconv=True))
         img = np.random.default_rng(0).normal(size=(157, 83, net.bands)).astype(np.float32)
-        bands = _stream(net, img, rows=net.factor)
+        bands = _stream(net, img, rows=net.plan.factor)
         assert len(bands) > 1
         np.testing.assert_allclose(np.concatenate([b for _, b in bands], axis=1), whole_image(net, img), atol=1e-4)
 
@@ -75,48 +73,55 @@ def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
     # A tall image streams: the first scores arrive after reading a few bands (the receptive field's depth),
     # not the whole image, and the rows carried over between bands do not grow with the height.
     cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4, 4], "min_size": 8}})
-    net = build_model(cfg).eval()
+    net = as_model(build_model(cfg))
     raster = _CountingRaster(np.random.default_rng(0).random((4000, 40, 1)).astype(np.float32))
     streamer = RowStreamer(net)
-    stream = streamer.stream(raster, mean=[0.0], std=[1.0], rows=16)
+    stream = streamer.stream(raster, rows=16)
     y0, first = next(stream)
-    field = net_geometry(net).margin
+    field = net.geometry.margin
     assert y0 == 0 and first.shape[1] > 0
     assert raster.deepest <= 2 * 16 + 2 * field  # the first band, the one being prefetched and the field
     assert sum(b.shape[1] for _, b in stream) + first.shape[1] == 4000
 
 
-def test_auto_scan_streams_config_nets_and_tiles_the_rest():
-    net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
-    assert choose_scan(net) == "rows"
-    assert choose_scan(net, tta=True) == "tiles"  # flips need tiles
-    assert choose_scan(net, tiles_asked=True) == "tiles"  # tile settings given: the user wants tiles
-    assert choose_scan(net, engine="onnxruntime") == "tiles"
-    assert choose_scan(net, "tiles") == "tiles"
-    other = nn.Sequential(nn.Conv2d(1, 2, 3, padding=1))  # not a config-built net
-    assert choose_scan(other) == "tiles"
-    with pytest.raises(NotStreamable, match="Sequential cannot be streamed"):
-        choose_scan(other, "rows")
-    with pytest.raises(ConfigError, match=r"scan: rows cannot be combined with tta"):
-        choose_scan(net, "rows", tta=True)
-    with pytest.raises(ConfigError, match=r"scan: 'columns' is not one of: auto, rows, tiles"):
-        choose_scan(net, "columns")
+def test_auto_scan_streams_when_it_can_and_says_when_it_does_not():
+    net = as_model(build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4],
+                                                           "min_size": 8}})))
+    assert choose_scan(net, 50, 60) == ScanChoice("rows", True, None)
+    for option, said in (({"tta": True}, "flip TTA"), ({"tiles_asked": True}, "tile settings"),
+                         ({"engine": "onnxruntime"}, "another engine")):
+        choice = choose_scan(net, 50, 60, **option)
+        assert (choice.scan, choice.exact) == ("tiles", False) and said in choice.note and "not exact" in choice.note
+    assert choose_scan(net, 50, 60, exact_tiles=True) == ScanChoice("tiles", True, None)  # nothing lost
+    assert choose_scan(net, 50, 60, "tiles") == ScanChoice("tiles", False, None)
+    with pytest.raises(ConfigError, match=r"scan: rows cannot be combined with flip TTA"):
+        choose_scan(net, 50, 60, "rows", tta=True)
+    with pytest.raises(ConfigError, match=r"scan: 'columns' is not one of: auto, rows, whole, tiles"):
+        choose_scan(net, 50, 60, "columns")
 
 
-def test_group_norm_nets_are_not_streamed_but_still_mapped():
+def test_group_norm_nets_are_mapped_whole_and_exactly():
+    """A net with a global layer cannot be streamed: auto maps a small image in one pass (exact) and says so."""
     cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "norm": "group", "min_size": 8}})
-    net = build_model(cfg).eval()
+    net = as_model(build_model(cfg))
     with pytest.raises(NotStreamable, match="GroupNorm cannot be streamed"):
         RowStreamer(net)
-    probs = predict_scores(net, np.zeros((40, 40, 1), np.float32))  # auto: tiles, blended
-    np.testing.assert_allclose(probs.sum(0), 1.0, atol=1e-5)
+    choice = choose_scan(net, 40, 40)
+    assert (choice.scan, choice.exact) == ("whole", True) and "GroupNorm" in choice.note
+    img = np.random.default_rng(1).random((40, 40, 1)).astype(np.float32)
+    notes: list[str] = []
+    np.testing.assert_allclose(predict_scores(net, img, logits=True, echo=notes.append), whole_image(net, img),
+                               atol=1e-5)
+    assert notes == [choice.note]
+    with pytest.raises(NotStreamable):
+        choose_scan(net, 40, 40, "rows")
 
 
 def test_predict_scores_rows_equal_exact_tiles():
     # Two independent exact paths must agree: row streaming and exact tiling (both against the whole image).
     cfg = config_from_dict({"model": {"bands": 2, "classes": 3, "widths": [4, 8, 8], "fusion": "sum",
                                       "skips": [2], "min_size": 8}})
-    net = randomise_statistics(build_model(cfg), 5, deconv=True)
+    net = as_model(randomise_statistics(build_model(cfg), 5, deconv=True))
     img = np.random.default_rng(2).random((301, 257, 2)).astype(np.float32)
     rows = predict_scores(net, img, scan="rows")
     tiles = predict_scores(net, img, scan="tiles", tile=96, exact=True)
@@ -138,7 +143,7 @@ def test_block_max_equals_torch_max_pooling(k, c, h, w, seed, channels_last):
 
 def test_fused_convolution_relu_equals_conv_then_relu():
     # Reference: F.conv2d followed by F.relu (torch), on the fused oneDNN kernel row streaming uses.
-    from fcnkit.rowstream import FUSED_RELU, _conv_relu
+    from fcnkit.inference.rowstream import FUSED_RELU, _conv_relu
 
     if not FUSED_RELU:
         pytest.skip("this torch build has no fused oneDNN convolution")
@@ -153,7 +158,7 @@ def test_prepared_nets_are_rebuilt_when_the_weights_change():
     # Regression guard for the per-model cache: a BN-folded copy must never outlive a change of the weights
     # (in-place updates as by an optimiser, or new parameter tensors).
     net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
-    net = randomise_statistics(net, 0, deconv=True)
+    net = as_model(randomise_statistics(net, 0, deconv=True))
     img = np.random.default_rng(0).random((32, 40, 1)).astype(np.float32)
     before = predict_scores(net, img, logits=True)
     np.testing.assert_array_equal(predict_scores(net, img, logits=True), before)
@@ -162,5 +167,6 @@ def test_prepared_nets_are_rebuilt_when_the_weights_change():
     after = predict_scores(net, img, logits=True)
     np.testing.assert_allclose(after, whole_image(net, img), atol=1e-4)
     assert not np.allclose(after, before)
-    net.body.decoder.head[-1].weight = nn.Parameter(torch.zeros_like(net.body.decoder.head[-1].weight))
+    head = net.net.body.decoder.head
+    head[-1].weight = nn.Parameter(torch.zeros_like(head[-1].weight))
     np.testing.assert_allclose(predict_scores(net, img, logits=True), whole_image(net, img), atol=1e-4)

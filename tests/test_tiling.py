@@ -7,13 +7,16 @@ import pytest
 import torch
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
-from model_strategies import randomise_statistics, whole_image
+from model_strategies import as_model, randomise_statistics, whole_image
 from torch import nn
 
 from fcnkit import build_model
 from fcnkit.config import config_from_dict
 from fcnkit.errors import ConfigError
-from fcnkit.tiling import net_geometry, plan_axis, plan_tiles, predict_scores
+from fcnkit.geometry import PadPlan
+from fcnkit.inference.scan import predict_scores
+from fcnkit.inference.tiles import plan_axis, plan_tiles
+from fcnkit.nets import PaddedNet
 
 
 @settings(max_examples=80, deadline=None)
@@ -63,8 +66,8 @@ def test_exact_mode_equals_whole_image_inference(cfg, seed, extra, hw):
     # Reference: the same net run on the whole image at once (torch). Exact tiling must give the same logits
     # up to float rounding (<= 1e-4) and the same labels, for odd sizes and any local net.
     torch.manual_seed(seed)
-    net = randomise_statistics(build_model(cfg), seed)
-    geom = net_geometry(net)
+    net = as_model(randomise_statistics(build_model(cfg), seed))
+    geom = net.geometry
     tile = (math.ceil(2 * geom.margin / geom.factor) + extra) * geom.factor
     h, w = (max(1, int(tile * r)) | 1 for r in hw)  # odd sizes
     img = np.random.default_rng(seed).normal(size=(h, w, cfg.model.bands)).astype(np.float32)
@@ -78,8 +81,8 @@ def test_exact_mode_equals_whole_image_inference(cfg, seed, extra, hw):
 def test_exact_mode_uses_several_tiles_on_the_demo_net():
     cfg = config_from_dict({"model": {"bands": 4, "classes": 5, "widths": [8, 16, 16, 24], "blocks": [1, 2, 2, 2],
                                       "head": [24], "fusion": "sum", "skips": [4, 2], "min_size": 64}})
-    net = randomise_statistics(build_model(cfg), 3)
-    geom = net_geometry(net)
+    net = as_model(randomise_statistics(build_model(cfg), 3))
+    geom = net.geometry
     tile = 2 * geom.margin + 3 * geom.factor
     plan = plan_tiles(geom, 301, 333, tile=tile, exact=True)
     assert len(plan.rows) >= 3 and len(plan.cols) >= 3
@@ -89,10 +92,11 @@ def test_exact_mode_uses_several_tiles_on_the_demo_net():
 
 
 def test_any_local_module_works_and_probabilities_sum_to_one():
-    net = nn.Sequential(nn.Conv2d(2, 6, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2), nn.Conv2d(6, 3, 3, padding=1),
-                        nn.Upsample(scale_factor=2, mode="bilinear"))
+    body = nn.Sequential(nn.Conv2d(2, 6, 3, padding=1), nn.ReLU(), nn.MaxPool2d(2), nn.Conv2d(6, 3, 3, padding=1),
+                         nn.Upsample(scale_factor=2, mode="bilinear"))
+    net = as_model(PaddedNet(body, PadPlan(2), 2, 3))
     img = np.random.default_rng(0).random((64, 96, 2)).astype(np.float32)
-    geom = net_geometry(net)
+    geom = net.geometry
     assert geom.factor == 2 and geom.margin is not None
     out = predict_scores(net, img, tile=32, exact=True, logits=True)
     np.testing.assert_allclose(out, whole_image(net, img), atol=1e-4, rtol=0)
@@ -110,11 +114,11 @@ def _seam_error(out: np.ndarray, ref: np.ndarray, borders: list[int]) -> float:
 def test_blending_beats_non_overlapping_tiles_at_the_seams(window):
     cfg = config_from_dict({"model": {"bands": 3, "classes": 4, "widths": [8, 16, 16], "blocks": [1, 1, 1],
                                       "fusion": "sum", "min_size": 16}})
-    net = randomise_statistics(build_model(cfg), 5)
+    net = as_model(randomise_statistics(build_model(cfg), 5))
     img = np.random.default_rng(2).random((64, 256, 3)).astype(np.float32)
     ref = torch.softmax(torch.from_numpy(whole_image(net, img)), 0).numpy()
     tile = 64
-    geom = net_geometry(net)
+    geom = net.geometry
     borders = [s.start for s in plan_tiles(geom, 64, 256, tile=tile, overlap=0, window="none").cols[1:]]
     assert borders  # several tiles across
     plain = predict_scores(net, img, tile=tile, overlap=0, window="none")
@@ -125,8 +129,8 @@ def test_blending_beats_non_overlapping_tiles_at_the_seams(window):
 
 def test_flip_tta_on_one_tile_matches_averaged_flips():
     # Reference: the four flips of the image run through the net whole, un-flipped and their softmax averaged.
-    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [4, 8],
-                                                                "fusion": "sum", "min_size": 16}})), 1)
+    net = as_model(randomise_statistics(build_model(config_from_dict({"model": {
+        "bands": 3, "classes": 3, "widths": [4, 8], "fusion": "sum", "min_size": 16}})), 1))
     img = np.random.default_rng(3).random((40, 56, 3)).astype(np.float32)
     x = torch.from_numpy(img).permute(2, 0, 1)[None]
     with torch.no_grad():
@@ -141,13 +145,14 @@ def test_mean_std_normalise_the_bands():
     raw = np.random.default_rng(4).integers(0, 4000, size=(30, 30, 2)).astype(np.uint16)
     mean, std = [1000.0, 2000.0], [300.0, 700.0]
     norm = ((raw - np.array(mean)) / np.array(std)).astype(np.float32)
-    out = predict_scores(net, raw, mean=mean, std=std, tile=64, logits=True)
-    np.testing.assert_allclose(out, whole_image(net, norm), atol=1e-4)
+    for scan in ("rows", "tiles"):  # the model normalises raw pixels by its own statistics, whatever the scan
+        out = predict_scores(as_model(net, mean, std), raw, scan=scan, logits=True)
+        np.testing.assert_allclose(out, whole_image(net, norm), atol=1e-4)
 
 
 def test_scores_on_disk_equal_scores_in_memory(tmp_path):
-    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 1, "classes": 3, "widths": [4, 4],
-                                                                "min_size": 16}})), 4)
+    net = as_model(randomise_statistics(build_model(config_from_dict({"model": {
+        "bands": 1, "classes": 3, "widths": [4, 4], "min_size": 16}})), 4))
     img = np.random.default_rng(5).random((70, 90, 1)).astype(np.float32)
     mem = predict_scores(net, img, tile=32, overlap=8)
     disk = predict_scores(net, img, tile=32, overlap=8, workdir=tmp_path)
@@ -158,7 +163,7 @@ def test_scores_on_disk_equal_scores_in_memory(tmp_path):
 def test_global_layers_refuse_exact_mode_but_blend():
     cfg = config_from_dict({"model": {"bands": 3, "classes": 2, "widths": [8, 8], "norm": "group", "groups": 2,
                                       "min_size": 16}})
-    net = build_model(cfg).eval()
+    net = as_model(build_model(cfg))
     img = np.zeros((40, 40, 3), np.float32)
     with pytest.raises(ConfigError, match=r"exact tiling is impossible: layers .*GroupNorm"):
         predict_scores(net, img, tile=32, exact=True)
@@ -175,9 +180,9 @@ def test_global_layers_refuse_exact_mode_but_blend():
     ({"tile": 64, "batch": 0}, r"batch: 0 must be >= 1"),
 ])
 def test_bad_options_name_the_option(kwargs, match):
-    net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4, 4],
-                                                  "min_size": 16}})).eval()
-    geom = net_geometry(net)
+    net = as_model(build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4, 4],
+                                                           "min_size": 16}})))
+    geom = net.geometry
     assert geom.factor == 4  # strides 1, 2, 2 (config default)
     m = geom.margin
     match = match.format(m=m, o=2 * m, t=math.ceil((2 * m + 4) / 4) * 4)
@@ -186,10 +191,10 @@ def test_bad_options_name_the_option(kwargs, match):
 
 
 def test_bf16_engine_keeps_transposed_convolutions_in_float32():
-    from fcnkit.tiling import Float32, TorchEngine
+    from fcnkit.inference.engines import Float32, TorchEngine
 
-    net = randomise_statistics(build_model(config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [8, 8],
-                                                                "fusion": "sum", "min_size": 16}})), 6)
+    net = as_model(randomise_statistics(build_model(config_from_dict({"model": {
+        "bands": 3, "classes": 3, "widths": [8, 8], "fusion": "sum", "min_size": 16}})), 6))
     engine = TorchEngine(net, bf16=True)
     wrapped = [m for m in engine.model.modules() if isinstance(m, Float32)]
     assert wrapped and all(isinstance(m.module, nn.ConvTranspose2d) for m in wrapped)

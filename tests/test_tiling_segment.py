@@ -16,16 +16,16 @@ import torch
 from PIL import Image
 from safetensors.torch import save_file
 
-from fcnkit import __version__, build_model, segment_image, segment_images
+from fcnkit import Model, build_model, segment_image, segment_images
 from fcnkit.cli import main
 from fcnkit.config import config_from_dict, config_to_dict
 from fcnkit.data.classes import ClassInfo, ClassTable
 from fcnkit.data.raster import PIXEL_SCALE, TiffRaster, read_geotags
 from fcnkit.data.scenes import geotiff_tags
 from fcnkit.errors import DataError
-from fcnkit.modelfile import ModelMeta, save_model
+from fcnkit.inference.scan import predict_scores
+from fcnkit.inference.segment import find_images, shard
 from fcnkit.outputs import to_byte
-from fcnkit.tiling import find_images, predict_scores, shard
 
 CLASSES = ClassTable((ClassInfo(0, "open ground", (200, 180, 120)), ClassInfo(1, "water", (40, 100, 200)),
                       ClassInfo(2, "roof", (210, 60, 50))))
@@ -38,8 +38,7 @@ def _model_file(folder: Path, bands: int = 4) -> Path:
     torch.manual_seed(0)
     net = build_model(cfg)
     path = folder / "model.safetensors"
-    save_model(path, net, ModelMeta("segnet", config_to_dict(cfg), CLASSES, MEAN[:bands], STD[:bands], __version__,
-                                    {}))
+    Model(net, classes=CLASSES, mean=MEAN[:bands], std=STD[:bands], config=config_to_dict(cfg)).save(path)
     return path
 
 
@@ -81,9 +80,8 @@ def test_geotiff_outputs_carry_the_input_tags_and_areas(tmp_path):
         assert tif.pages.first.shape == (math.ceil(150 / step - 0.5), math.ceil(170 / step - 0.5), 3)
 
     # the maps are those of the API's probabilities
-    from fcnkit.modelfile import load_model
 
-    probs = predict_scores(load_model(model).model, img, mean=MEAN, std=STD, tile=64)
+    probs = predict_scores(Model.load(model), img, tile=64)
     labels = tifffile.imread(res.paths["labels"])
     np.testing.assert_array_equal(labels, probs.argmax(0))
     np.testing.assert_array_equal(tifffile.imread(res.paths["confidence"]), to_byte(probs.max(0)))
@@ -188,7 +186,7 @@ def test_folder_inputs_shard_over_ranks_and_refuse_clashing_names(tmp_path):
 
 KILL_RUN = """
 import sys
-from fcnkit.tiling import segment_image
+from fcnkit.inference.segment import segment_image
 segment_image(sys.argv[1], sys.argv[2], sys.argv[3], tile=64, batch=1, progress=False)
 """
 

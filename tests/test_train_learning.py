@@ -10,12 +10,13 @@ the dense Otsu labels of the right half, which it never saw.
 import numpy as np
 from PIL import Image
 from skimage import data, filters
+from tiny_train import fit
 
-from fcnkit import load_model, train
+from fcnkit import Model
 from fcnkit.config import config_from_dict
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
-from fcnkit.evaluate import evaluate_images
 from fcnkit.metrics import segmentation_scores
+from fcnkit.train import validate
 
 IGNORE = 255
 
@@ -63,11 +64,10 @@ def test_learns_otsu_labels_of_coins_from_strokes(tmp_path):
         "train": {"epochs": 4, "batch": 8, "patch": 64, "patches_per_epoch": 48, "lr": 1e-2, "warmup": 1,
                   "val_fraction": 0.0, "balanced": True, "threads": 1, "seed": 1},
     })
-    result = train(cfg, ds, tmp_path / "run", progress=False)
-    loaded = load_model(result.model_path)
+    result = fit(cfg, ds, tmp_path / "run", progress=False)
+    loaded = Model.load(result.model_path)
     right = image[:, half:, None]
-    cm, _, _ = evaluate_images(loaded.model, [right], [truth[:, half:]], mean=loaded.meta.mean,
-                               std=loaded.meta.std, num_classes=2)
+    cm, _, _ = validate(loaded, [right], [truth[:, half:]])
     miou = segmentation_scores(cm)["mean_iou"]
     # chance: a constant prediction of the larger class scores about 0.35 mIoU here
     frac = truth[:, half:].mean()

@@ -7,13 +7,12 @@ import sys
 import pytest
 from tiny_train import tiny, write_toml
 
-from fcnkit import load_model
+from fcnkit import Model
 from fcnkit.data.dataset import find_samples
 from fcnkit.data.imageio import read_image, read_mask
 from fcnkit.data.scenes import make_scenes
-from fcnkit.evaluate import evaluate_images
 from fcnkit.metrics import segmentation_scores
-from fcnkit.train import split_samples
+from fcnkit.train import split_indices, validate
 
 
 def test_two_processes_train_and_reduce_metrics(tmp_path):
@@ -31,12 +30,11 @@ def test_two_processes_train_and_reduce_metrics(tmp_path):
     rows = list(csv.DictReader((out / "metrics.csv").open()))
     assert [r["epoch"] for r in rows] == ["1", "2"]
     # each process validated one of the two validation images; the CSV must hold the score of both together
-    loaded = load_model(out / "model.safetensors")
+    loaded = Model.load(out / "model.safetensors")
     samples, classes = find_samples(data)
-    val = split_samples(samples, 0.5, 0)[1]
+    ordered = sorted(samples, key=lambda s: s.stem)
+    val = [ordered[i] for i in split_indices(len(ordered), 0.5, 0)[1]]
     assert len(val) == 2
-    cm, _, _ = evaluate_images(loaded.model, [read_image(s.image) for s in val],
-                               [read_mask(s.mask, classes) for s in val], mean=loaded.meta.mean,
-                               std=loaded.meta.std, num_classes=5)
-    best = rows[loaded.meta.extra["epoch"] - 1]
+    cm, _, _ = validate(loaded, [read_image(s.image) for s in val], [read_mask(s.mask, classes) for s in val])
+    best = rows[loaded.extra["epoch"] - 1]
     assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best["val_miou"]), rel=1e-4)

@@ -22,3 +22,14 @@ def write_toml(path, table: dict) -> None:
     for name, section in table.items():
         lines += [f"[{name}]"] + [f"{k} = {json.dumps(v)}" for k, v in section.items()] + [""]
     path.write_text("\n".join(lines))
+
+
+def fit(cfg, data, run, *, init=None, **options):
+    """Train as ``fcnkit train`` does (the config's net, or the model file ``init`` with the config's [train]
+    settings) and return the run's result."""
+    from fcnkit import Model
+    from fcnkit.config import Config, config_from_dict, config_to_dict
+
+    cfg = cfg if isinstance(cfg, Config) else config_from_dict(cfg)
+    model = Model.build(cfg) if init is None else Model.load(init)
+    return model.fit(data, out_dir=run, **config_to_dict(cfg)["train"], **options).last_run

@@ -28,8 +28,9 @@ from torch.nn import functional as F
 
 from fcnkit import geometry
 from fcnkit.errors import FcnkitError
+from fcnkit.geometry import PadPlan
 from fcnkit.nets.graph import layer_graph
-from fcnkit.nets.segnet import SegNet
+from fcnkit.nets.padded import PaddedNet
 
 TOLERANCE = 1e-4  # float32 agreement required between the converted net and the classifier
 
@@ -374,36 +375,6 @@ class Recipe:
         return cls(**d)
 
 
-class AlignedNet(SegNet):
-    """A net whose body ends at full resolution but whose coarse outputs sit ``offset`` pixels off the
-    stride grid (a window of w pixels at stride s has offset w − s). The input is padded (edge pixels
-    repeated) by half the offset before and to a whole number of cells after, so each coarse score lands
-    on the centre of the window it saw, and the result is cropped to the input's size."""
-
-    def __init__(self, body: nn.Module, factor: int, bands: int, classes: int, offset: int,
-                 recipe: Recipe | None = None) -> None:
-        super().__init__(body, factor, bands, classes)
-        self.offset, self.recipe = offset, recipe  # recipe: how it was made from its classifier
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        h, w = x.shape[-2:]
-        d, s = self.offset, self.factor
-        before = max(0, d // 2)
-        crop = before - d // 2
-
-        def padded(n: int) -> int:
-            need = max(crop + n + d, d + s)
-            return need + (d - need) % s
-
-        ph, pw = padded(h), padded(w)
-        x = F.pad(x, (before, pw - w - before, before, ph - h - before), mode="replicate")
-        y = self.body(x)[..., crop:crop + h, crop:crop + w]
-        short_h, short_w = h - y.shape[-2], w - y.shape[-1]
-        if short_h > 0 or short_w > 0:  # a net whose size arithmetic loses a cell at some sizes
-            y = F.pad(y, (0, max(short_w, 0), 0, max(short_h, 0)), mode="replicate")
-        return y
-
-
 def output_side(graph: list[geometry.Layer], n: int) -> int:
     """Side of the net's output for an n×n input, by convolution arithmetic along the graph."""
     side = {geometry.INPUT: n}
@@ -518,13 +489,13 @@ def keep_rows(conv: nn.Conv2d, keep: tuple[int, ...]) -> nn.Conv2d:
     return new
 
 
-def score_map(p: Plan, dense: DenseClassifier, stride: int, recipe: Recipe) -> AlignedNet:
-    """Full-resolution score maps from the dense net: coarse scores placed at the centres of the windows
-    they saw and up-sampled bilinearly to the input's size; ``recipe.keep`` restricts the classes (the
-    dense net's last score layer is cut down in place)."""
+def score_map(p: Plan, dense: DenseClassifier, stride: int, recipe: Recipe) -> PaddedNet:
+    """Full-resolution score maps from the dense net: coarse scores up-sampled bilinearly, the input padded so
+    each lands on the centre of the window it saw (the padding plan's offset); ``recipe.keep`` restricts the
+    classes (the dense net's last score layer is cut down in place)."""
     convs = [i for i, m in enumerate(dense.head) if isinstance(m, nn.Conv2d)]
     if recipe.keep is not None:
         dense.head[convs[-1]] = keep_rows(dense.head[convs[-1]], recipe.keep)
     body = nn.Sequential(dense, nn.Upsample(scale_factor=stride, mode="bilinear"))
     classes = dense.head[convs[-1]].out_channels
-    return AlignedNet(body, stride, p.bands, classes, offset(p, stride), recipe).eval()
+    return PaddedNet(body, PadPlan(stride, offset(p, stride)), p.bands, classes).eval()

@@ -1,19 +1,17 @@
 """Grow a segmenter out of a classifier (the FCN recipe of Long et al. 2015) and rebuild converted nets
-from model files.
+from what a model file says of them.
 
 The classifier's trunk and converted hidden dense layers are kept; its last dense layer is replaced by a
 1×1 score layer for the new classes (zero-initialised, as in the paper) or by a subset of its own rows;
 class scores are brought to full resolution by learnable transposed convolutions initialised to bilinear
 interpolation, optionally fusing 1×1 scores of shallower trunk stages on the way (FCN-16s, FCN-8s).
 
-A model file names how to rebuild the net in its ``extra`` metadata (a :class:`Recipe` and the classifier's
-source). Only torchvision architecture names and plain ``nn.Sequential`` layer lists are rebuilt; nothing
-named in a file is imported.
+A model file names how to rebuild such a net (a :class:`Recipe` and the classifier's source). Only torchvision
+architecture names and plain ``nn.Sequential`` layer lists are rebuilt; nothing named in a file is imported.
 """
 
 from __future__ import annotations
 
-import colorsys
 import copy
 from pathlib import Path
 from typing import Any
@@ -22,8 +20,6 @@ import torch
 from torch import fx, nn
 
 from fcnkit.convert.dense import (
-    AlignedNet,
-    Certificate,
     ConvertError,
     Plan,
     Recipe,
@@ -39,10 +35,10 @@ from fcnkit.convert.dense import (
     trunk_stride,
 )
 from fcnkit.convert.sources import build_torchvision, sequential_from_spec
-from fcnkit.data.classes import ClassInfo, ClassTable
 from fcnkit.errors import FcnkitError, ModelFileError
-from fcnkit.modelfile import ModelMeta, save_model
+from fcnkit.geometry import PadPlan
 from fcnkit.nets.blocks import BilinearUp
+from fcnkit.nets.padded import PaddedNet
 
 DENSE_KIND = "dense-classifier"  # model-file kind: a converted classifier's score maps
 GROWN_KIND = "grown-segmenter"  # model-file kind: a segmenter grown from a classifier
@@ -105,7 +101,8 @@ def _taps(p: Plan, strides: tuple[int, ...], stride: int, delta: int) -> list[fx
 
 class GrownBody(nn.Module):
     """Trunk → [sliding pool] → converted hidden layers → 1×1 scores → (up-sample, add skip scores)* →
-    up-sample to full resolution."""
+    up-sample to full resolution. The trunk returns its deepest features, then one map per skip (a tuple when
+    there are skips)."""
 
     def __init__(self, trunk: nn.Module, pool: nn.Module, hidden: nn.Sequential, score: nn.Conv2d,
                  skip_scores: list[nn.Conv2d], ups: list[BilinearUp], final_up: BilinearUp) -> None:
@@ -114,16 +111,16 @@ class GrownBody(nn.Module):
         self.skip_scores, self.ups, self.final_up = nn.ModuleList(skip_scores), nn.ModuleList(ups), final_up
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
-        feats = self.trunk(x)
-        if isinstance(feats, torch.Tensor):
-            feats = (feats,)
-        y = self.score(self.hidden(self.pool(feats[0])))
-        for tap, up, score in zip(feats[1:], self.ups, self.skip_scores, strict=True):
+        if not self.ups:  # known when built, so torch.fx can trace either form
+            return self.final_up(self.score(self.hidden(self.pool(self.trunk(x)))))
+        deepest, *taps = self.trunk(x)
+        y = self.score(self.hidden(self.pool(deepest)))
+        for tap, up, score in zip(taps, self.ups, self.skip_scores, strict=True):
             y = up(y) + score(tap)
         return self.final_up(y)
 
 
-def make_net(module: nn.Module, r: Recipe) -> AlignedNet:
+def make_net(module: nn.Module, r: Recipe) -> PaddedNet:
     """The net a recipe describes, made from ``module`` (a converted classifier or a grown segmenter)."""
     module.eval()
     p = plan(module, r.native_size, global_pool=r.global_pool)
@@ -150,7 +147,7 @@ def make_net(module: nn.Module, r: Recipe) -> AlignedNet:
         prev = t
     body = GrownBody(trunk, sliding_pool(p, same=True), nn.Sequential(*hidden), score, skip_scores, ups,
                      BilinearUp(k, prev))
-    return AlignedNet(body, s, r.bands or p.bands, k, delta, r)
+    return PaddedNet(body, PadPlan(s, delta), r.bands or p.bands, k)
 
 
 def classifier_from_source(source: dict[str, Any], where: str) -> nn.Module:
@@ -170,8 +167,9 @@ def classifier_from_source(source: dict[str, Any], where: str) -> nn.Module:
     raise ModelFileError(f"{where}: unknown classifier source {kind!r}")
 
 
-def rebuild(extra: dict[str, Any], where: str | Path = "model file", classifier: nn.Module | None = None) -> AlignedNet:
-    """An untrained net of the architecture a converted model file describes (its ``extra`` metadata)."""
+def rebuild(extra: dict[str, Any], where: str | Path = "model file", classifier: nn.Module | None = None) -> PaddedNet:
+    """An untrained net of the architecture a converted model file describes (``extra`` holds its recipe and
+    the classifier's source)."""
     try:
         recipe = Recipe.from_dict(extra["recipe"])
         module = classifier if classifier is not None else classifier_from_source(extra["source"], str(where))
@@ -182,49 +180,3 @@ def rebuild(extra: dict[str, Any], where: str | Path = "model file", classifier:
             return make_net(module, recipe)
     except ConvertError as e:
         raise ModelFileError(f"{where}: {e}") from None
-
-
-IMAGENET_MEAN = [0.485 * 255, 0.456 * 255, 0.406 * 255]  # torchvision's ImageNet statistics, 8-bit units
-IMAGENET_STD = [0.229 * 255, 0.224 * 255, 0.225 * 255]  # (torchvision model docs; common practice)
-
-
-def class_table(names: list[str]) -> ClassTable:
-    """A class table for ``names`` with distinct display colours (hues a golden angle apart)."""
-    colors = []
-    for i in range(len(names)):
-        r, g, b = colorsys.hsv_to_rgb((i * 0.618034) % 1.0, 0.65, 0.95 - 0.25 * (i % 2))
-        colors.append((round(r * 255), round(g * 255), round(b * 255)))
-    return ClassTable(tuple(ClassInfo(i, n, c) for i, (n, c) in enumerate(zip(names, colors, strict=True))))
-
-
-def save_converted(path: str | Path, net: AlignedNet, source: dict[str, Any], *,
-                   classes: ClassTable | None = None, mean: list[float] | None = None, std: list[float] | None = None,
-                   certificate: Certificate | None = None) -> ModelMeta:
-    """Write a converted classifier or grown segmenter as a model file (kind ``dense-classifier`` or
-    ``grown-segmenter``) that load_model, tiled inference and ``fcnkit train --init`` read. Classes default
-    to "class I" names (I = the classifier's output index); normalisation to torchvision's ImageNet
-    statistics for torchvision sources (extra bands get their mean), else none."""
-    from fcnkit import __version__
-
-    recipe = net.recipe
-    if recipe is None:
-        raise ConvertError("save_converted: the net was not made by convert_classifier or grow_segmenter")
-    if classes is None:
-        idx = recipe.keep if recipe.keep is not None else range(net.classes)
-        classes = class_table([f"class {i}" for i in idx])
-    if classes.num_classes != net.classes:
-        raise ConvertError(f"classes: the table lists {classes.num_classes} classes but the net has {net.classes}")
-    if mean is None or std is None:
-        rgb = source.get("source") == "torchvision" and net.bands >= 3
-        pad = net.bands - 3
-        mean = IMAGENET_MEAN + [sum(IMAGENET_MEAN) / 3] * pad if rgb else [0.0] * net.bands
-        std = IMAGENET_STD + [sum(IMAGENET_STD) / 3] * pad if rgb else [1.0] * net.bands
-    if len(mean) != net.bands or len(std) != net.bands:
-        raise ConvertError(f"mean/std: expected {net.bands} values each (one per band)")
-    extra = {"recipe": recipe.to_dict(), "source": source}
-    if certificate is not None:
-        extra["certificate"] = certificate.to_dict()
-    meta = ModelMeta(GROWN_KIND if recipe.grow else DENSE_KIND, {"model": {"bands": net.bands, "classes": net.classes}},
-                     classes, [float(v) for v in mean], [float(v) for v in std], __version__, extra)
-    save_model(path, net, meta)
-    return meta

@@ -244,3 +244,17 @@ def load_classifier(source: str, weights: str | Path | None = None, *, random_we
     if weights is not None and random_weights:
         raise ModelFileError(f"{source}: give either a weights file or random weights, not both")
     return from_torchvision(source, weights)
+
+
+IMAGENET_MEAN = (0.485 * 255, 0.456 * 255, 0.406 * 255)  # torchvision's ImageNet statistics in 8-bit units
+IMAGENET_STD = (0.229 * 255, 0.224 * 255, 0.225 * 255)  # (torchvision model docs; common practice)
+
+
+def default_normalisation(source: dict, bands: int) -> tuple[list[float], list[float]]:
+    """Per-band mean and std for a converted net when none is given: torchvision's ImageNet statistics for
+    torchvision classifiers (extra bands get their average), else none (0 and 1)."""
+    if source.get("source") == "torchvision" and bands >= 3:
+        extra = bands - 3
+        return ([*IMAGENET_MEAN, *[sum(IMAGENET_MEAN) / 3] * extra],
+                [*IMAGENET_STD, *[sum(IMAGENET_STD) / 3] * extra])
+    return [0.0] * bands, [1.0] * bands

@@ -16,7 +16,9 @@ JSON-able dict (``to_dict`` / ``from_dict``).
 
 from __future__ import annotations
 
+import colorsys
 import tomllib
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -81,6 +83,13 @@ class ClassTable:
         }
 
     @classmethod
+    def generic(cls, names: int | Sequence[str]) -> ClassTable:
+        """A table for ``names`` (or that many classes, named "class 0", "class 1"…) with distinct display
+        colours: the colour-blind-safe set of Okabe & Ito (2008), then hues a golden angle apart."""
+        names = [f"class {i}" for i in range(names)] if isinstance(names, int) else list(names)
+        return cls(tuple(ClassInfo(i, n, _generic_colour(i)) for i, n in enumerate(names)))
+
+    @classmethod
     def from_dict(cls, d: Any, source: str = "class table") -> ClassTable:
         """Build a table from ``to_dict`` output or a parsed classes.toml; DataError names ``source`` and the key."""
         problems: list[str] = []
@@ -90,6 +99,17 @@ class ClassTable:
         if problems:
             raise DataError(f"{source}: {problems[0]}")
         return _build(table)
+
+
+_OKABE_ITO = ((230, 159, 0), (86, 180, 233), (0, 158, 115), (240, 228, 66), (0, 114, 178), (213, 94, 0),
+              (204, 121, 167))
+
+
+def _generic_colour(i: int) -> Color:
+    if i < len(_OKABE_ITO):
+        return _OKABE_ITO[i]
+    r, g, b = colorsys.hsv_to_rgb((i * 0.618034) % 1.0, 0.65, 0.95 - 0.25 * (i % 2))
+    return round(r * 255), round(g * 255), round(b * 255)
 
 
 def table_problems(table: _RawTable | ClassTable) -> list[str]:

@@ -10,6 +10,7 @@ names the file.
 from __future__ import annotations
 
 import contextlib
+import logging
 import threading
 import warnings
 from collections.abc import Iterator
@@ -22,7 +23,6 @@ from PIL import Image
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import quiet_tifffile
 from fcnkit.errors import DataError
 from fcnkit.memory import available_memory
 
@@ -129,6 +129,20 @@ def tiff_layout_args(shape: tuple[int, ...], dtype: Any) -> dict[str, Any]:
     if h >= TIFF_TILE and w >= TIFF_TILE:
         args["tile"] = (TIFF_TILE, TIFF_TILE)
     return args
+
+
+@contextlib.contextmanager
+def quiet_tifffile() -> Iterator[None]:
+    """Silence tifffile's log warnings about damaged structures while opening a file: the DataError raised for
+    the file says what is wrong on one line."""
+    log = logging.getLogger("tifffile")
+    level = log.level
+    log.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        log.setLevel(level)
+
 
 
 # --- helpers -------------------------------------------------------------------------------------------------

@@ -16,8 +16,6 @@ Writers stream a large raster to a tiled, deflate-compressed (Big)TIFF block by 
 
 from __future__ import annotations
 
-import contextlib
-import logging
 import math
 import os
 from collections import OrderedDict
@@ -30,6 +28,7 @@ import numpy as np
 import tifffile
 
 from fcnkit.atomic import atomic_output
+from fcnkit.data.imageio import quiet_tifffile
 from fcnkit.errors import DataError
 
 TIFF_SUFFIXES = (".tif", ".tiff")
@@ -249,19 +248,6 @@ class TiffRaster:
     def close(self) -> None:
         self._cache.clear()
         self._tif.close()
-
-
-@contextlib.contextmanager
-def quiet_tifffile() -> Iterator[None]:
-    """Silence tifffile's log warnings about damaged structures while opening a file: the DataError raised for
-    the file says what is wrong on one line."""
-    log = logging.getLogger("tifffile")
-    level = log.level
-    log.setLevel(logging.ERROR)
-    try:
-        yield
-    finally:
-        log.setLevel(level)
 
 
 def _one_line(e: BaseException) -> str:

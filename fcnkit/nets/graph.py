@@ -10,11 +10,13 @@ a ``global`` layer, which rules out exact tiling.
 from __future__ import annotations
 
 import operator
+from dataclasses import dataclass
 
 import torch
 from torch import fx, nn
 from torch.nn import functional as F
 
+from fcnkit import geometry
 from fcnkit.geometry import GLOBAL_OP, INPUT, Layer
 
 _POINTWISE_MODULES = (
@@ -93,10 +95,10 @@ def _int_factor(f: float | tuple[float, ...], name: str) -> int | tuple[int, ...
 
 
 def layer_graph(module: nn.Module) -> list[Layer]:
-    """Trace ``module`` (a :class:`~fcnkit.nets.segnet.SegNet` is traced through its body) into Layers."""
-    from fcnkit.nets.segnet import SegNet
+    """Trace ``module`` into Layers (a :class:`~fcnkit.nets.padded.PaddedNet` is traced through its body)."""
+    from fcnkit.nets.padded import PaddedNet
 
-    if isinstance(module, SegNet):
+    if isinstance(module, PaddedNet):
         module = module.body
     gm = fx.symbolic_trace(module)
     modules = dict(gm.named_modules())
@@ -186,3 +188,27 @@ def _drop_identities(graph: list[Layer]) -> list[Layer]:
             continue
         kept.append(Layer(**{**layer.__dict__, "inputs": ins}))
     return kept
+
+
+@dataclass(frozen=True)
+class NetGeometry:
+    """What inference needs to know about a net: the grid its padding plan aligns inputs to (``factor``), the
+    context exact tiles need on each side (``margin``; None when global layers make outputs depend on the whole
+    input) and those layers."""
+
+    factor: int
+    margin: int | None
+    global_layers: tuple[str, ...] = ()
+
+
+def net_geometry(net: nn.Module) -> NetGeometry:
+    """The geometry of a net with a padding plan (a :class:`~fcnkit.nets.padded.PaddedNet`); ValueError when
+    its graph cannot be read."""
+    try:
+        graph = layer_graph(net)
+    except Exception as e:  # tracing errors come in many types; all mean the graph cannot be read
+        raise ValueError(f"cannot read the net's geometry ({' '.join(str(e).split())})") from None
+    local = geometry.is_local(graph)
+    return NetGeometry(int(getattr(net, "factor", geometry.downsampling_factor(graph))),
+                       geometry.tile_margin(graph) if local else None,
+                       tuple(f"{g.name} ({g.note})" for g in geometry.global_layers(graph)))

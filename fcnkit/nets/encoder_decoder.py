@@ -1,4 +1,5 @@
-"""The config-built fully convolutional segmenter: encoder stages, 1×1 head, up-sampling, skip fusion.
+"""The encoder–decoder family of fully convolutional segmenters, built from a config: encoder stages, 1×1
+head, up-sampling, skip fusion.
 
 Three decoders, chosen by ``model.fusion``:
 
@@ -12,10 +13,12 @@ from __future__ import annotations
 
 import torch
 from torch import nn
-from torch.nn import functional as F
 
 from fcnkit.config import Config, ModelConfig
+from fcnkit.errors import ConfigError
+from fcnkit.geometry import PadPlan
 from fcnkit.nets.blocks import BilinearUp, ConvBlock, ScoreHead
+from fcnkit.nets.padded import PaddedNet
 
 
 class Stage(nn.Sequential):
@@ -116,8 +119,8 @@ class ConcatDecoder(nn.Module):
         return self.final_up(self.head(y))
 
 
-class SegBody(nn.Module):
-    """Encoder and decoder; expects sides divisible by the down-sampling factor."""
+class EncoderDecoder(nn.Module):
+    """Encoder and decoder; expects sides that fit the pooling grid (see :class:`~fcnkit.nets.padded.PaddedNet`)."""
 
     def __init__(self, m: ModelConfig) -> None:
         super().__init__()
@@ -128,27 +131,11 @@ class SegBody(nn.Module):
         return self.decoder(self.encoder(x))
 
 
-class SegNet(nn.Module):
-    """A fully convolutional segmenter: N×bands×H×W in, N×classes×H×W class scores out, for any H, W.
-
-    Wraps a ``body`` that needs sides divisible by ``factor``: the input is padded (edge pixels repeated)
-    on the bottom and right to a multiple of ``factor`` and the scores cropped back, so every pooling
-    grid fits. Tile origins on multiples of ``factor`` see the same grids as the whole image.
-    """
-
-    def __init__(self, body: nn.Module, factor: int, bands: int, classes: int) -> None:
-        super().__init__()
-        self.body, self.factor, self.bands, self.classes = body, factor, bands, classes
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        h, w = x.shape[-2:]
-        ph, pw = -h % self.factor, -w % self.factor
-        if ph or pw:
-            x = F.pad(x, (0, pw, 0, ph), mode="replicate")
-        return self.body(x)[..., :h, :w]
-
-
-def build_model(cfg: Config | ModelConfig) -> SegNet:
-    """Build the segmenter a config describes (weights random-initialised, bilinear up-sampling kernels)."""
+def build_model(cfg: Config | ModelConfig) -> PaddedNet:
+    """Build the encoder–decoder a config describes (weights random-initialised, bilinear up-sampling kernels),
+    wrapped to take images of any size."""
     m = cfg.model if isinstance(cfg, Config) else cfg
-    return SegNet(SegBody(m), m.stage_output_strides()[-1], m.bands, m.classes)
+    if m.bands is None or m.classes is None:
+        raise ConfigError("model.bands and model.classes: not known yet (they come from the data when training; "
+                          "give them to build a net without data)")
+    return PaddedNet(EncoderDecoder(m), PadPlan(m.stage_output_strides()[-1]), m.bands, m.classes)

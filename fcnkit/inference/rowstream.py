@@ -21,6 +21,7 @@ import operator
 import time
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
+from typing import TYPE_CHECKING
 
 import torch
 from torch import fx, nn
@@ -28,6 +29,9 @@ from torch.nn import functional as F
 
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
+
+if TYPE_CHECKING:
+    from fcnkit.model import Model
 
 # Input pixels per band: on the 2-core development CPU, bands of 2048×256 pixels ran the demo and FCN-8s nets
 # at least as fast as 128- or 512-row bands, and 64-row bands 10–30 % slower (more calls, more rows carried).
@@ -352,21 +356,19 @@ def _function_op(node: fx.Node, inputs: int, copy: bool) -> _Op:
 
 
 class RowStreamer:
-    """Runs a :class:`~fcnkit.nets.segnet.SegNet` over an image in full-width bands of rows (see module notes).
+    """Runs a model's net over an image in full-width bands of rows (see module notes), fed by the model's own
+    normalisation and padding plan.
 
     The net is copied with batch norms folded into their convolutions and run channels-last; ``bf16`` runs it
     under bfloat16 autocast (transposed convolutions stay float32). Raises :class:`NotStreamable` for a net
     it cannot run exactly."""
 
-    def __init__(self, model: nn.Module, bf16: bool = False) -> None:
-        from fcnkit.nets.segnet import SegNet
-        from fcnkit.tiling import fuse_conv_bn
+    def __init__(self, model: Model, bf16: bool = False) -> None:
+        from fcnkit.inference.engines import fuse_conv_bn
 
-        if not isinstance(model, SegNet):
-            raise NotStreamable(f"model: a {type(model).__name__} cannot be streamed in rows (only config-built "
-                                "nets)")
-        self.factor, self.bf16 = model.factor, bf16
-        body = fuse_conv_bn(model).body.to(memory_format=torch.channels_last)
+        self.model, self.plan, self.bf16 = model, model.plan, bf16
+        self.factor = self.plan.factor
+        body = fuse_conv_bn(model.net.body).to(memory_format=torch.channels_last)
         try:
             gm = fx.symbolic_trace(body)
         except Exception as e:  # tracing errors come in many types
@@ -430,31 +432,31 @@ class RowStreamer:
         y = out[self._output]
         return torch.cat(y, dim=2).float() if y else None
 
-    def stream(self, raster: Raster, *, mean: Sequence[float], std: Sequence[float], logits: bool = False,
-               rows: int | None = None, progress: bool = False,
+    def stream(self, raster: Raster, *, logits: bool = False, rows: int | None = None, progress: bool = False,
                desc: str = "rows") -> Iterator[tuple[int, torch.Tensor]]:
-        """Class probabilities (or ``logits``) of ``raster``, top to bottom, as (first row, C×h×W float32)."""
+        """Class probabilities (the model's, calibrated) or ``logits`` of ``raster``, top to bottom, as (first
+        row, C×h×W float32)."""
         from tqdm import tqdm
 
         height, width, bands = raster.shape
-        f = self.factor
+        p = self.plan
         rows = rows or self.band_rows(width)
-        pad_w, pad_h = -width % f, -height % f
-        m = torch.tensor(mean, dtype=torch.float32).view(1, bands, 1, 1)
-        s = torch.tensor(std, dtype=torch.float32).view(1, bands, 1, 1)
+        left, right, bottom = p.before, p.after(width), p.after(height)
 
         def load(y0: int) -> torch.Tensor:
+            """Input rows y0..y0+rows, normalised and padded by the plan (the top padding before the first band,
+            the bottom padding after the last)."""
             y1 = min(y0 + rows, height)
             x = torch.from_numpy(raster.read(y0, y1, 0, width).astype("float32", copy=False))
-            x = x.permute(2, 0, 1)[None].sub(m).div_(s)
-            bottom = pad_h if y1 == height else 0
-            if pad_w or bottom:
-                x = F.pad(x, (0, pad_w, 0, bottom), mode="replicate")
+            x = self.model.normalise(x.permute(2, 0, 1)[None])
+            top = p.before if y0 == 0 else 0
+            if left or right or top or (y1 == height and bottom):
+                x = F.pad(x, (left, right, top, bottom if y1 == height else 0), mode="replicate")
             return x.contiguous(memory_format=torch.channels_last)
 
         nodes = self._build()
         starts = list(range(0, height, rows))
-        done, t0 = 0, time.perf_counter()
+        skip, done, t0 = p.crop, 0, time.perf_counter()  # output rows before the crop; rows handed on
         bar = tqdm(total=height, unit="row", desc=desc, disable=not progress, leave=False)
         with ThreadPoolExecutor(1) as pool, bar:
             nxt = pool.submit(load, starts[0])
@@ -463,10 +465,14 @@ class RowStreamer:
                 if k + 1 < len(starts):
                     nxt = pool.submit(load, starts[k + 1])
                 y = self._push(nodes, x, k + 1 == len(starts))
-                if y is None or done >= height:
+                if y is None:
                     continue
-                y = y[:, :, :height - done, :width].contiguous()
-                y = y if logits else torch.softmax(y, dim=1)
+                cut = min(skip, y.shape[2])
+                y, skip = y[:, :, cut:], skip - cut
+                y = y[:, :, :height - done, p.crop:p.crop + width].contiguous()
+                if not y.shape[2]:
+                    continue
+                y = y if logits else self.model.probabilities(y)
                 yield done, y[0]
                 done += y.shape[2]
                 bar.update(y.shape[2])

@@ -1,0 +1,196 @@
+"""How an image is scanned, and its class scores.
+
+Three scans give the same thing, class scores streamed as finished bands of rows from top to bottom:
+
+* ``rows`` — exact row streaming (:mod:`fcnkit.inference.rowstream`): equal to whole-image inference, memory
+  bounded by the image's width; the default wherever the net allows it;
+* ``whole`` — the whole image in one forward pass: exact, for nets that cannot be streamed (global layers such
+  as squeeze-and-excitation pooling, or layers row streaming does not know), while the image fits in memory;
+* ``tiles`` — overlapping tiles blended by a window (:mod:`fcnkit.inference.tiles`): any net, any size, flip
+  TTA, other runtimes; exact only with exact tiles on a net without global layers.
+
+``auto`` takes the first exact scan that can run and says in one line when it must fall back to something
+that is not exact, or when an option given (TTA, tile settings, another runtime) moves it to tiles.
+"""
+
+from __future__ import annotations
+
+import tempfile
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+import torch
+
+from fcnkit.data.raster import ArrayRaster, Raster, open_raster
+from fcnkit.errors import ConfigError, DataError
+from fcnkit.inference.engines import Engine, make_engine, prepared
+from fcnkit.inference.rowstream import NotStreamable, RowStreamer
+from fcnkit.inference.tiles import DEFAULT_TILE, auto_batch, plan_tiles, stream_tiles
+
+if TYPE_CHECKING:
+    from fcnkit.model import Model
+
+SCANS = ("auto", "rows", "whole", "tiles")
+SCORES_IN_MEMORY_BYTES = 256 << 20  # predict_scores returns larger results as a memory map on a file
+WHOLE_BAND = 256  # rows per band handed on by the whole-image scan
+
+
+@dataclass(frozen=True)
+class ScanChoice:
+    """The scan an image gets, whether its scores equal whole-image inference, and why, when auto had to
+    choose something else than exact rows (``note``, one line; None otherwise)."""
+
+    scan: str
+    exact: bool
+    note: str | None = None
+
+
+def _streamer(model: Model, bf16: bool) -> RowStreamer:
+    return prepared(model, f"rows-bf16={bf16}", lambda m: RowStreamer(m, bf16))  # type: ignore[return-value]
+
+
+def _whole_fits(model: Model, height: int, width: int) -> bool:
+    from fcnkit.memory import available_memory, peak_bytes
+    from fcnkit.nets import layer_graph
+
+    try:
+        graph = prepared(model, "graph", lambda m: layer_graph(m.net))
+    except Exception:  # noqa: BLE001 - a net whose graph cannot be read: no estimate, so no whole-image pass
+        return False
+    return peak_bytes(graph, height, width, 1, model.bands) <= available_memory() // 2  # type: ignore[arg-type]
+
+
+def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, tiles_asked: bool = False,
+                exact_tiles: bool = False, tta: bool = False, engine: str | Engine = "torch") -> ScanChoice:
+    """The scan for a height×width image (see module notes); ConfigError when the scan asked for cannot run."""
+    if scan not in SCANS:
+        raise ConfigError(f"scan: {scan!r} is not one of: {', '.join(SCANS)}")
+    geom = model.geometry
+    tiles_exact = exact_tiles and geom.margin is not None
+    if scan == "tiles":
+        return ScanChoice("tiles", tiles_exact)
+    conflicts = [name for name, bad in (("flip TTA", tta), ("tile settings", tiles_asked or exact_tiles),
+                                        ("another engine", engine != "torch")) if bad]
+    if conflicts:
+        if scan != "auto":
+            raise ConfigError(f"scan: {scan} cannot be combined with {' and '.join(conflicts)} (use scan tiles)")
+        if tiles_exact:  # exact tiles asked for: nothing lost, nothing to say
+            return ScanChoice("tiles", True)
+        return ScanChoice("tiles", False, f"{' and '.join(conflicts)} asked for: scanning by blended tiles, "
+                          "not exact (equal to whole-image inference only by rows, a whole pass or exact tiles)")
+    if scan in ("auto", "rows"):
+        try:
+            _streamer(model, False)
+            return ScanChoice("rows", True)
+        except NotStreamable as e:
+            if scan == "rows":
+                raise
+            reason = str(e)
+    if scan == "whole" or _whole_fits(model, height, width):
+        return ScanChoice("whole", True, None if scan == "whole" else
+                          f"the net cannot be streamed in rows ({reason}): one whole-image pass instead")
+    return ScanChoice("tiles", False, f"the net cannot be streamed in rows ({reason}) and the {width}x{height} image "
+                      "is too large for one pass: blended tiles, not exact")
+
+
+def _whole(engine: Engine, raster: Raster, model: Model, logits: bool) -> Iterator[tuple[int, torch.Tensor]]:
+    """The whole image in one forward pass, handed on in bands of rows."""
+    h, w, _ = raster.shape
+    x = torch.from_numpy(raster.read(0, h, 0, w).astype(np.float32, copy=False)).permute(2, 0, 1)[None]
+    y = engine(x)[0].contiguous()
+    for y0 in range(0, h, WHOLE_BAND):
+        band = y[:, y0:y0 + WHOLE_BAND]
+        yield y0, band if logits else model.probabilities(band, dim=0)
+
+
+def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int | None = None,
+                  overlap: int | None = None, batch: int | None = None, window: str | None = None,
+                  exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
+                  engine: str | Engine = "torch", progress: bool = False, desc: str = "mapping",
+                  echo: Callable[[str], None] | None = None) -> Iterator[tuple[int, torch.Tensor]]:
+    """Choose the scan (:func:`choose_scan`) and stream the class probabilities (the model's calibrated ones,
+    or ``logits``) of ``raster`` as (first row, C×h×W float32) bands from top to bottom. The checks run at once,
+    before the first band is asked for; ``echo`` receives the one-line note of an automatic choice. Tile
+    settings left as None take their defaults (512 px tiles, Hann window, a batch of about a quarter megapixel).
+    """
+    from fcnkit.memory import check_forward_memory
+    from fcnkit.nets import layer_graph
+
+    if batch is not None and batch < 1:
+        raise ConfigError(f"batch: {batch} must be >= 1")
+    if exact and tta:
+        raise ConfigError("tta: flip test-time augmentation cannot be combined with exact tiles "
+                          "(flipped tiles see different pooling grids)")
+    height, width, bands = raster.shape
+    if bands != model.bands:
+        where = raster.path or "image"
+        raise DataError(f"{where}: has {bands} bands but the model expects {model.bands}")
+    asked = any(v is not None for v in (tile, overlap, batch, window))
+    choice = choose_scan(model, height, width, scan, tiles_asked=asked, exact_tiles=exact, tta=tta, engine=engine)
+    graph = prepared(model, "graph", lambda m: layer_graph(m.net))
+    factor = model.plan.factor
+    if choice.scan == "rows":
+        streamer = _streamer(model, bf16)
+        check_forward_memory(graph, streamer.band_rows(width), width, 1, bands, factor=factor)  # type: ignore[arg-type]
+        return streamer.stream(raster, logits=logits, progress=progress, desc=desc)
+    run = engine if callable(engine) else make_engine(engine, model, bf16)
+    if choice.scan == "whole":
+        _say(echo, choice)
+        return _whole(run, raster, model, logits)
+    plan = plan_tiles(model.geometry, height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
+                      window=window or "hann", exact=exact)
+    batch = batch or auto_batch(plan)
+    rows, cols = max(s.stop - s.start for s in plan.rows), max(s.stop - s.start for s in plan.cols)
+    check_forward_memory(graph, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,  # type: ignore[arg-type]
+                         factor=factor)
+    _say(echo, choice)
+    return stream_tiles(run, raster, plan, batch=batch, tta=tta, probabilities=None if logits else model.probabilities,
+                        progress=progress, desc=desc)
+
+
+def _say(echo: Callable[[str], None] | None, choice: ScanChoice) -> None:
+    """Pass on the note of an automatic choice, once every check has passed."""
+    if choice.note and echo is not None:
+        echo(choice.note)
+
+
+def as_raster(image: np.ndarray | Raster | str | Path, max_pixels: int | None = None) -> Raster:
+    """A region reader of an H×W×B (or H×W) array, an image file, or a reader already open."""
+    if isinstance(image, np.ndarray):
+        return ArrayRaster(image)
+    if isinstance(image, (str, Path)):
+        return open_raster(image, max_pixels)
+    return image
+
+
+def predict_scores(model: Model, image: np.ndarray | Raster | str | Path, *, logits: bool = False,
+                   workdir: str | Path | None = None, max_pixels: int | None = None,
+                   **options: object) -> np.ndarray:
+    """Class probabilities (the model's calibrated ones, or ``logits``) C×H×W float32 of an image (an H×W×B
+    array of raw pixels, an image file or an open reader), by the scan :func:`stream_scores` chooses
+    (``options`` are its settings). Results above 256 MB are a memory map on a file in ``workdir`` (default: an
+    unnamed temporary file)."""
+    raster = as_raster(image, max_pixels)
+    try:
+        h, w, _ = raster.shape
+        out: np.ndarray | None = None
+        for y0, band in stream_scores(model, raster, logits=logits, **options):  # type: ignore[arg-type]
+            if out is None:
+                shape = (band.shape[0], h, w)
+                if workdir is None and np.prod(shape) * 4 <= SCORES_IN_MEMORY_BYTES:
+                    out = np.empty(shape, np.float32)
+                else:  # an unnamed file (deleted on close) unless a work folder is given
+                    f = tempfile.NamedTemporaryFile(dir=workdir, prefix="scores-", suffix=".raw",
+                                                    delete=workdir is None)
+                    with f:
+                        f.truncate(int(np.prod(shape)) * 4)
+                        out = np.memmap(f, np.float32, "r+", shape=shape)
+            out[:, y0:y0 + band.shape[1]] = band.numpy()
+    finally:
+        if raster is not image:
+            raster.close()
+    assert out is not None
+    return out

@@ -1,0 +1,165 @@
+"""Images to files: map each image of a list (files and folders, sharded under torchrun) with one model into
+its label, confidence and uncertainty maps, overlay and area table (:mod:`fcnkit.outputs`)."""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from fcnkit.data.classes import ClassTable
+from fcnkit.data.raster import SEGMENT_MAX_PIXELS
+from fcnkit.errors import ConfigError
+from fcnkit.inference.engines import Engine, make_engine
+from fcnkit.inference.scan import stream_scores
+from fcnkit.model import Model
+
+IN_MEMORY_PIXELS = 4_000_000  # segment keeps the 8-bit maps of smaller images in memory, of larger ones on disk
+
+
+def as_model(model_or_path: Model | str | Path) -> Model:
+    """A model, or the model in a model file."""
+    return model_or_path if isinstance(model_or_path, Model) else Model.load(model_or_path)
+
+
+@dataclass
+class SegmentResult:
+    """The files written for one image (by kind: labels, confidence, uncertainty, overlay, areas_csv,
+    areas_json) and its per-class area rows (id, name, pixels, fraction, area_m2)."""
+
+    paths: dict[str, Path]
+    areas: list[dict]
+    size: tuple[int, int] = (0, 0)  # height, width
+
+
+def _prepare_folder(out_dir: Path) -> None:
+    from fcnkit.errors import DataError
+
+    if out_dir.exists() and not out_dir.is_dir():
+        raise DataError(f"{out_dir}: is a file, expected an output folder")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise DataError(f"{out_dir}: cannot create the output folder ({e.strerror})") from None
+
+
+def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out_dir: str | Path, *,
+                  scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
+                  window: str | None = None, exact: bool = False,
+                  tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
+                  max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
+                  engine: Engine | str = "torch", preview: int = 1024,
+                  note: Callable[[str], None] | None = None) -> SegmentResult:
+    """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
+
+    ``model_or_path`` is a :class:`~fcnkit.model.Model` or a model file. Writes
+    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG, or TIFF for TIFF inputs and large images),
+    ``STEM.overlay`` and ``STEM.areas.csv``/``.json``. Class scores stream from the tiles straight into the
+    8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
+    there and only then moved to its final name, so a run that is stopped leaves no output at all for the image
+    rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan).
+    """
+    import shutil
+    import tempfile
+
+    from fcnkit.data.raster import open_raster
+    from fcnkit.outputs import write_outputs
+
+    if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
+        raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
+    model = as_model(model_or_path)
+    image_path, out_dir = Path(image_path), Path(out_dir)
+    _prepare_folder(out_dir)
+    raster = open_raster(image_path, max_pixels)
+    work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
+    try:
+        height, width, _ = raster.shape
+        scores = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
+                               exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
+                               desc=image_path.name, echo=note)
+        done = work / "done"
+        done.mkdir()
+        large = height * width > IN_MEMORY_PIXELS
+        classes = model.classes or ClassTable.generic(model.num_classes)
+        paths, areas = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, classes,
+                                     done, image_path.stem, work=work if large else None, pixel_size=pixel_size,
+                                     preview=preview)
+        final = {k: out_dir / p.name for k, p in paths.items()}
+        for k, p in paths.items():  # renames within one file system: each is atomic, all follow at once
+            p.replace(final[k])
+        return SegmentResult(final, areas, (height, width))
+    finally:
+        raster.close()
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def find_images(inputs: Sequence[str | Path]) -> list[Path]:
+    """Image files named directly or found (not recursively) in folders, sorted; DataError for a missing input
+    or two inputs whose outputs would share a name."""
+    from fcnkit.data.raster import RASTER_SUFFIXES
+    from fcnkit.errors import DataError
+
+    found: list[Path] = []
+    for item in map(Path, inputs):
+        if item.is_dir():
+            images = sorted(p for p in item.iterdir() if p.is_file() and p.suffix.lower() in RASTER_SUFFIXES
+                            and not p.name.startswith("."))
+            if not images:
+                raise DataError(f"{item}: no image files in this folder (expected {', '.join(RASTER_SUFFIXES)})")
+            found += images
+        elif item.exists():
+            found.append(item)
+        else:
+            raise DataError(f"{item}: no such image file or folder")
+    stems: dict[str, Path] = {}
+    for p in found:
+        if p.stem in stems:
+            raise DataError(f"{p}: its outputs would overwrite those of {stems[p.stem]} (same name stem)")
+        stems[p.stem] = p
+    return found
+
+
+def shard(items: Sequence, rank: int | None = None, world: int | None = None) -> list:
+    """Every ``world``-th item from ``rank`` on; by default the rank and world size torchrun sets
+    (RANK / WORLD_SIZE), or everything when not launched by it."""
+    import os
+
+    rank = int(os.environ.get("RANK", 0)) if rank is None else rank
+    world = int(os.environ.get("WORLD_SIZE", 1)) if world is None else world
+    if not 0 <= rank < world:
+        raise ConfigError(f"rank: {rank} is not in 0..{world - 1}")
+    return list(items[rank::world])
+
+
+def segment_images(model_or_path: Model | str | Path, inputs: Sequence[str | Path], out_dir: str | Path, *,
+                   rank: int | None = None, world: int | None = None, echo: Callable[[str], None] | None = None,
+                   note: Callable[[str], None] | None = None, **options) -> list[SegmentResult]:
+    """Map many images (files and folders) with one model; under torchrun each process takes its own shard.
+    ``options`` are those of :func:`segment_image`; ``engine`` may also name a runtime ("torch",
+    "onnxruntime"), built once for all images. ``echo`` receives a line per image mapped, ``note`` each
+    distinct one-line note once."""
+    model = as_model(model_or_path)
+    files = shard(find_images(inputs), rank, world)
+    engine = options.get("engine", "torch")
+    if isinstance(engine, str) and engine != "torch":  # e.g. onnxruntime: build the session once
+        options["engine"] = make_engine(engine, model)
+    results, said = [], set()
+
+    def once(text: str) -> None:
+        if note is not None and text not in said:
+            said.add(text)
+            note(text)
+
+    for path in files:
+        start = time.perf_counter()
+        res = segment_image(model, path, out_dir, note=once, **options)
+        if echo is not None:
+            h, w = res.size
+            echo(f"{path}: {w}x{h} mapped in {time.perf_counter() - start:.1f} s -> {res.paths['labels']}")
+        results.append(res)
+    return results
+
