@@ -28,6 +28,9 @@ _API = {
     "predict_scores": "fcnkit.tiling", "segment_image": "fcnkit.tiling", "segment_images": "fcnkit.tiling",
     "evaluate": "fcnkit.evaluate", "write_report": "fcnkit.report", "export_model": "fcnkit.export",
     "convert_classifier": "fcnkit.convert", "grow_segmenter": "fcnkit.convert",
+    "fit_temperature": "fcnkit.calibration", "reliability": "fcnkit.calibration",
+    "assessment_table": "fcnkit.assessment", "plan_sample_size": "fcnkit.assessment",
+    "draw_sample": "fcnkit.sampling", "assess_sample": "fcnkit.sampling",
 }
 
 __all__ = ["ConfigError", "DataError", "FcnkitError", "ModelFileError", *_API]

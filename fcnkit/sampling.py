@@ -45,6 +45,7 @@ VECTOR_SUFFIXES = {".gpkg": "GPKG", ".geojson": "GeoJSON"}
 SAMPLE_SUFFIXES = (*VECTOR_SUFFIXES, ".csv")
 LAYER = "sample"
 BAND_PIXELS = 1 << 22  # pixels per band of rows read at a time
+IGNORE = 255  # unlabelled pixels when no class table says otherwise (classes.toml's default)
 DEFAULT_MINIMUM = 50  # points per class at least (Olofsson et al. 2014 suggest 50–100 for rare classes)
 DEFAULT_TARGET_SE = 0.01
 DEFAULT_EXPECTED_ACCURACY = 0.8
@@ -56,8 +57,8 @@ DEFAULT_EXPECTED_ACCURACY = 0.8
 @dataclass(frozen=True)
 class Georef:
     """What rasterio says of a TIFF: CRS (WKT), affine transform (a, b, c, d, e, f with x = a·col + b·row + c,
-    y = d·col + e·row + f at pixel corners; None when not georeferenced), pixel area in m² (projected CRS
-    only) and nodata value."""
+    y = d·col + e·row + f at pixel corners; None when not georeferenced), pixel area in m² (projected or
+    local grid in linear units only) and nodata value."""
 
     crs: str | None
     transform: tuple[float, float, float, float, float, float] | None
@@ -78,7 +79,7 @@ def georeference(path: str | Path) -> Georef:
     if path.suffix.lower() not in TIFF_SUFFIXES:
         return none
     import rasterio
-    from rasterio.errors import NotGeoreferencedWarning, RasterioError
+    from rasterio.errors import CRSError, NotGeoreferencedWarning, RasterioError
 
     try:
         with warnings.catch_warnings():
@@ -90,9 +91,12 @@ def georeference(path: str | Path) -> Georef:
     if crs is None and t.is_identity:
         return Georef(None, None, None, nodata)
     area = None
-    if crs is not None and crs.is_projected:
-        _unit, to_metre = crs.linear_units_factor
-        area = abs(t.a * t.e - t.b * t.d) * to_metre ** 2
+    if crs is not None and not crs.is_geographic:  # projected or local grid in linear units
+        try:
+            _unit, to_metre = crs.units_factor
+            area = abs(t.a * t.e - t.b * t.d) * to_metre ** 2
+        except CRSError:
+            pass
     return Georef(crs.to_wkt() if crs is not None else None, tuple(t)[:6], area, nodata)
 
 
@@ -170,8 +174,7 @@ class _Strata:
 
 def _strata(path: Path, counts: np.ndarray, classes: ClassTable | None, nodata: float | None) -> _Strata:
     skip = {int(nodata)} if nodata is not None and float(nodata).is_integer() else set()
-    if classes is not None:
-        skip.add(classes.ignore)
+    skip.add(classes.ignore if classes is not None else IGNORE)
     present = [int(v) for v in np.flatnonzero(counts) if int(v) not in skip]
     if classes is None:
         if not present:
@@ -267,19 +270,22 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
     """Draw a stratified random sample of points from a label map and write it to ``out`` (.gpkg, .geojson
     or .csv; several names write several files).
 
-    The strata are the classes mapped (pixels equal to ``classes.ignore`` or the GeoTIFF's nodata are left
-    out; without ``classes`` every other value is a class, named by its id). The size is ``total`` or, if None,
-    Cochran's size for overall accuracy with standard error ``target_se`` when the user's accuracies are as
-    ``expected_accuracy`` (one value or one per class); it is allocated in proportion to mapped area with at
-    least ``minimum`` points per class (:func:`fcnkit.assessment.allocate_sample`). ``chips``: a folder for one
-    PNG per point, ``chip_size`` pixels of ``image`` (the mapped image, same grid) around it.
+    The strata are the classes mapped (pixels equal to ``classes.ignore`` — 255 without ``classes`` — or to
+    the GeoTIFF's nodata are left out; without ``classes`` every other value is a class, named by its id).
+    The size is ``total`` or, if None, Cochran's size for overall accuracy with standard error ``target_se``
+    when the user's accuracies are as ``expected_accuracy`` (one value or one per class); it is allocated in
+    proportion to mapped area with at least ``minimum`` points per class
+    (:func:`fcnkit.assessment.allocate_sample`). ``chips``: a folder for one PNG per point, ``chip_size``
+    pixels of ``image`` (the mapped image, same grid) around it.
     """
     labels = Path(labels)
     paths = _check_outputs(out)
     if chips is not None and image is None:
         raise DataError("image chips need the mapped image (the image the label map was made from)")
-    if (total is not None and total < 1) or minimum < 0:
-        raise DataError(f"sample size {total} and minimum per class {minimum} (expected ≥ 1 and ≥ 0)")
+    if total is not None and total < 1:
+        raise DataError(f"sample size {total} points (expected at least 1)")
+    if minimum < 0:
+        raise DataError(f"minimum per class {minimum} points (expected ≥ 0)")
     if chip_size < 3:
         raise DataError(f"chip size {chip_size} px (expected at least 3)")
     geo = georeference(labels)
@@ -433,8 +439,8 @@ def _read_table(path: Path) -> tuple[list[str], list[list[Any]]]:
     try:
         meta, _fids, _geom, data = pyogrio.raw.read(path, read_geometry=False)
     except (DataSourceError, OSError, ValueError) as e:
-        raise DataError(f"{path}: not a readable {VECTOR_SUFFIXES[suffix]} file ({' '.join(str(e).split())})") \
-            from None
+        why = " ".join(str(e).split()).split(";")[0].replace(f"'{path}' ", "")  # GDAL's first sentence
+        raise DataError(f"{path}: not a readable {VECTOR_SUFFIXES[suffix]} file ({why})") from None
     names = [str(n) for n in meta["fields"]]
     return names, [list(r) for r in zip(*data, strict=True)] if data else []
 
@@ -560,6 +566,9 @@ def assess_sample(sample: str | Path, *, labels: str | Path | None = None, count
         raise DataError("give either the label map or a file of its pixel counts per class (not both)")
     if pixel_area_m2 is not None and not pixel_area_m2 > 0:
         raise DataError(f"pixel area {pixel_area_m2} m² (expected a positive number)")
+    for out in (json_path, csv_path):
+        if out is not None and not Path(out).parent.is_dir():
+            raise DataError(f"{out}: cannot write here, folder {Path(out).parent} does not exist")
     points = read_sample(sample, reference_field, need_cells=labels is not None)
     area_source = "given" if pixel_area_m2 is not None else None
     if labels is not None:

@@ -227,6 +227,20 @@ def test_georeference_of_plain_files(tmp_path):
     assert georeference(tmp_path / "x.png").transform is None
 
 
+@pytest.mark.parametrize("crs, area", [
+    ("EPSG:32632", 4.0),  # metres: 2 m × 2 m
+    ("EPSG:2263", 4.0 * (1200 / 3937) ** 2),  # US survey feet; 1 US survey foot = 1200/3937 m (NIST)
+    ("EPSG:4326", None),  # degrees: a pixel's area varies with latitude, none is given
+])
+def test_pixel_area_from_crs_units(tmp_path, crs, area):
+    path = tmp_path / "g.tif"
+    with rasterio.open(path, "w", driver="GTiff", height=3, width=3, count=1, dtype="uint8", crs=crs,
+                       transform=rasterio.Affine(2.0, 0.0, 100.0, 0.0, -2.0, 50.0)) as dst:
+        dst.write(np.zeros((1, 3, 3), np.uint8))
+    g = georeference(path)
+    assert g.pixel_area_m2 == (pytest.approx(area, rel=1e-12) if area is not None else None)
+
+
 def test_chips(tmp_path):
     truth, mapped = make_scene(7)
     labels = write_labels(tmp_path / "labels.tif", mapped)
