@@ -49,8 +49,10 @@ def _pixels_by_classes(scores: Any, labels: Any, axis: int, ignore: int | None) 
 
 
 def scaled_softmax(logits: Any, temperature: float = 1.0, axis: int = 0) -> np.ndarray:
-    """softmax(logits / T) along ``axis`` (the class axis; 0 for fcnkit's C×H×W score bands)."""
-    z = np.asarray(logits, dtype=np.float64) / temperature
+    """softmax(logits / T) along ``axis`` (the class axis; 0 for fcnkit's C×H×W score bands), in the logits'
+    floating type (float64 for integers)."""
+    z = np.asarray(logits)
+    z = z / (z.dtype.type(temperature) if z.dtype.kind == "f" else np.float64(temperature))
     z = z - z.max(axis=axis, keepdims=True)
     e = np.exp(z)
     return e / e.sum(axis=axis, keepdims=True)
@@ -180,8 +182,9 @@ class ReliabilityAccumulator:
         """Add pixels given directly by top-class confidence and whether the top class is right."""
         conf = np.asarray(confidence, dtype=np.float64).ravel()
         hit = np.asarray(correct, dtype=bool).ravel()
-        if conf.size and (conf.min() < 0 or conf.max() > 1):
+        if conf.size and (conf.min() < -1e-6 or conf.max() > 1 + 1e-6):  # float32 rounding is allowed
             raise ValueError("confidences must lie in [0, 1]")
+        conf = np.clip(conf, 0.0, 1.0)
         # bin m (0-based) holds (m/M, (m+1)/M]; a confidence of exactly 0 goes to the first bin
         ids = np.searchsorted(self.edges[1:-1], conf, side="left")
         m = len(self.counts)

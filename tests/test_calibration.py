@@ -164,6 +164,15 @@ def test_fit_hits_bound_when_every_pixel_is_right():
     assert fit.at_bound and fit.temperature == pytest.approx(0.05, rel=1e-3)
 
 
+def test_float32_probabilities_a_hair_above_one_are_accepted():
+    acc = ReliabilityAccumulator()
+    acc.add_confidences(np.array([1.0000001, 0.5], np.float32), [True, False])
+    assert acc.result().counts[-1] == 1
+    assert scaled_softmax(np.zeros((3, 2), np.float32)).dtype == np.float32
+    with pytest.raises(ValueError, match=r"\[0, 1\]"):
+        acc.add_confidences([1.01], [True])
+
+
 def test_bad_inputs():
     with pytest.raises(ValueError, match="no labelled pixels"):
         fit_temperature(np.zeros((3, 4)), np.full(4, 255))
