@@ -385,10 +385,10 @@ def write_chips(sample: Sample, image: str | Path, folder: str | Path, size: int
         h, w = raster.shape[:2]
         for pid, (r, c) in enumerate(zip(sample.rows, sample.cols, strict=True), start=1):
             y0, x0 = int(r) - size // 2, int(c) - size // 2
-            window = np.zeros((size, size, raster.shape[2]), raster.dtype)
             ya, yb, xa, xb = max(0, y0), min(h, y0 + size), max(0, x0), min(w, x0 + size)
-            window[ya - y0:yb - y0, xa - x0:xb - x0] = raster.read(ya, yb, xa, xb)
-            rgb = np.repeat(np.repeat(display_rgb(window), zoom, axis=0), zoom, axis=1)
+            chip = np.zeros((size, size, 3), np.uint8)  # black beyond the image's edges
+            chip[ya - y0:yb - y0, xa - x0:xb - x0] = display_rgb(raster.read(ya, yb, xa, xb))
+            rgb = np.repeat(np.repeat(chip, zoom, axis=0), zoom, axis=1)
             top, left = (size // 2) * zoom - 1, (size // 2) * zoom - 1  # one pixel outside the point's block
             box = (slice(top, top + zoom + 2), slice(left, left + zoom + 2))
             ring = np.ones((zoom + 2, zoom + 2), bool)
