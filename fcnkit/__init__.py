@@ -29,6 +29,9 @@ _API = {
     "segment_images": "fcnkit.inference.segment",
     "evaluate": "fcnkit.evaluate", "write_report": "fcnkit.report", "export_model": "fcnkit.export",
     "convert_classifier": "fcnkit.convert", "grow_segmenter": "fcnkit.convert",
+    "fit_temperature": "fcnkit.calibration", "reliability": "fcnkit.calibration",
+    "assessment_table": "fcnkit.assessment", "plan_sample_size": "fcnkit.assessment",
+    "draw_sample": "fcnkit.sampling", "assess_sample": "fcnkit.sampling",
 }
 
 __all__ = ["ConfigError", "DataError", "FcnkitError", "ModelFileError", *_API]

@@ -297,9 +297,93 @@ def _add_scenes(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(run=_scenes)
 
 
+def _sample(args: argparse.Namespace) -> int:
+    from fcnkit.data.classes import load_classes
+    from fcnkit.sampling import draw_sample
+
+    expected = args.expected_accuracy[0] if len(args.expected_accuracy) == 1 else args.expected_accuracy
+    s = draw_sample(args.labels, args.out, classes=load_classes(args.classes) if args.classes else None,
+                    total=args.points, target_se=args.target_se, expected_accuracy=expected,
+                    minimum=args.min_per_class, seed=args.seed, image=args.image, chips=args.chips,
+                    chip_size=args.chip_size, max_pixels=args.max_pixels)
+    print(s.summary())
+    for what, path in s.paths.items():
+        print(f"{what}: {path}")
+    print("next: fill in the 'reference' field of every point (class name or id), then run fcnkit assess")
+    return 0
+
+
+def _add_sample(sub: argparse._SubParsersAction) -> None:
+    from fcnkit.data.raster import SEGMENT_MAX_PIXELS
+    from fcnkit.sampling import DEFAULT_EXPECTED_ACCURACY, DEFAULT_MINIMUM, DEFAULT_TARGET_SE
+
+    p = sub.add_parser("sample", help="draw a stratified random sample of points from a label map, for reference "
+                       "labelling and an accuracy and area assessment")
+    p.add_argument("labels", metavar="LABELS", help="label map (GeoTIFF/TIFF or PNG of class ids)")
+    p.add_argument("--out", required=True, nargs="+", metavar="FILE",
+                   help="sample file(s) to write: .gpkg (GeoPackage), .geojson or .csv")
+    p.add_argument("--classes", metavar="TOML", help="class table (classes.toml): class names and ignore value")
+    size = p.add_mutually_exclusive_group()
+    size.add_argument("--points", type=int, metavar="N", help="total number of points (default: planned from "
+                      "--target-se)")
+    size.add_argument("--target-se", type=float, default=DEFAULT_TARGET_SE, metavar="SE",
+                      help=f"standard error wanted for overall accuracy; sets the number of points "
+                      f"(default {DEFAULT_TARGET_SE})")
+    p.add_argument("--expected-accuracy", type=_csv(float, "numbers"), default=[DEFAULT_EXPECTED_ACCURACY],
+                   metavar="U or U1,U2,...", help="anticipated user's accuracy, one for all classes or one per "
+                   f"class, for planning the number of points (default {DEFAULT_EXPECTED_ACCURACY})")
+    p.add_argument("--min-per-class", type=int, default=DEFAULT_MINIMUM, metavar="N",
+                   help=f"points per class at least; the rest in proportion to mapped area (default {DEFAULT_MINIMUM})")
+    p.add_argument("--seed", type=int, default=0, metavar="K", help="random seed; same seed, same points (default 0)")
+    p.add_argument("--image", metavar="IMAGE", help="the mapped image, for --chips")
+    p.add_argument("--chips", metavar="DIR", help="also write one PNG of the image around each point into DIR")
+    p.add_argument("--chip-size", type=int, default=64, metavar="PX", help="side of the image chips (default 64)")
+    p.add_argument("--max-pixels", type=int, default=SEGMENT_MAX_PIXELS, metavar="N",
+                   help=f"refuse maps with more pixels than this (default {SEGMENT_MAX_PIXELS})")
+    p.set_defaults(run=_sample)
+
+
+def _assess(args: argparse.Namespace) -> int:
+    from fcnkit.data.classes import load_classes
+    from fcnkit.sampling import assess_sample, format_assessment
+
+    if args.pixel_size is not None and not args.pixel_size > 0:
+        raise FcnkitError(f"--pixel-size {args.pixel_size} (expected a positive number of metres)")
+    table = assess_sample(args.sample, labels=args.labels, counts=args.counts,
+                          classes=load_classes(args.classes) if args.classes else None,
+                          pixel_area_m2=args.pixel_size ** 2 if args.pixel_size is not None else None,
+                          reference_field=args.reference_field, json_path=args.json, csv_path=args.csv,
+                          max_pixels=args.max_pixels)
+    print(format_assessment(table))
+    print(f"json: {args.json}\ncsv: {args.csv}")
+    return 0
+
+
+def _add_assess(sub: argparse._SubParsersAction) -> None:
+    from fcnkit.data.raster import SEGMENT_MAX_PIXELS
+
+    p = sub.add_parser("assess", help="accuracy and area with 95 %% intervals from a filled reference sample "
+                       "(stratified estimators of Olofsson et al. 2014)")
+    p.add_argument("sample", metavar="SAMPLE", help="filled sample file (.gpkg, .geojson or .csv) from fcnkit sample")
+    mapped = p.add_mutually_exclusive_group(required=True)
+    mapped.add_argument("--labels", metavar="LABELS", help="the label map the sample was drawn from")
+    mapped.add_argument("--counts", metavar="FILE",
+                        help="instead of the map: its pixels per class (CSV or JSON with id and pixels)")
+    p.add_argument("--classes", metavar="TOML", help="class table (classes.toml): class names and ignore value")
+    p.add_argument("--pixel-size", type=float, metavar="M",
+                   help="pixel side in metres, for areas (default: from the GeoTIFF's transform or the counts file)")
+    p.add_argument("--reference-field", default="reference", metavar="NAME",
+                   help="field holding the reference class of each point (default reference)")
+    p.add_argument("--json", default="assessment.json", metavar="FILE", help="default assessment.json")
+    p.add_argument("--csv", default="assessment.csv", metavar="FILE", help="default assessment.csv")
+    p.add_argument("--max-pixels", type=int, default=SEGMENT_MAX_PIXELS, metavar="N",
+                   help=f"refuse maps with more pixels than this (default {SEGMENT_MAX_PIXELS})")
+    p.set_defaults(run=_assess)
+
+
 COMMANDS: list[Callable[[argparse._SubParsersAction], None]] = [
     _add_describe, _add_export, _add_train, _add_evaluate, _add_demo, _add_convert, _add_segment,
-    _add_check, _add_scenes,
+    _add_check, _add_scenes, _add_sample, _add_assess,
 ]
 
 

@@ -15,6 +15,8 @@ Classes absent from a score's denominator are undefined, not zero: a class absen
 prediction has IoU and Dice NaN, a class absent from the truth has accuracy NaN. The means skip NaN entries
 (n_cl counts only the classes where the per-class value is defined), so a validation set that happens to lack
 a class is not penalised for it, while a class predicted but absent from the truth still scores IoU 0.
+
+``bootstrap_mean_iou`` gives the spread of the mean IoU over a set of images (percentile bootstrap).
 """
 
 from __future__ import annotations
@@ -82,3 +84,41 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
         "dice": dice.tolist(),
         "support": [int(v) for v in truth],
     }
+
+
+def bootstrap_mean_iou(confusions: Any, *, resamples: int = 2000, level: float = 0.95, seed: int = 0,
+                       chunk: int = 256) -> dict[str, Any]:
+    """Percentile bootstrap interval of a dataset's mean IoU, resampling whole images.
+
+    ``confusions`` holds one K×K confusion matrix per image (N×K×K). Each of ``resamples`` draws N images with
+    replacement, sums their matrices and scores the sum as :func:`segmentation_scores` does; the interval is
+    the (1 − level)/2 and (1 + level)/2 percentiles of those scores (Efron & Tibshirani 1993, "An
+    Introduction to the Bootstrap", percentile interval). Images, not pixels, are the units: pixels of one
+    image are not independent. Seeded, so the same input gives the same interval.
+    """
+    cms = np.asarray(confusions, dtype=np.float64)
+    if cms.ndim != 3 or cms.shape[1] != cms.shape[2] or cms.shape[0] == 0:
+        raise ValueError(f"expected N×K×K confusion matrices, got shape {cms.shape}")
+    if not 0 < level < 1 or resamples < 1:
+        raise ValueError(f"level {level} (expected between 0 and 1) and resamples {resamples} (expected ≥ 1)")
+    n, k, _ = cms.shape
+    flat = cms.reshape(n, k * k)
+    rng = np.random.default_rng(seed)
+    scores = []
+    for start in range(0, resamples, chunk):
+        r = min(chunk, resamples - start)
+        picks = rng.integers(0, n, size=(r, n))
+        times = np.zeros((r, n))
+        np.add.at(times, (np.arange(r)[:, None], picks), 1.0)  # how often each image is drawn
+        sums = (times @ flat).reshape(r, k, k)
+        hit = np.diagonal(sums, axis1=1, axis2=2)
+        iou = _ratio(hit, sums.sum(axis=2) + sums.sum(axis=1) - hit)
+        ok = ~np.isnan(iou)
+        with np.errstate(invalid="ignore"):
+            scores.append(np.where(ok.any(axis=1), np.nansum(iou, axis=1) / ok.sum(axis=1), np.nan))
+    values = np.concatenate(scores)
+    values = values[~np.isnan(values)]
+    tail = (1 - level) / 2 * 100
+    low, high = (np.percentile(values, [tail, 100 - tail]) if values.size else (np.nan, np.nan))
+    return {"mean_iou": segmentation_scores(cms.sum(axis=0))["mean_iou"], "low": float(low), "high": float(high),
+            "level": level, "resamples": resamples, "images": n}

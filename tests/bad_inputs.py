@@ -1133,3 +1133,134 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("--max-pixels below the image size", "train", ".png", "limit")
 def _(ws: Workspace, folder: Path) -> Call:
     return _train(ws, folder, ws.data, "--max-pixels", 100)
+
+
+# --- reference samples: sample and assess ----------------------------------------------------------------------
+
+def _labels(ws: Workspace) -> Path:
+    return ws.data / "masks" / "s0.png"  # 24×24 class ids 0..2, 255 unlabelled
+
+
+def _filled_sample(ws: Workspace, folder: Path, edit: Callable[[list[dict]], list[dict]] = lambda r: r,
+                   fields: list[str] | None = None) -> Path:
+    """A sample drawn from the first mask, its reference classes copied from the map, then ``edit``ed."""
+    import csv
+
+    from fcnkit.data.classes import load_classes
+    from fcnkit.sampling import draw_sample
+
+    drawn = folder / "drawn.csv"
+    draw_sample(_labels(ws), drawn, classes=load_classes(ws.data / "classes.toml"), total=15, minimum=4)
+    rows = list(csv.DictReader(open(drawn, newline="")))
+    for r in rows:
+        r["reference"] = r["map_class"]
+    rows = edit(rows)
+    path = folder / "filled.csv"
+    with open(path, "w", newline="") as f:
+        w = csv.DictWriter(f, fields or list(rows[0]), extrasaction="ignore")
+        w.writeheader()
+        w.writerows(rows)
+    return path
+
+
+def _assess(ws: Workspace, folder: Path, sample: Path, *more: object) -> Call:
+    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--json",
+                 folder / "a.json", "--csv", folder / "a.csv", *more], [folder])
+
+
+@case("sample: LABELS is an RGB image", "sample", "s0.png", "one band of integer class ids")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", ws.data / "images" / "s0.png", "--out", folder / "s.gpkg"], [folder])
+
+
+@case("sample: LABELS missing", "sample", "nothing.tif", "no such image file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", folder / "nothing.tif", "--out", folder / "s.gpkg"], [folder])
+
+
+@case("sample: label value outside the class table", "sample", "odd.png", "pixel value 9", "class id")
+def _(ws: Workspace, folder: Path) -> Call:
+    mask = scene(0)[1]
+    mask[3, 3] = 9
+    return Call(["sample", write_png(folder / "odd.png", mask), "--classes", ws.data / "classes.toml", "--out",
+                 folder / "s.gpkg"], [folder])
+
+
+@case("sample: --out of an unknown type (.txt)", "sample", "s.txt", ".gpkg")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", _labels(ws), "--out", folder / "s.txt"], [folder])
+
+
+@case("sample: --min-per-class -1", "sample", "minimum per class -1", "≥ 0")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", _labels(ws), "--out", folder / "s.gpkg", "--min-per-class", -1], [folder])
+
+
+@case("sample: --expected-accuracy 1.5", "sample", "user's accuracies", "between 0 and 1")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", _labels(ws), "--out", folder / "s.gpkg", "--expected-accuracy", 1.5], [folder])
+
+
+@case("sample: --chips without --image", "sample", "chips", "mapped image")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", _labels(ws), "--out", folder / "s.gpkg", "--chips", folder / "chips"], [folder])
+
+
+@case("sample: --out in an unwritable place", "sample", "s.gpkg", "cannot write here")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.unwritable(folder)
+    return Call(["sample", _labels(ws), "--out", out / "s.gpkg"], [folder, out])
+
+
+@case("assess: points without a reference class", "assess", "filled.csv", "no 'reference' class", "fill in")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(ws, folder, lambda rows: [{**r, "reference": ""} if i % 4 == 0 else r
+                                                                        for i, r in enumerate(rows)]))
+
+
+@case("assess: unknown reference class name", "assess", "filled.csv", "'marsh' is unknown", "ground")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(ws, folder, lambda rows: [{**rows[0], "reference": "marsh"},
+                                                                        *rows[1:]]))
+
+
+@case("assess: no reference field", "assess", "filled.csv", "no field 'reference'")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(ws, folder, fields=["point_id", "row", "col", "map_id"]))
+
+
+@case("assess: a mapped class without sample points", "assess", "filled.csv", "mapped pixels but 0 sample points")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(ws, folder, lambda rows: [r for r in rows if r["map_id"] != "1"]))
+
+
+@case("assess: map class differs from the label map", "assess", "filled.csv", "map_id", "same map")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(
+        ws, folder, lambda rows: [{**rows[0], "map_id": str((int(rows[0]["map_id"]) + 1) % 3)}, *rows[1:]]))
+
+
+@case("assess: point row not a whole number", "assess", "filled.csv", "row = 'x'", "whole number")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _assess(ws, folder, _filled_sample(ws, folder, lambda rows: [{**rows[0], "row": "x"}, *rows[1:]]))
+
+
+@case("assess: sample is not a GeoPackage", "assess", "junk.gpkg", "not a readable GPKG")
+def _(ws: Workspace, folder: Path) -> Call:
+    (folder / "junk.gpkg").write_bytes(b"\x00" * 300)
+    return _assess(ws, folder, folder / "junk.gpkg")
+
+
+@case("assess: counts file without a pixels column", "assess", "counts.csv", "'pixels'")
+def _(ws: Workspace, folder: Path) -> Call:
+    (folder / "counts.csv").write_text("id,name,area\n0,ground,5\n1,water,6\n2,roof,7\n")
+    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--json",
+                 folder / "a.json", "--csv", folder / "a.csv"], [folder])
+
+
+@case("assess: --json in an unwritable place", "assess", "a.json", "cannot write here")
+def _(ws: Workspace, folder: Path) -> Call:
+    out = ws.unwritable(folder)
+    sample = _filled_sample(ws, folder)
+    return Call(["assess", sample, "--labels", _labels(ws), "--json", out / "a.json", "--csv", folder / "a.csv"],
+                [folder, out])

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from sklearn import metrics as skm
 
-from fcnkit.metrics import confusion_matrix, segmentation_scores
+from fcnkit.metrics import bootstrap_mean_iou, confusion_matrix, segmentation_scores
 
 IGNORE = 255
 
@@ -77,3 +77,42 @@ def test_rejects_ids_out_of_range():
         confusion_matrix(np.zeros(3, np.uint8), np.array([0, 7, 1]), 3)
     with pytest.raises(ValueError, match="pixels"):
         confusion_matrix(np.zeros(3), np.zeros(4), 3)
+
+
+def _image_confusions(seed: int, images: int = 25, k: int = 4) -> np.ndarray:
+    """Per-image confusion matrices of a model whose accuracy varies from image to image."""
+    rng = np.random.default_rng(seed)
+    cms = []
+    for _ in range(images):
+        truth = rng.integers(0, k, 500)
+        wrong = rng.random(500) < rng.uniform(0.05, 0.5)
+        pred = np.where(wrong, rng.integers(0, k, 500), truth)
+        cms.append(confusion_matrix(truth, pred, k))
+    return np.stack(cms)
+
+
+def test_bootstrap_mean_iou_matches_scipy_percentile_bootstrap():
+    # reference: scipy.stats.bootstrap(method="percentile") resampling image indices, statistic = mean IoU of the
+    # summed confusion matrix; the two use different random draws, so the ends agree up to Monte Carlo error
+    from scipy.stats import bootstrap
+
+    cms = _image_confusions(1)
+    ours = bootstrap_mean_iou(cms, resamples=4000, seed=3)
+    ref = bootstrap(
+        (np.arange(len(cms)),), lambda idx: segmentation_scores(cms[idx].sum(axis=0))["mean_iou"],
+        vectorized=False, n_resamples=4000, method="percentile", confidence_level=0.95,
+        random_state=np.random.default_rng(4)).confidence_interval
+    width = ref.high - ref.low
+    assert width > 0.01
+    assert abs(ours["low"] - ref.low) < 0.1 * width and abs(ours["high"] - ref.high) < 0.1 * width
+    assert ours["mean_iou"] == segmentation_scores(cms.sum(axis=0))["mean_iou"]
+    assert ours["low"] < ours["mean_iou"] < ours["high"]
+    assert ours == bootstrap_mean_iou(cms, resamples=4000, seed=3)  # seeded
+
+
+def test_bootstrap_mean_iou_of_identical_images_is_a_point():
+    cms = np.repeat(_image_confusions(2, images=1), 6, axis=0)
+    r = bootstrap_mean_iou(cms, resamples=200)
+    assert r["low"] == pytest.approx(r["mean_iou"]) and r["high"] == pytest.approx(r["mean_iou"])
+    with pytest.raises(ValueError, match="N×K×K"):
+        bootstrap_mean_iou(np.zeros((3, 3)))
