@@ -349,6 +349,10 @@ def _assess(args: argparse.Namespace) -> int:
 
     if args.pixel_size is not None and not args.pixel_size > 0:
         raise FcnkitError(f"--pixel-size {args.pixel_size} (expected a positive number of metres)")
+    if args.report:  # before the work, not after
+        from fcnkit.export import check_destination
+
+        check_destination(args.report, FcnkitError)
     table = assess_sample(args.sample, labels=args.labels, counts=args.counts,
                           classes=load_classes(args.classes) if args.classes else None,
                           pixel_area_m2=args.pixel_size ** 2 if args.pixel_size is not None else None,
@@ -356,6 +360,11 @@ def _assess(args: argparse.Namespace) -> int:
                           max_pixels=args.max_pixels)
     print(format_assessment(table))
     print(f"json: {args.json}\ncsv: {args.csv}")
+    if args.report:
+        from fcnkit.report import write_assessment_report
+
+        facts = {"sample": str(args.sample), "map": str(args.labels or args.counts)}
+        print(f"report: {write_assessment_report(args.report, table, facts=facts)}")
     return 0
 
 
@@ -376,6 +385,7 @@ def _add_assess(sub: argparse._SubParsersAction) -> None:
                    help="field holding the reference class of each point (default reference)")
     p.add_argument("--json", default="assessment.json", metavar="FILE", help="default assessment.json")
     p.add_argument("--csv", default="assessment.csv", metavar="FILE", help="default assessment.csv")
+    p.add_argument("--report", metavar="FILE", help="also write a self-contained HTML report of the estimates")
     p.add_argument("--max-pixels", type=int, default=SEGMENT_MAX_PIXELS, metavar="N",
                    help=f"refuse maps with more pixels than this (default {SEGMENT_MAX_PIXELS})")
     p.set_defaults(run=_assess)

@@ -61,7 +61,9 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
     """Scores of a confusion matrix (see the module docstring).
 
     Returns ``pixel_accuracy``, ``mean_accuracy``, ``mean_iou``, ``fw_iou`` (floats, NaN when undefined) and
-    per-class lists ``accuracy``, ``iou``, ``dice`` (floats, NaN when undefined) and ``support`` (true pixels).
+    per-class lists ``accuracy`` (recall; producer's accuracy in remote sensing), ``precision`` (user's
+    accuracy), ``iou``, ``dice`` (floats, NaN when undefined), ``support`` (true pixels) and ``predicted``
+    (pixels predicted as the class).
     """
     cm = np.asarray(cm, dtype=np.float64)
     if cm.ndim != 2 or cm.shape[0] != cm.shape[1]:
@@ -71,6 +73,7 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
     pred = cm.sum(axis=0)
     total = truth.sum()
     acc = _ratio(hit, truth)
+    precision = _ratio(hit, pred)
     iou = _ratio(hit, truth + pred - hit)
     dice = _ratio(2 * hit, truth + pred)
     fw = float(np.nansum(truth * iou) / total) if total > 0 else float("nan")
@@ -80,9 +83,11 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
         "mean_iou": _nanmean(iou),
         "fw_iou": fw,
         "accuracy": acc.tolist(),
+        "precision": precision.tolist(),
         "iou": iou.tolist(),
         "dice": dice.tolist(),
         "support": [int(v) for v in truth],
+        "predicted": [int(v) for v in pred],
     }
 
 

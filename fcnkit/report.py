@@ -153,6 +153,35 @@ def _iou_chart(scores: dict[str, Any], classes: ClassTable) -> str:
     return _figure_uri(fig)
 
 
+def _reliability_chart(curves: Sequence[tuple[str, dict[str, Any], str]]) -> str:
+    """Reliability diagram: accuracy against mean confidence per confidence bin (Guo et al. 2017, figure 1),
+    one line per (label, Reliability.to_dict(), colour), bins with no pixels left out; the diagonal is
+    perfect calibration. Below it, the share of pixels in each bin."""
+    fig = Figure(figsize=(4.6, 4.8))
+    ax, hist = fig.subplots(2, 1, height_ratios=(3, 1), sharex=True)
+    ax.plot([0, 1], [0, 1], color="#9aa7ad", linewidth=1, linestyle="--", label="perfect calibration")
+    width = 1 / max(len(curves[0][1]["counts"]), 1)
+    for i, (label, rel, colour) in enumerate(curves):
+        pts = [(c, a) for c, a in zip(rel["confidence"], rel["accuracy"], strict=True) if c is not None]
+        if pts:
+            ax.plot(*zip(*pts, strict=True), marker="o", markersize=3.5, linewidth=1.5, color=colour, label=label)
+        share = np.asarray(rel["counts"], float) / max(sum(rel["counts"]), 1)
+        left = np.asarray(rel["edges"][:-1]) + i * width / len(curves)
+        hist.bar(left, share, width=width / len(curves), align="edge", color=colour, alpha=0.8)
+    ax.set_ylabel("accuracy in the bin")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1)
+    ax.legend(fontsize=7, frameon=False, loc="upper left")
+    ax.grid(alpha=0.3)
+    hist.set_xlabel("confidence (top-class probability)")
+    hist.set_ylabel("pixels", fontsize=8)
+    hist.yaxis.set_major_formatter(lambda v, _: f"{v:.0%}")
+    for a in (ax, hist):
+        a.spines[["top", "right"]].set_visible(False)
+    fig.tight_layout()
+    return _figure_uri(fig)
+
+
 def read_curves(path: str | Path) -> dict[str, list[float]]:
     """Numeric columns of a metrics CSV (one row per epoch), by header name."""
     path = Path(path)
@@ -170,7 +199,7 @@ def read_curves(path: str | Path) -> dict[str, list[float]]:
     return cols
 
 
-def _curves_chart(cols: dict[str, list[float]], classes: ClassTable) -> str | None:
+def _curves_chart(cols: dict[str, list[float]], classes: ClassTable, kept: int | None = None) -> str | None:
     x_name = next((n for n in ("epoch", "step") if n in cols), None)
     low = {n: n.lower() for n in cols}
     panels = [  # (title, prefix dropped from the legend, columns)
@@ -192,6 +221,8 @@ def _curves_chart(cols: dict[str, list[float]], classes: ClassTable) -> str | No
             rgb = class_rgb.get(label) if prefix == "iou_" else None
             ax.plot(x, cols[name], marker="o", markersize=3, linewidth=1.4, label=label,
                     color=None if rgb is None else tuple(c / 255 for c in rgb))
+        if kept is not None:
+            ax.axvline(kept, color=INK, linestyle=":", linewidth=1.2, label=f"kept: epoch {kept}")
         ax.set_title(title, fontsize=9, loc="left")
         ax.set_xlabel(x_name or "row")
         ax.xaxis.set_major_locator(MaxNLocator(integer=True))
@@ -242,20 +273,105 @@ def _summary_cards(scores: dict[str, Any]) -> str:
     return f'<div class="cards">{cards}</div>'
 
 
+def _bias(predicted: int, true: int) -> str:
+    return f"{predicted / true - 1:+.1%}" if true else "n/a"
+
+
 def _class_table(scores: dict[str, Any], classes: ClassTable) -> str:
-    support = scores["support"]
+    support, predicted = scores["support"], scores["predicted"]
     total = sum(support) or 1
     rows = []
     for i, (cid, name, color) in enumerate(zip(classes.ids, classes.names, classes.colors, strict=True)):
         sw = f'<span class="sw" style="background:rgb{tuple(color)}"></span>'
         rows.append(
             f'<tr data-class="{html.escape(name)}"><td class="name">{sw}{html.escape(name)}</td><td>{cid}</td>'
-            f'<td>{support[i]:,}</td><td>{support[i] / total:.1%}</td><td data-key="accuracy">'
-            f'{_fmt(scores["accuracy"][i])}</td><td data-key="iou">{_fmt(scores["iou"][i])}</td>'
-            f'<td data-key="dice">{_fmt(scores["dice"][i])}</td></tr>')
-    head = ('<tr><th class="name">class</th><th>id</th><th>true pixels</th><th>share</th><th>accuracy</th>'
-            '<th>IoU</th><th>Dice</th></tr>')
-    return f'<table id="per-class">{head}{"".join(rows)}</table>'
+            f'<td>{support[i]:,}</td><td>{support[i] / total:.1%}</td><td>{predicted[i]:,}</td>'
+            f'<td data-key="bias">{_bias(predicted[i], support[i])}</td>'
+            f'<td data-key="accuracy">{_fmt(scores["accuracy"][i])}</td>'
+            f'<td data-key="precision">{_fmt(scores["precision"][i])}</td>'
+            f'<td data-key="iou">{_fmt(scores["iou"][i])}</td><td data-key="dice">{_fmt(scores["dice"][i])}</td></tr>')
+    head = ('<tr><th class="name">class</th><th>id</th><th>true pixels</th><th>share</th><th>predicted pixels</th>'
+            '<th>bias</th><th>recall<br><small>producer\'s accuracy</small></th>'
+            '<th>precision<br><small>user\'s accuracy</small></th><th>IoU</th><th>Dice</th></tr>')
+    note = ('<p class="muted">Recall (producer\'s accuracy): the share of a class\'s true pixels predicted as it. '
+            'Precision (user\'s accuracy): the share of pixels predicted as a class that truly are. Bias: predicted '
+            '÷ true pixels − 1, how much a pixel count over- or under-states the class here.</p>')
+    return f'<table id="per-class">{head}{"".join(rows)}</table>{note}'
+
+
+def _images_html(images: Sequence[dict[str, Any]], interval: dict[str, Any] | None) -> str:
+    rows = "".join(f'<tr><td class="name">{html.escape(str(im["stem"]))}</td><td>{im["labelled_pixels"]:,}</td>'
+                   f'<td>{_fmt(im["pixel_accuracy"])}</td><td>{_fmt(im["mean_iou"])}</td></tr>' for im in images)
+    text = ""
+    if interval and interval.get("images", 0) > 1:
+        text = (f'<p>Mean IoU {_fmt(interval["mean_iou"])}, 95 % interval {_fmt(interval["low"])} – '
+                f'{_fmt(interval["high"])}: a percentile bootstrap resampling whole images '
+                f'({interval["resamples"]:,} resamples of {interval["images"]} images; Efron &amp; Tibshirani 1993). '
+                "Images, not pixels, are the units, as the pixels of one image are not independent. The interval "
+                "says how much the score could move with another set of images like these.</p>")
+    head = '<tr><th class="name">image</th><th>labelled pixels</th><th>pixel accuracy</th><th>mean IoU</th></tr>'
+    return f'{text}<table id="per-image">{head}{rows}</table>'
+
+
+def _calibration_html(cal: dict[str, Any]) -> str:
+    t = cal["temperature"]
+    curves = [("without temperature (T = 1)", cal["reliability_uncalibrated"], "#c9822b")]
+    if t != 1.0:
+        curves.append((f"with the model's temperature (T = {t:.3g})", cal["reliability"], ACCENT))
+    rows = [("here, with the model's temperature", cal["ece"]), ("here, without (T = 1)", cal["ece_uncalibrated"])]
+    fit = cal.get("fitted_in_training") or {}
+    if fit.get("fitted"):
+        rows += [("validation split in training, before", fit["ece_before"]),
+                 ("validation split in training, after", fit["ece_after"])]
+        how = (f"The temperature T = {t:.4g} was fitted after training on {fit['pixels']:,} labelled pixels of the "
+               "validation split, minimising their negative log-likelihood (temperature scaling, Guo et al. 2017); "
+               "it rescales every confidence and uncertainty map without changing any label.")
+    else:
+        how = f"No temperature was fitted ({html.escape(fit.get('note', 'the model file has none'))})."
+    table = "".join(f'<tr><td class="name">{html.escape(k)}</td><td>{_fmt(v)}</td></tr>' for k, v in rows)
+    return (f'<div class="charts">{_img(_reliability_chart(curves), "reliability diagram")}<div>'
+            f'<table id="calibration"><tr><th class="name">expected calibration error</th><th>ECE</th></tr>{table}'
+            f'</table><p class="muted">{how} ECE: the pixel-weighted gap between confidence and accuracy over 15 '
+            "equal-width confidence bins (Guo et al. 2017); 0 means a pixel mapped with confidence 0.8 is right "
+            "80 % of the time.</p></div></div>")
+
+
+def _interval_text(v: dict[str, Any], scale: float = 1.0, digits: int = 3) -> str:
+    if v is None or v.get("estimate") is None:
+        return "n/a"
+    low, high = (x * scale for x in v["ci95"])
+    return f"{v['estimate'] * scale:,.{digits}f} ± {1.96 * v['se'] * scale:,.{digits}f} ({low:,.{digits}f} – " \
+           f"{high:,.{digits}f})"
+
+
+def assessment_html(table: dict[str, Any]) -> str:
+    """An area and accuracy assessment (fcnkit.assessment.assessment_table) as an HTML section body."""
+    ha = table.get("pixel_area_m2") is not None
+    rows = []
+    for c in table["classes"]:
+        mapped = f"{c['mapped_area_m2'] / 1e4:,.2f} ha" if ha else f"{c['mapped_pixels']:,} px"
+        big = ha and c["area"]["ha"]["estimate"] is not None and abs(c["area"]["ha"]["estimate"]) >= 100
+        area = _interval_text(c["area"]["ha"], digits=0 if big else 2) + " ha" if ha else \
+            _interval_text(c["area"]["pixels"], digits=0) + " px"
+        rows.append(f'<tr><td class="name">{html.escape(c["name"])}</td><td>{mapped}</td><td>{c["sample_points"]}</td>'
+                    f'<td>{_interval_text(c["users_accuracy"])}</td><td>{_interval_text(c["producers_accuracy"])}</td>'
+                    f"<td>{area}</td></tr>")
+    head = ("<tr><th class=\"name\">class</th><th>mapped area</th><th>sample points</th><th>user's accuracy</th>"
+            "<th>producer's accuracy</th><th>error-adjusted area, 95 % interval</th></tr>")
+    names = [c["name"] for c in table["classes"]]
+    matrix = "".join("<tr><td class=\"name\">" + html.escape(n) + "</td>" + "".join(
+        f"<td>{v:.4f}</td>" for v in row) + "</tr>" for n, row in zip(names, table["error_matrix_proportions"],
+                                                                      strict=True))
+    matrix_head = "<tr><th class=\"name\">map \\ reference</th>" + "".join(
+        f"<th>{html.escape(n)}</th>" for n in names) + "</tr>"
+    total = f"{table['total_area_m2'] / 1e4:,.2f} ha" if ha else f"{table['total_pixels']:,} px"
+    return (f"<p>Overall accuracy {_interval_text(table['overall_accuracy'])} from {table['sample_points']:,} "
+            f"reference points over {total}; estimate ± 1.96 SE (95 % interval).</p>"
+            f'<table id="assessment">{head}{"".join(rows)}</table>'
+            f'<p class="muted">Error matrix in estimated area proportions (rows: map class, columns: reference '
+            f'class):</p><table id="error-matrix">{matrix_head}{matrix}</table>'
+            f'<p class="muted">{html.escape(table["method"])}. Areas counted from the map alone are biased by its '
+            "errors; the error-adjusted areas correct them with the reference sample.</p>")
 
 
 def _examples_html(examples: Sequence[Example], classes: ClassTable) -> str:
@@ -295,45 +411,77 @@ def json_safe(value: Any) -> Any:
 
 def render_report(scores: dict[str, Any], cm: np.ndarray, classes: ClassTable, *, title: str = "Segmentation report",
                   facts: dict[str, str] | None = None, curves: str | Path | None = None,
-                  examples: Sequence[Example] = (), description: dict[str, Any] | None = None) -> str:
+                  examples: Sequence[Example] = (), description: dict[str, Any] | None = None,
+                  images: Sequence[dict[str, Any]] = (), interval: dict[str, Any] | None = None,
+                  calibration: dict[str, Any] | None = None, kept_epoch: int | None = None,
+                  assessment: dict[str, Any] | None = None) -> str:
     """The report as one HTML string (see the module docstring).
 
     ``scores`` is :func:`fcnkit.metrics.segmentation_scores` of ``cm``; ``facts`` are short label → value
-    lines for the header (model, data, images…); ``curves`` a training metrics CSV; ``description`` the
-    output of :func:`fcnkit.describe`.
+    lines for the header (model, data, images…); ``curves`` a training metrics CSV (``kept_epoch`` marked on
+    it); ``description`` the output of :func:`fcnkit.describe`; ``images`` per-image scores with ``interval``
+    (:func:`fcnkit.metrics.bootstrap_mean_iou`); ``calibration`` the reliability of the confidences
+    (:class:`fcnkit.evaluate.Evaluation`); ``assessment`` an area and accuracy assessment from a reference
+    sample (:func:`fcnkit.assessment.assessment_table`).
     """
     from fcnkit.describe import format_description
 
     cm = np.asarray(cm)
     scores = json_safe(scores)
-    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
-    fact_line = " · ".join(f"{html.escape(k)}: {html.escape(str(v))}" for k, v in (facts or {}).items())
     parts = [
-        f'<header><h1>{html.escape(title)}</h1><p>{fact_line}</p><p>written {when}</p></header><main>',
+        _header(title, facts),
         f'<section><h2>Scores</h2>{_summary_cards(scores)}<p class="muted">Over {int(cm.sum()):,} labelled '
         "pixels; unlabelled (ignore) pixels are not counted. Definitions: Long, Shelhamer &amp; Darrell 2015, "
         "section 5.</p></section>",
         f"<section><h2>Per class</h2>{_class_table(scores, classes)}</section>",
+        *([f"<section><h2>Per image</h2>{_images_html(images, interval)}</section>"] if images else []),
+        *([f"<section><h2>Calibration of the confidences</h2>{_calibration_html(json_safe(calibration))}</section>"]
+          if calibration else []),
         f'<section><h2>Where the errors are</h2><div class="charts">'
         f'{_img(_confusion_chart(cm, classes.names), "confusion matrix")}'
         f'{_img(_iou_chart(scores, classes), "per-class IoU")}</div></section>',
     ]
-    chart = _curves_chart(read_curves(curves), classes) if curves else None
+    chart = _curves_chart(read_curves(curves), classes, kept_epoch) if curves else None
     if chart:
         parts.append(f'<section><h2>Training</h2>{_img(chart, "training curves")}'
                      f'<p class="muted">From {html.escape(str(curves))}.</p></section>')
     if examples:
         parts.append(f"<section><h2>Worst-scoring examples</h2>{_examples_html(examples, classes)}</section>")
+    if assessment:
+        parts.append(f"<section><h2>Accuracy and area estimates from a reference sample</h2>"
+                     f"{assessment_html(json_safe(assessment))}</section>")
     if description:
         parts.append(f"<section><h2>The net</h2><pre>{html.escape(format_description(description))}</pre>"
                      "</section>")
     parts.append(f'<section class="caution"><h2>Cautions</h2><p>{CAUTION}</p></section></main>')
-    payload = {"scores": scores, "confusion_matrix": cm.astype(int).tolist(), "classes": list(classes.names),
-               "facts": facts or {}}
-    body = "".join(parts) + _json_block(payload)
+    payload = json_safe({"scores": scores, "confusion_matrix": cm.astype(int).tolist(),
+                         "classes": list(classes.names), "facts": facts or {}, "images": list(images),
+                         "mean_iou_interval": interval, "calibration": calibration, "assessment": assessment})
+    return _page(title, "".join(parts) + _json_block(payload))
+
+
+def _page(title: str, body: str) -> str:
     return (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title>'
             f'<meta name="viewport" content="width=device-width,initial-scale=1"><style>{_CSS}</style></head>'
             f"<body>{body}</body></html>\n")
+
+
+def _header(title: str, facts: dict[str, str] | None) -> str:
+    when = datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC")
+    fact_line = " · ".join(f"{html.escape(k)}: {html.escape(str(v))}" for k, v in (facts or {}).items())
+    return f'<header><h1>{html.escape(title)}</h1><p>{fact_line}</p><p>written {when}</p></header><main>'
+
+
+def write_assessment_report(path: str | Path, table: dict[str, Any], *, title: str = "Accuracy and area assessment",
+                            facts: dict[str, str] | None = None) -> Path:
+    """A report of an area and accuracy assessment alone (fcnkit.assessment.assessment_table), atomically."""
+    path = Path(path)
+    body = (_header(title, facts) + f"<section><h2>Accuracy and area estimates from a reference sample</h2>"
+            f"{assessment_html(json_safe(table))}</section>"
+            f'<section class="caution"><h2>Cautions</h2><p>{CAUTION}</p></section></main>'
+            + _json_block(json_safe({"assessment": table, "facts": facts or {}})))
+    write_text_atomic(path, _page(title, body))
+    return path
 
 
 def write_report(path: str | Path, scores: dict[str, Any], cm: np.ndarray, classes: ClassTable,

@@ -85,6 +85,7 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
             result = _loop(run, stop, progress)
         model.net.load_state_dict(run.best_state)
         model.eval()
+        _calibrate(run)
         return result
     finally:
         torch.set_num_threads(threads)
@@ -135,6 +136,8 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
         model._make_net(images[0].shape[2], classes.num_classes)
     if model.path is not None:  # fine-tuning a model file: the run records where it started
         model.extra = {**model.extra, "init": str(model.path)}
+    trained_on = str(Path(data).resolve()) if isinstance(data, (str, Path)) else f"{len(images)} image arrays"
+    model.extra = {**model.extra, "trained_on": trained_on}
     _check_fits(model, images, classes)
     _check_memory(model, t)
     if group.main:
@@ -335,38 +338,112 @@ def _blocks(n: int, block: int, margin: int) -> Iterator[tuple[int, int, int, in
         yield max(start - margin, 0), min(stop + margin, n), start, stop
 
 
-def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
-             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
-             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
-    """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
-    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights).
-
-    Images up to ``block`` × ``block`` pixels go through the model in one piece. Larger ones are cut into
-    blocks, each run with ``margin`` pixels of context on every side and cropped back, so memory stays bounded;
-    with the net's tile margin as ``margin`` the blocks give the whole-image result."""
-    k, ignore = model.num_classes, model.classes.ignore
+def _scored_blocks(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *, margin: int = 0,
+                   block: int = 1024, channels_last: bool = False) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
+    """(logits 1×C×h×w, labels 1×h×w) of every image, in blocks: images up to ``block`` × ``block`` pixels go
+    through the model in one piece; larger ones are cut into blocks, each run with ``margin`` pixels of context
+    on every side and cropped back, so memory stays bounded. With the net's tile margin as ``margin`` the
+    blocks give the whole-image result."""
     factor = model.plan.factor
     block = max(factor, block // factor * factor)
     margin = -(-margin // factor) * factor  # block and read origins stay on the net's pooling grid
     fmt = torch.channels_last if channels_last else torch.contiguous_format
-    cm = np.zeros((k, k), np.int64)
-    ce = norm = 0.0
     was_training = model.training
     model.eval()
-    with torch.inference_mode():
-        for image, mask in zip(images, masks, strict=True):
-            h, w = mask.shape
-            for y0, y1, ky0, ky1 in _blocks(h, block, margin):
-                for x0, x1, kx0, kx1 in _blocks(w, block, margin):
-                    x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
-                    logits = model(x.unsqueeze(0).contiguous(memory_format=fmt))
-                    logits = logits[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0]
-                    target = torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0)
-                    total, n = pixel_cross_entropy(logits, target, weight, ignore)
-                    ce, norm = ce + total.item(), norm + n.item()
-                    cm += confusion_matrix(target, logits.argmax(1), k, ignore)
-    model.train(was_training)
+    try:
+        with torch.inference_mode():
+            for image, mask in zip(images, masks, strict=True):
+                h, w = mask.shape
+                for y0, y1, ky0, ky1 in _blocks(h, block, margin):
+                    for x0, x1, kx0, kx1 in _blocks(w, block, margin):
+                        x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
+                        logits = model(x.unsqueeze(0).contiguous(memory_format=fmt))
+                        yield (logits[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0],
+                               torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0))
+    finally:
+        model.train(was_training)
+
+
+def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
+             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
+             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
+    """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
+    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights)."""
+    k, ignore = model.num_classes, model.classes.ignore
+    cm = np.zeros((k, k), np.int64)
+    ce = norm = 0.0
+    for logits, target in _scored_blocks(model, images, masks, margin=margin, block=block,
+                                         channels_last=channels_last):
+        total, n = pixel_cross_entropy(logits, target, weight, ignore)
+        ce, norm = ce + total.item(), norm + n.item()
+        cm += confusion_matrix(target, logits.argmax(1), k, ignore)
     return cm, ce, norm
+
+
+CALIBRATION_PIXELS = 200_000  # labelled validation pixels each process keeps for fitting the temperature
+
+
+def _calibrate(run: _Run) -> None:
+    """Fit the temperature of softmax(logits / T) on the validation split (Guo et al. 2017), once per run:
+    the best model's logits on a seeded sample of labelled validation pixels, pooled over every process. The
+    fit, and the reliability of the confidences before and after, go into the model and its file."""
+    from fcnkit.calibration import fit_temperature, reliability, scaled_softmax
+
+    model, t, p, g = run.model, run.t, run.p, run.group
+    if "calibration" not in p:
+        if not (t.calibrate and run.has_val):
+            reason = "train.calibrate is false" if not t.calibrate else "no validation split"
+            p["calibration"] = {"temperature": 1.0, "fitted": False, "note": f"not calibrated: {reason}"}
+        elif not len((pixels := _validation_pixels(run))[1]):
+            p["calibration"] = {"temperature": 1.0, "fitted": False,
+                                "note": "not calibrated: no labelled validation pixels"}
+        else:
+            logits, labels = pixels
+            fit = fit_temperature(logits, labels, axis=1, ignore=None, max_pixels=len(labels), seed=t.seed)
+            before = reliability(scaled_softmax(logits, 1.0, axis=1), labels, axis=1, ignore=None)
+            after = reliability(scaled_softmax(logits, fit.temperature, axis=1), labels, axis=1, ignore=None)
+            p["calibration"] = {"temperature": fit.temperature, "fitted": True, "pixels": fit.pixels,
+                                "nll_before": fit.nll_before, "nll_after": fit.nll_after, "at_bound": fit.at_bound,
+                                "ece_before": before.ece, "ece_after": after.ece,
+                                "reliability_before": before.to_dict(), "reliability_after": after.to_dict(),
+                                "method": "temperature scaling on the validation split (Guo et al. 2017); "
+                                          "ECE over 15 equal-width confidence bins"}
+        model.temperature = p["calibration"]["temperature"]
+        model.extra = {**model.extra, "calibration": p["calibration"]}
+        if g.main and (run.run_dir / runstate.MODEL_FILE).exists():
+            model.save(run.run_dir / runstate.MODEL_FILE)
+        _save_resume(run)
+    else:  # a finished run resumed: the fit it recorded
+        model.temperature = p["calibration"]["temperature"]
+        model.extra = {**model.extra, "calibration": p["calibration"]}
+
+
+def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
+    """The best model's logits (N×C) and labels (N) at up to CALIBRATION_PIXELS labelled validation pixels per
+    process, a seeded random choice, pooled over every process (ignored pixels labelled −1)."""
+    model, g = run.model, run.group
+    ignore = model.classes.ignore
+    labelled = sum(int((m != ignore).sum()) for m in run.val_masks)
+    keep = min(1.0, CALIBRATION_PIXELS / max(labelled, 1))
+    rng = np.random.default_rng(run.t.seed + g.rank)
+    parts_x, parts_y = [], []
+    for logits, target in _scored_blocks(model, run.val_images, run.val_masks, margin=run.margin):
+        z = logits[0].flatten(1).T.numpy()
+        y = target[0].flatten().numpy()
+        chosen = (y != ignore) & (rng.random(y.shape) < keep)
+        parts_x.append(z[chosen])
+        parts_y.append(y[chosen])
+    k = model.num_classes
+    x = np.concatenate(parts_x) if parts_x else np.zeros((0, k), np.float32)
+    y = np.concatenate(parts_y) if parts_y else np.zeros(0, np.int64)
+    if g.world > 1:  # equal shapes for the exchange: pad with ignored rows, dropped afterwards
+        size = int(parallel.all_sum(g, torch.tensor([float(len(y))]), op="max").item())
+        x = np.concatenate([x, np.zeros((size - len(y), k), np.float32)])
+        y = np.concatenate([y, np.full(size - len(y), -1, np.int64)])
+        x = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(x))])
+        y = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(y))])
+        x, y = x[y >= 0], y[y >= 0]
+    return x.astype(np.float32), y
 
 
 def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,

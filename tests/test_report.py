@@ -12,7 +12,14 @@ from html.parser import HTMLParser
 import numpy as np
 import pytest
 from PIL import Image
-from sklearn.metrics import accuracy_score, balanced_accuracy_score, f1_score, jaccard_score, recall_score
+from sklearn.metrics import (
+    accuracy_score,
+    balanced_accuracy_score,
+    f1_score,
+    jaccard_score,
+    precision_score,
+    recall_score,
+)
 
 from fcnkit.data.classes import ClassInfo, ClassTable
 from fcnkit.metrics import confusion_matrix, segmentation_scores
@@ -94,12 +101,16 @@ def test_report_scores_equal_scikit_learn():
     }
     per_class = {
         "accuracy": recall_score(t, p, labels=labels, average=None),
+        "precision": precision_score(t, p, labels=labels, average=None, zero_division=0),
         "iou": jaccard_score(t, p, labels=labels, average=None),
         "dice": f1_score(t, p, labels=labels, average=None),
     }
     shown: dict[str, list[float]] = {}
-    for key, text in page.keyed:
-        shown.setdefault(key, []).append(float(text))
+    for key, text in page.keyed:  # bias is a signed percentage
+        shown.setdefault(key, []).append(float(text.rstrip("%")) / 100 if key == "bias" else float(text))
+    # bias = predicted / true pixels − 1 (counted here with numpy)
+    bias = np.bincount(p, minlength=4) / np.bincount(t, minlength=4) - 1
+    assert shown.pop("bias") == pytest.approx(list(bias), abs=5e-4)
     for key, value in ref.items():  # the table shows four decimals
         assert shown[key] == [pytest.approx(value, abs=5e-5)]
     for key, values in per_class.items():
@@ -167,3 +178,41 @@ def test_undefined_scores_show_as_not_available_and_null():
     iou = [v for k, v in page.keyed if k == "iou"]
     assert iou[3] == "n/a" and iou[0] != "n/a"
     assert json.loads(page.json)["scores"]["iou"][3] is None  # strict JSON has no NaN
+
+
+def test_calibration_intervals_and_assessment_sections():
+    """The report carries the reliability diagram and ECE, the per-image bootstrap interval, the kept epoch
+    and an area assessment; the numbers shown are those given, in the units a reader reports."""
+    from fcnkit.assessment import assessment_table
+    from fcnkit.calibration import reliability
+    from fcnkit.metrics import bootstrap_mean_iou
+
+    truth, pred = _predictions()
+    cm = confusion_matrix(truth, pred, 4)
+    rng = np.random.default_rng(0)
+    probs = rng.dirichlet(np.ones(4), size=truth.shape).transpose(2, 0, 1)
+    cal = {"temperature": 1.7, "ece": 0.02, "ece_uncalibrated": 0.09,
+           "reliability": reliability(probs, truth).to_dict(),
+           "reliability_uncalibrated": reliability(probs ** 2 / (probs ** 2).sum(0), truth).to_dict(),
+           "fitted_in_training": {"fitted": True, "pixels": 12345, "ece_before": 0.1, "ece_after": 0.03}}
+    per_image = np.stack([confusion_matrix(truth[i::3], pred[i::3], 4) for i in range(3)])
+    interval = bootstrap_mean_iou(per_image, resamples=200)
+    images = [{"stem": f"img{i}", "labelled_pixels": int(c.sum()), "pixel_accuracy": 0.5, "mean_iou": 0.4}
+              for i, c in enumerate(per_image)]
+    # the worked example of Olofsson et al. 2014 (values given in issue 11): 30 m pixels
+    table = assessment_table([[66, 0, 5, 4], [0, 55, 8, 12], [1, 0, 153, 11], [2, 1, 9, 313]],
+                             [200_000, 150_000, 3_200_000, 6_450_000],
+                             names=["deforestation", "forest gain", "stable forest", "stable non-forest"],
+                             pixel_area_m2=900.0)
+    page = _parse(render_report(segmentation_scores(cm), cm, CLASSES, calibration=cal, images=images,
+                                interval=interval, assessment=table))
+    text = " ".join(" ".join(page.text).split())
+    for phrase in ("Calibration of the confidences", "T = 1.7", "12,345 labelled pixels", "Per image",
+                   "bootstrap", "Accuracy and area estimates", "deforestation", "producer's accuracy"):
+        assert phrase in text, phrase
+    assert "21,158" in text and "6,158" in text  # the paper's deforestation area, ha ± 95 % half-width
+    assert len(page.imgs) == 3  # confusion matrix, IoU bars, reliability diagram
+    payload = json.loads(page.json)
+    assert payload["assessment"]["overall_accuracy"]["estimate"] == pytest.approx(table["overall_accuracy"]
+                                                                                  ["estimate"])
+    assert payload["calibration"]["temperature"] == 1.7
