@@ -92,7 +92,7 @@ def _score_map(labels_path: Path, truth_path: Path, num_classes: int, ignore: in
     from fcnkit.data.raster import open_raster
     from fcnkit.metrics import confusion_matrix, segmentation_scores
 
-    pred, truth = open_raster(labels_path, None), open_raster(truth_path, None)
+    pred, truth = open_raster(labels_path, None, indices=True), open_raster(truth_path, None, indices=True)
     try:
         h, w, _ = truth.shape
         cm = np.zeros((num_classes, num_classes), np.int64)

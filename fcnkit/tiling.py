@@ -28,8 +28,9 @@ import time
 import weakref
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import torch
@@ -39,6 +40,9 @@ from fcnkit.data.raster import SEGMENT_MAX_PIXELS, ArrayRaster, Raster
 from fcnkit.errors import ConfigError
 from fcnkit.rowstream import NotStreamable, RowStreamer
 from fcnkit.windows import check_window, window
+
+if TYPE_CHECKING:
+    from fcnkit.outputs import OutputOptions
 
 Engine = Callable[[torch.Tensor], torch.Tensor]
 IN_MEMORY_PIXELS = 4_000_000  # segment keeps the 8-bit maps of smaller images in memory, of larger ones on disk
@@ -507,6 +511,8 @@ class SegmentResult:
     paths: dict[str, Path]
     areas: list[dict]
     size: tuple[int, int] = (0, 0)  # height, width
+    nodata_pixels: int = 0  # pixels the input marks as nodata, left out of every output and of the areas
+    notes: list[str] = field(default_factory=list)  # one line each: nodata met, areas unknown
 
 
 def _as_loaded(model_or_path: object):
@@ -548,12 +554,14 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
                   window: str | None = None, exact: bool = False,
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
                   max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
-                  engine: Engine | str | None = None, preview: int = 1024) -> SegmentResult:
+                  engine: Engine | str | None = None, preview: int = 1024,
+                  outputs: OutputOptions | None = None) -> SegmentResult:
     """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
 
     ``model_or_path`` is a model file, a :class:`~fcnkit.modelfile.LoadedModel` or a bare module. Writes
     ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG, or TIFF for TIFF inputs and large images),
-    ``STEM.overlay`` and ``STEM.areas.csv``/``.json``. Class scores stream from the tiles straight into the
+    ``STEM.overlay`` and ``STEM.areas.csv``/``.json`` (and ``STEM.polygons`` when ``outputs`` asks for them;
+    see :class:`fcnkit.outputs.OutputOptions`). Class scores stream from the tiles straight into the
     8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
     there and only then moved to its final name, so a run that is stopped leaves no output at all for the image
     rather than some of them.
@@ -561,7 +569,7 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
     import shutil
     import tempfile
 
-    from fcnkit.data.raster import open_raster
+    from fcnkit.data.raster import alpha_hint, open_raster
     from fcnkit.errors import DataError
     from fcnkit.outputs import write_outputs
 
@@ -575,20 +583,22 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
     try:
         height, width, bands = raster.shape
         if bands != len(loaded.meta.mean):
-            raise DataError(f"{image_path}: has {bands} bands but the model expects {len(loaded.meta.mean)}")
+            raise DataError(f"{image_path}: has {bands} bands but the model expects {len(loaded.meta.mean)}"
+                            + alpha_hint(raster))
+        raster.fill = loaded.meta.mean  # nodata pixels reach the net as the training mean: neutral inputs
         scores = tiled_scores(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, scan=scan,
                               tile=tile, overlap=overlap, batch=batch, window=window, exact=exact, tta=tta,
                               logits=False, bf16=bf16, engine=engine, progress=progress, desc=image_path.name)
         done = work / "done"
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
-        paths, areas = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, loaded.meta.classes,
-                                     done, image_path.stem, work=work if large else None, pixel_size=pixel_size,
-                                     preview=preview)
-        final = {k: out_dir / p.name for k, p in paths.items()}
-        for k, p in paths.items():  # renames within one file system: each is atomic, all follow at once
+        written = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, loaded.meta.classes,
+                                done, image_path.stem, work=work if large else None, pixel_size=pixel_size,
+                                preview=preview, options=outputs)
+        final = {k: out_dir / p.name for k, p in written.paths.items()}
+        for k, p in written.paths.items():  # renames within one file system: each is atomic, all follow at once
             p.replace(final[k])
-        return SegmentResult(final, areas, (height, width))
+        return SegmentResult(final, written.areas, (height, width), written.nodata_pixels, written.notes)
     finally:
         raster.close()
         shutil.rmtree(work, ignore_errors=True)
@@ -652,6 +662,8 @@ def segment_images(model_or_path: object, inputs: Sequence[str | Path], out_dir:
         if echo is not None:
             h, w = res.size
             echo(f"{path}: {w}x{h} mapped in {time.perf_counter() - start:.1f} s -> {res.paths['labels']}")
+            for note in res.notes:
+                echo(f"{path}: {note}")
         results.append(res)
     return results
 
