@@ -60,7 +60,7 @@ class PixelArea:
     def _cell_area(self, col: float, row: float) -> float:
         """Geodesic area (m²) of the cell of pixel (col, row): its four corners joined by geodesics."""
         t, k = self._transform, self._degrees_per_unit
-        corners = [t * (col + dx, row + dy) for dx, dy in ((0, 0), (1, 0), (1, 1), (0, 1))]
+        corners = [t @ (col + dx, row + dy) for dx, dy in ((0, 0), (1, 0), (1, 1), (0, 1))]
         lons = [x * k for x, _ in corners]
         lats = [y * k for _, y in corners]
         area, _ = self._geod.polygon_area_perimeter(lons, lats)  # signed by orientation
@@ -80,15 +80,6 @@ class PixelArea:
         m = a * (1 - e2) / (1 - e2 * s2) ** 1.5
         det_deg2 = abs(t.a * t.e - t.b * t.d) * k * k
         return det_deg2 * (math.pi / 180) ** 2 * m * n * np.cos(lat)
-
-    def total(self, height: int, width: int) -> float | None:
-        """Ground area of the whole grid (m²); None when unknown."""
-        if self.kind == "unknown":
-            return None
-        if self.kind == "constant":
-            return self.constant_m2 * height * width
-        return float(sum(np.broadcast_to(self.rows(y, min(y + 256, height), width), (min(256, height - y), width))
-                         .sum() for y in range(0, height, 256)))
 
 
 def pixel_area(crs: Any, transform: Affine | None, *, pixel_size: float | tuple[float, float] | None = None,
@@ -164,7 +155,7 @@ def _areal_scale(c: pyproj.CRS, transform: Affine, size: tuple[int, int] | None)
     if size is None:
         return None
     try:
-        x, y = transform * (size[1] / 2, size[0] / 2)
+        x, y = transform @ (size[1] / 2, size[0] / 2)
         lon, lat = pyproj.Transformer.from_crs(c, c.geodetic_crs, always_xy=True).transform(x, y)
         scale = pyproj.Proj(c).get_factors(lon, lat).areal_scale
     except (pyproj.exceptions.ProjError, pyproj.exceptions.CRSError, TypeError, ValueError):
