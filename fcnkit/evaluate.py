@@ -26,8 +26,8 @@ from torch import nn
 
 from fcnkit.atomic import write_text_atomic
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
+from fcnkit.data.dataset import Sample, find_samples, sample_mask
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError
@@ -161,9 +161,7 @@ def _score_one(loaded: LoadedModel, sample: Sample, classes: ClassTable, setting
         h, w, bands = raster.shape
         if bands != len(loaded.meta.mean):
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {len(loaded.meta.mean)}")
-        mask = read_mask(sample.mask, classes, max_pixels)
-        if mask.shape != (h, w):
-            raise DataError(f"{sample.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image is {w}x{h}")
+        mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
         probs = predict_scores(loaded.model, raster, mean=loaded.meta.mean, std=loaded.meta.std, engine=engine,
                                progress=progress, **settings)
         cm = np.zeros((k, k), np.int64)

@@ -198,6 +198,8 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
     geo = raster.geo
     as_tiff = not png_outputs(raster)
     area = _areas(raster, pixel_size)
+    if options.polygons is not None and options.min_area_m2 > 0 and not area.known:  # before any inference
+        raise ConfigError(f"min_area: needs pixel areas, but {area.reason}")
     names = output_names(stem, as_tiff, options.polygons)
     maps = {k: RowStore((height, width), np.uint8, work, k) for k in ("labels", "confidence", "uncertainty")}
     valid_store = RowStore((height, width), np.uint8, work, "valid") if raster.masked else None

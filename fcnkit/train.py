@@ -29,10 +29,10 @@ from tqdm import tqdm
 
 from fcnkit import geometry, parallel, runstate
 from fcnkit.config import Config, config_from_dict, config_to_dict
-from fcnkit.data.dataset import Sample, band_stats, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_image, read_mask
+from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.patches import PatchDataset
-from fcnkit.errors import ConfigError, DataError
+from fcnkit.errors import ConfigError
 from fcnkit.evaluate import evaluate_images
 from fcnkit.losses import median_frequency_weights, segmentation_loss
 from fcnkit.metrics import segmentation_scores
@@ -268,15 +268,11 @@ def _read(samples: list[Sample], classes: Any, bands: int,
           max_pixels: int | None = DEFAULT_MAX_PIXELS) -> tuple[list[np.ndarray], list[np.ndarray]]:
     images, masks = [], []
     for s in samples:
-        image = read_image(s.image, max_pixels)
-        if image.shape[2] != bands:
-            raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
-        mask = read_mask(s.mask, classes, max_pixels)
-        if mask.shape != image.shape[:2]:
-            raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
-                            f"{image.shape[1]}x{image.shape[0]} (expected the same size)")
-        images.append(image)
-        masks.append(mask)
+        sample = read_sample(s, classes, max_pixels)  # masks or vector labels; nodata pixels unlabelled
+        if sample.image.shape[2] != bands:
+            raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {sample.image.shape[2]}")
+        images.append(sample.image)
+        masks.append(sample.mask)
     return images, masks
 
 

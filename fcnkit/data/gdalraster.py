@@ -29,6 +29,8 @@ from rasterio.windows import Window
 from fcnkit.data.raster import GeoRef, check_finite, check_pixel_limit, fill_invalid, supported_dtype
 from fcnkit.errors import DataError
 
+MAX_BANDS = 2048
+
 
 def _gdal() -> contextlib.AbstractContextManager:
     """GDAL's messages go to rasterio's error handler (hence to exceptions and logging) only inside a rasterio
@@ -54,7 +56,8 @@ class GdalRaster:
                 warnings.simplefilter("ignore", NotGeoreferencedWarning)
                 self._ds = rasterio.open(self.path)
         except Exception as e:  # rasterio raises RasterioIOError and GDAL's CPLE_* errors, by cause
-            raise DataError(f"{self.path}: not a readable {_kind(self.path)} ({_one_line(e, self.path)})") from None
+            raise DataError(f"{self.path}: not a readable {_kind(self.path)} ({_one_line(e, self.path)}; expected an "
+                            "image GDAL can open, with at least one pixel and one band)") from None
         try:
             with _gdal():
                 self._open(max_pixels, indices)
@@ -76,6 +79,8 @@ class GdalRaster:
         if ds.count == 0 or ds.width == 0 or ds.height == 0:
             raise DataError(f"{path}: image has no pixels ({ds.width}x{ds.height}, {ds.count} bands; expected at "
                             "least one pixel and one band)")
+        if ds.count > MAX_BANDS:  # GDAL's per-band bookkeeping grows with the square of the band count
+            raise DataError(f"{path}: {ds.count} bands (fcnkit reads images of at most {MAX_BANDS} bands)")
         kinds = {np.dtype(d).kind for d in ds.dtypes}
         if not kinds <= set("buif"):
             raise DataError(f"{path}: pixel type {ds.dtypes[0]} (expected integers or real floats)")

@@ -18,7 +18,7 @@ from PIL import Image
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import open_raster, read_whole
+from fcnkit.data.raster import GeoRef, open_raster, read_whole
 from fcnkit.errors import DataError
 
 DEFAULT_MAX_PIXELS = 2**27
@@ -37,6 +37,13 @@ def read_image(path: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXELS) ->
 def read_image_valid(path: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXELS,
                      ) -> tuple[np.ndarray, np.ndarray | None]:
     """The image (as :func:`read_image`) and its validity mask (H×W bool, True = data; None: all valid)."""
+    image, valid, _ = read_image_geo(path, max_pixels)
+    return image, valid
+
+
+def read_image_geo(path: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+                   ) -> tuple[np.ndarray, np.ndarray | None, GeoRef | None]:
+    """The image, its validity (see :func:`read_image_valid`) and its georeferencing (None: none)."""
     raster = open_raster(path, max_pixels)
     try:
         image, valid = read_whole(raster)
@@ -47,7 +54,7 @@ def read_image_valid(path: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXE
         if image.dtype.kind in "ui":
             mean = np.rint(mean)
         image[~valid] = mean.astype(image.dtype)
-    return image, valid
+    return image, valid, raster.geo
 
 
 def image_shape(path: str | Path) -> tuple[int, int, int]:
