@@ -16,6 +16,7 @@ name a CRS by EPSG code: for a CRS without one (a local grid) use the GeoPackage
 
 from __future__ import annotations
 
+import json
 import os
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -49,6 +50,10 @@ class Region:
     area_m2: float = 0.0
     confidence: float = 0.0  # sum of confidence bytes
 
+    def polygon(self) -> shapely.Polygon:
+        """The region as one polygon in pixel coordinates (its pieces joined; see :func:`_union`)."""
+        return _union(self.parts)
+
     def absorb(self, other: Region) -> None:
         self.parts += other.parts
         self.pixels += other.pixels
@@ -57,9 +62,11 @@ class Region:
 
 
 def class_regions(labels: RowStore, confidence: RowStore | None, valid: RowStore | None, classes: ClassTable,
-                  area: PixelArea, band_rows: int = BAND_ROWS) -> Iterator[Region]:
+                  area: PixelArea, band_rows: int = BAND_ROWS, min_area_m2: float = 0.0) -> Iterator[Region]:
     """Every 4-connected region of one class in the label map (pixels with ids outside the classes, or invalid,
-    belong to none), each as soon as it is complete, with its polygons in pixel coordinates."""
+    belong to none), each as soon as it is complete, with its polygons in pixel coordinates. Regions lying in
+    one band with less than ``min_area_m2`` are dropped before they are traced (the others are filtered by the
+    caller, once complete)."""
     from rasterio.features import shapes
 
     height, width = labels.shape
@@ -92,9 +99,19 @@ def class_regions(labels: RowStore, confidence: RowStore | None, valid: RowStore
         rows_area = area.rows(y0, y1, width)
         sums = (np.bincount(flat, weights=np.broadcast_to(rows_area, lab.shape).ravel(), minlength=n + 1)
                 if rows_area is not None else np.zeros(n + 1))
-        new = {i: Region(int(cls[i]), [], int(pixels[i]), float(sums[i]), float(conf[i])) for i in range(1, n + 1)}
-        for geom, value in shapes(ids, mask=ids > 0, connectivity=4, transform=Affine.translation(0, y0)):
-            new[int(value)].parts.append(shapely.geometry.shape(geom))
+        if min_area_m2 > 0 and rows_area is not None:  # small regions inside the band: not worth tracing
+            edge = np.zeros(n + 1, bool)
+            edge[ids[0]] = y0 > 0
+            edge[ids[-1]] |= y1 < height
+            small = (sums < min_area_m2) & ~edge
+            small[0] = False
+            ids[small[ids]] = 0
+        new = {i: Region(int(cls[i]), [], int(pixels[i]), float(sums[i]), float(conf[i]))
+               for i in np.unique(ids[ids > 0]).tolist()}
+        traced = list(shapes(ids, mask=ids > 0, connectivity=4, transform=Affine.translation(0, y0)))
+        for (_, value), polygon in zip(traced, shapely.from_geojson([json.dumps(g) for g, _ in traced]),
+                                       strict=True):
+            new[int(value)].parts.append(polygon)
 
         # join the regions left open above with those they touch across the boundary (same class: a pixel of
         # each, one above the other)
@@ -143,6 +160,21 @@ def class_regions(labels: RowStore, confidence: RowStore | None, valid: RowStore
     yield from open_regions.values()
 
 
+def _union(parts: list) -> shapely.Polygon:
+    """One polygon from a region's pieces, which share whole pixel edges across band boundaries and never
+    overlap. A piece's holes lie strictly inside its band (a hole reaching the band's edge would be open to the
+    outside), so joining pieces never changes them: only the hole-free outlines are united (GEOS overlay is slow
+    on polygons with thousands of holes), and the pieces' holes are then put back as holes of the result, beside
+    the new holes the outlines enclose."""
+    if len(parts) == 1:
+        return parts[0]
+    outline = shapely.union_all([shapely.Polygon(p.exterior) for p in parts])
+    holes = [ring for p in parts for ring in p.interiors]
+    if outline.geom_type != "Polygon":  # pieces joined only through shared edges: always one polygon
+        outline = max(outline.geoms, key=lambda g: g.area)
+    return shapely.Polygon(outline.exterior, [*outline.interiors, *holes])
+
+
 def _find(parent: dict[int, int], i: int) -> int:
     while parent[i] != i:
         parent[i] = parent[parent[i]]
@@ -187,10 +219,10 @@ def write_class_polygons(path: str | Path, labels: RowStore, confidence: RowStor
             written += len(batch)
             batch.clear()
 
-        for region in class_regions(labels, confidence, valid, classes, area, band_rows):
+        for region in class_regions(labels, confidence, valid, classes, area, band_rows, min_area_m2):
             if area.known and region.area_m2 < min_area_m2:
                 continue
-            shape = shapely.union_all(region.parts) if len(region.parts) > 1 else region.parts[0]
+            shape = region.polygon()
             if simplify > 0:
                 shape = shape.simplify(simplify, preserve_topology=True)
             shape = shapely.affinity.affine_transform(shape, matrix)
