@@ -556,10 +556,11 @@ def segment_image(model_or_path: object, image_path: str | Path, out_dir: str | 
                   max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
                   engine: Engine | str | None = None, preview: int = 1024,
                   outputs: OutputOptions | None = None) -> SegmentResult:
-    """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
+    """Map one image file (PNG, JPEG, or any GeoTIFF GDAL reads, of any size) into ``out_dir``.
 
     ``model_or_path`` is a model file, a :class:`~fcnkit.modelfile.LoadedModel` or a bare module. Writes
-    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG, or TIFF for TIFF inputs and large images),
+    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG for PNG/JPEG inputs up to 50 MP, else
+    GeoTIFF on the input's grid; see :mod:`fcnkit.outputs`),
     ``STEM.overlay`` and ``STEM.areas.csv``/``.json`` (and ``STEM.polygons`` when ``outputs`` asks for them;
     see :class:`fcnkit.outputs.OutputOptions`). Class scores stream from the tiles straight into the
     8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
