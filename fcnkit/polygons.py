@@ -116,7 +116,7 @@ def class_regions(labels: RowStore, confidence: RowStore | None, valid: RowStore
         # join the regions left open above with those they touch across the boundary (same class: a pixel of
         # each, one above the other)
         parent = {i: i for i in new}
-        joined: dict[int, Region] = {}
+        joined: dict[int, int] = {}  # open region above → a region root below it joins
         if open_regions:
             top = ids[0].astype(np.int64)
             touch = (last_ids > 0) & (top > 0)
