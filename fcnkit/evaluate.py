@@ -17,8 +17,8 @@ import numpy as np
 from fcnkit.atomic import write_text_atomic
 from fcnkit.calibration import ReliabilityAccumulator, scaled_softmax
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
+from fcnkit.data.dataset import Sample, find_samples, sample_mask
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError
@@ -153,9 +153,8 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
         h, w, bands = raster.shape
         if bands != model.bands:
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
-        mask = read_mask(sample.mask, classes, max_pixels)
-        if mask.shape != (h, w):
-            raise DataError(f"{sample.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image is {w}x{h}")
+        mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
+        raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
         logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))

@@ -6,6 +6,7 @@ import tracemalloc
 
 import numpy as np
 import pytest
+import rasterio
 import tifffile
 from sklearn.metrics import balanced_accuracy_score
 from sklearn.neighbors import KNeighborsClassifier
@@ -17,6 +18,8 @@ from fcnkit.data.classes import load_classes
 from fcnkit.data.dataset import check_dataset, find_samples
 from fcnkit.data.imageio import read_image, read_mask
 from fcnkit.data.scenes import (
+    GRID_NAME,
+    GRID_ORIGIN,
     ROOF,
     SCENE_CLASSES,
     TRACK,
@@ -125,24 +128,26 @@ def test_nir_is_bright_on_vegetation_and_dark_on_water():
     assert checked >= 3
 
 
-def test_mosaic_blocks_tiles_and_geotiff_tags(tmp_path):
+def test_mosaic_blocks_tiles_and_georeferencing(tmp_path):
     path, mask = tmp_path / "m.tif", tmp_path / "m_labels.tif"
     write_mosaic(path, (600, 520), 3, block=256, distinct=None, mask_path=mask, pixel_size=0.25)
-    with tifffile.TiffFile(path) as tif:
+    with tifffile.TiffFile(path) as tif:  # tifffile: a reader independent of GDAL, which wrote the file
         page = tif.pages[0]
-        assert tif.is_bigtiff and page.is_tiled and (page.tilelength, page.tilewidth) == (256, 256)
+        assert page.is_tiled and (page.tilelength, page.tilewidth) == (256, 256)
         image = page.asarray()
-        # GeoTIFF tags (numbers from the GeoTIFF 1.0 specification, recalled from memory); tifffile's own GeoTIFF
-        # decoder is the reference that the key directory is well formed.
+        # GeoTIFF tags (numbers from the GeoTIFF 1.0 specification, recalled from memory): pixel scale, then the
+        # tie point of pixel corner (0, 0) at the grid origin; tifffile's GeoTIFF decoder reads the key directory.
         assert page.tags[33550].value == (0.25, 0.25, 0.0)
-        assert page.tags[33922].value[:3] == (0.0, 0.0, 0.0)
-        assert 34735 in page.tags
+        assert page.tags[33922].value == (0.0, 0.0, 0.0, *GRID_ORIGIN, 0.0)
         geo = tif.geotiff_metadata
-        assert int(geo["GTModelTypeGeoKey"]) == 1 and int(geo["ProjLinearUnitsGeoKey"]) == 9001
+        assert geo["GTCitationGeoKey"] == GRID_NAME and int(geo["ProjLinearUnitsGeoKey"]) == 9001
+        assert int(geo["GTRasterTypeGeoKey"]) == 1  # pixel is area
+    with rasterio.open(mask) as ds:  # the label map: class colours and names, on the same grid
+        assert ds.compression.value == "DEFLATE" and ds.transform == rasterio.open(path).transform
+        assert [ds.colormap(1)[i][:3] for i in range(5)] == SCENE_CLASSES.colors
+        assert ds.tags(1)["CLASS_3"] == "roof" and ds.crs.to_wkt().startswith('LOCAL_CS["' + GRID_NAME)
     assert image.shape == (600, 520, 4)
     labels = read_mask(mask, SCENE_CLASSES)
-    with tifffile.TiffFile(mask) as tif:
-        assert tif.pages[0].compression == 8 and tif.pages[0].tags[33550].value == (0.25, 0.25, 0.0)
     for by, bx in ((0, 0), (1, 1), (2, 2)):  # block (i, j) is the scene of (seed, i, j), edge blocks cropped
         y, x = by * 256, bx * 256
         img, lab = render_scene((min(256, 600 - y), min(256, 520 - x)), np.random.default_rng([3, by, bx]))

@@ -19,16 +19,17 @@ Every scene is a pure function of its random generator, so a seed reproduces a d
 from __future__ import annotations
 
 import zlib
-from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
-import tifffile
+from affine import Affine
 from scipy import ndimage, special
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
-from fcnkit.data.imageio import TIFF_TILE, tiff_layout_args, write_label_png, write_tiff
+from fcnkit.data.imageio import write_label_png, write_tiff
+from fcnkit.data.raster import GeoRef
 from fcnkit.errors import ConfigError, DataError
 
 SCENE_CLASSES = ClassTable((
@@ -42,6 +43,9 @@ GROUND, WATER, VEGETATION, ROOF, TRACK = range(5)
 
 GRID_NAME = "Kessmoor local grid (fictional)"
 GRID_ORIGIN = (40000.0, 90000.0)  # easting, northing of the mosaic's top-left corner, metres (invented)
+KESSMOOR_CRS = (f'LOCAL_CS["{GRID_NAME}",LOCAL_DATUM["Kessmoor datum (fictional)",0],UNIT["metre",1],'
+                'AXIS["Easting",EAST],AXIS["Northing",NORTH]]')
+TIFF_TILE = 256
 
 _AREA = 256.0 * 256.0  # object counts below are per 256×256 pixels
 
@@ -334,46 +338,35 @@ def make_scenes(out_dir: str | Path, count: int, size: int, seed: int, nir: bool
     return out
 
 
-def geotiff_tags(pixel_size: float, origin: tuple[float, float] = GRID_ORIGIN,
-                 citation: str = GRID_NAME) -> list[tuple]:
-    """GeoTIFF tags (tifffile extratags) placing pixel (0, 0)'s corner at ``origin`` on a user-defined metric grid.
+def kessmoor_grid(pixel_size: float, origin: tuple[float, float] = GRID_ORIGIN) -> GeoRef:
+    """The fictional Kessmoor local grid (a local engineering CRS in metres, with no place on Earth) with pixel
+    (0, 0)'s corner at ``origin`` and square pixels of ``pixel_size`` metres, north up."""
+    from rasterio.crs import CRS
 
-    Tag and key numbers from the GeoTIFF 1.0 specification (recalled from memory; OGC GeoTIFF 1.1 keeps them):
-    ModelPixelScaleTag 33550, ModelTiepointTag 33922, GeoKeyDirectoryTag 34735, GeoAsciiParamsTag 34737;
-    keys GTModelType 1024 = 1 (projected), GTRasterType 1025 = 1 (pixel is area), GTCitation 1026,
-    ProjectedCSType 3072 = 32767 (user-defined), ProjLinearUnits 3076 = 9001 (metre).
-    """
-    ascii_params = citation + "|"
-    keys = [(1024, 0, 1, 1), (1025, 0, 1, 1), (1026, 34737, len(ascii_params), 0), (3072, 0, 1, 32767),
-            (3076, 0, 1, 9001)]
-    directory = [1, 1, 0, len(keys)] + [v for key in keys for v in key]
-    return [
-        (33550, 12, 3, (pixel_size, pixel_size, 0.0), True),
-        (33922, 12, 6, (0.0, 0.0, 0.0, origin[0], origin[1], 0.0), True),
-        (34735, 3, len(directory), tuple(directory), True),
-        (34737, 2, len(ascii_params) + 1, ascii_params, True),
-    ]
+    return GeoRef(CRS.from_wkt(KESSMOOR_CRS), Affine(pixel_size, 0.0, origin[0], 0.0, -pixel_size, origin[1]))
 
 
 def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, nir: bool = True,
                  pixel_size: float = 0.5, geo: bool = True, mask_path: str | Path | None = None,
                  block: int = 1024, distinct: int | None = 16, progress: bool = False) -> Path:
-    """Write a large synthetic image as a tiled BigTIFF, block by block, with bounded memory.
+    """Write a large synthetic image as a tiled GeoTIFF (BigTIFF when large), block by block, with bounded memory.
 
     The mosaic is a grid of ``block``-sized scenes, like the seamlines of an orthomosaic. Rendering costs
     about half a second per megapixel, so by default only ``distinct`` scenes are rendered and each block
     shows one of them under a random flip and quarter turn (``distinct=None`` renders every block afresh).
-    Memory holds the rendered scenes, one row of blocks (``block`` × width × bands bytes) and the label tiles
-    compressed with Deflate — never the whole image. ``mask_path`` also writes the labels (Deflate-compressed
-    tiled TIFF with the class palette). ``geo`` adds GeoTIFF tags for a fictional metric grid at ``pixel_size``
+    Memory holds the rendered scenes, one row of blocks (``block`` × width × bands bytes) and the labels
+    compressed with Deflate — never the whole image. ``mask_path`` also writes the labels (a tiled GeoTIFF with
+    the class colour table and names). ``geo`` places both on the fictional Kessmoor grid at ``pixel_size``
     metres per pixel. Everything depends only on ``seed``.
     """
+    from fcnkit.data.geotiff import RasterSpec, label_spec, write_geotiff
+
     h, w = (size, size) if isinstance(size, int) else size
     if h < 8 or w < 8 or block < TIFF_TILE or block % TIFF_TILE or (distinct is not None and distinct < 1):
         raise ConfigError(f"size = {size}, block = {block}, distinct = {distinct} (expected sides ≥ 8, block a "
                           f"multiple of {TIFF_TILE}, distinct ≥ 1 or None)")
     bands = 4 if nir else 3
-    tags = geotiff_tags(pixel_size) if geo else []
+    grid = kessmoor_grid(pixel_size) if geo else None
     pool: dict[int, tuple[np.ndarray, np.ndarray]] = {}
 
     def scene(by: int, bx: int, bh: int, bw: int) -> tuple[np.ndarray, np.ndarray]:
@@ -389,44 +382,44 @@ def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, ni
             img, lab = img[:, ::-1], lab[:, ::-1]
         return img[:bh, :bw], lab[:bh, :bw]
 
-    mask_tiles: list[bytes] = []
-    rows = range(0, h, block)
+    stripe: dict[str, Any] = {"top": -1}
+    label_rows: list[bytes] = []  # each row of blocks' labels, Deflate-compressed
+    bar = None
     if progress:
         from tqdm import tqdm
 
-        rows = tqdm(rows, desc="mosaic", unit="block row")
+        bar = tqdm(total=-(-h // block), desc="mosaic", unit="block row")
 
-    def image_tiles() -> Iterator[np.ndarray]:
-        for by in rows:
-            bh = min(block, h - by)
-            stripe = np.empty((bh, w, bands), np.uint8)
-            labels = np.empty((bh, w), np.uint8)
+    def image_rows(y0: int, y1: int) -> np.ndarray:
+        top = y0 // block * block
+        if stripe["top"] != top:
+            bh = min(block, h - top)
+            img, lab = np.empty((bh, w, bands), np.uint8), np.empty((bh, w), np.uint8)
             for bx in range(0, w, block):
-                stripe[:, bx:bx + block], labels[:, bx:bx + block] = scene(by // block, bx // block, bh,
-                                                                            min(block, w - bx))
-            for ty in range(0, bh, TIFF_TILE):
-                for tx in range(0, w, TIFF_TILE):
-                    if mask_path is not None:  # before the yield: the writer stops pulling after the last tile
-                        mask_tiles.append(zlib.compress(_full_tile(labels[ty:ty + TIFF_TILE, tx:tx + TIFF_TILE])))
-                    yield _full_tile(stripe[ty:ty + TIFF_TILE, tx:tx + TIFF_TILE])
+                img[:, bx:bx + block], lab[:, bx:bx + block] = scene(top // block, bx // block, bh,
+                                                                     min(block, w - bx))
+            stripe.update(top=top, image=img)
+            if mask_path is not None:
+                label_rows.append(zlib.compress(lab.tobytes(), 1))
+            if bar is not None:
+                bar.update()
+        return stripe["image"][y0 - top:y1 - top]
+
+    def mask_rows(y0: int, y1: int) -> np.ndarray:
+        top = y0 // block * block
+        if stripe.get("mask_top") != top:
+            bh = min(block, h - top)
+            stripe.update(mask_top=top, mask=np.frombuffer(zlib.decompress(label_rows[top // block]),
+                                                           np.uint8).reshape(bh, w))
+        return stripe["mask"][y0 - top:y1 - top]
 
     path = Path(path)
-    layout = tiff_layout_args((h, w, bands), np.uint8) | {"tile": (TIFF_TILE, TIFF_TILE)}
-    with atomic_output(path) as tmp:
-        tifffile.imwrite(tmp, image_tiles(), shape=(h, w, bands), dtype=np.uint8, bigtiff=True, extratags=tags,
-                         **layout)
+    try:
+        write_geotiff(path, RasterSpec((h, w, bands), np.dtype(np.uint8), image_rows), grid, cog=False,
+                      compress=None, block=TIFF_TILE)
+    finally:
+        if bar is not None:
+            bar.close()
     if mask_path is not None:
-        colormap = np.array(SCENE_CLASSES.palette(), np.uint16).reshape(256, 3).T * 257
-        with atomic_output(mask_path) as tmp:
-            tifffile.imwrite(tmp, iter(mask_tiles), shape=(h, w), dtype=np.uint8, bigtiff=True, extratags=tags,
-                             tile=(TIFF_TILE, TIFF_TILE), compression="zlib", photometric="palette",
-                             colormap=colormap)
+        write_geotiff(mask_path, label_spec(SCENE_CLASSES, (h, w), mask_rows), grid, cog=False, block=TIFF_TILE)
     return path
-
-
-def _full_tile(a: np.ndarray) -> np.ndarray:
-    """A TIFF tile must be full-sized: pad the right and bottom edges with zeros."""
-    if a.shape[0] == TIFF_TILE and a.shape[1] == TIFF_TILE:
-        return np.ascontiguousarray(a)
-    pad = [(0, TIFF_TILE - a.shape[0]), (0, TIFF_TILE - a.shape[1])] + [(0, 0)] * (a.ndim - 2)
-    return np.pad(a, pad)
