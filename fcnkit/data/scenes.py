@@ -346,58 +346,107 @@ def kessmoor_grid(pixel_size: float, origin: tuple[float, float] = GRID_ORIGIN) 
     return GeoRef(CRS.from_wkt(KESSMOOR_CRS), Affine(pixel_size, 0.0, origin[0], 0.0, -pixel_size, origin[1]))
 
 
+def feather_weights(length: int, start: int, stop: int, margin: int) -> np.ndarray:
+    """Weights along one axis of a block spanning start..stop of an image ``length`` long, over its extended
+    range start − margin .. stop + margin: 1 inside, a linear ramp through 0.5 at each edge shared with a
+    neighbour, none beyond the image. Neighbouring blocks' weights sum to 1 everywhere (a partition of unity)."""
+    x = np.arange(start - margin, stop + margin) + 0.5
+    w = np.ones(x.size)
+    if margin and start > 0:
+        w = np.minimum(w, np.clip((x - (start - margin)) / (2 * margin), 0, 1))
+    if margin and stop < length:
+        w = np.minimum(w, np.clip(((stop + margin) - x) / (2 * margin), 0, 1))
+    w[(x < 0) | (x > length)] = 0
+    return w
+
+
 def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, nir: bool = True,
                  pixel_size: float = 0.5, geo: bool = True, mask_path: str | Path | None = None,
-                 block: int = 1024, distinct: int | None = 16, progress: bool = False) -> Path:
+                 block: int = 1024, distinct: int | None = 16, feather: int = 24,
+                 progress: bool = False) -> Path:
     """Write a large synthetic image as a tiled GeoTIFF (BigTIFF when large), block by block, with bounded memory.
 
-    The mosaic is a grid of ``block``-sized scenes, like the seamlines of an orthomosaic. Rendering costs
-    about half a second per megapixel, so by default only ``distinct`` scenes are rendered and each block
-    shows one of them under a random flip and quarter turn (``distinct=None`` renders every block afresh).
-    Memory holds the rendered scenes, one row of blocks (``block`` × width × bands bytes) and the labels
-    compressed with Deflate — never the whole image. ``mask_path`` also writes the labels (a tiled GeoTIFF with
-    the class colour table and names). ``geo`` places both on the fictional Kessmoor grid at ``pixel_size``
-    metres per pixel. Everything depends only on ``seed``.
+    The mosaic is a grid of ``block``-sized scenes, like the seamlines of an orthomosaic, and, as orthomosaics
+    do, it feathers its seams: each scene is rendered ``feather`` pixels larger on every side and cross-faded
+    with its neighbours over 2 × ``feather`` pixels around each seamline, so no hard line runs through the
+    image (one would look like a fault of the map). The labels keep the seamline itself: each pixel's class is
+    that of the scene whose block holds it. Rendering costs about half a second per megapixel, so by default
+    only ``distinct`` scenes are rendered and each block shows one of them under a random flip and quarter turn
+    (``distinct=None`` renders every block afresh). Memory holds the rendered scenes, one row of blocks (as
+    float32) and the labels compressed with Deflate — never the whole image. ``mask_path`` also writes the
+    labels (a tiled GeoTIFF with the class colour table and names). ``geo`` places both on the fictional
+    Kessmoor grid at ``pixel_size`` metres per pixel. Everything depends only on ``seed``.
     """
     from fcnkit.data.geotiff import RasterSpec, label_spec, write_geotiff
 
     h, w = (size, size) if isinstance(size, int) else size
-    if h < 8 or w < 8 or block < TIFF_TILE or block % TIFF_TILE or (distinct is not None and distinct < 1):
-        raise ConfigError(f"size = {size}, block = {block}, distinct = {distinct} (expected sides ≥ 8, block a "
-                          f"multiple of {TIFF_TILE}, distinct ≥ 1 or None)")
+    if h < 8 or w < 8 or block < TIFF_TILE or block % TIFF_TILE or (distinct is not None and distinct < 1) \
+            or not 0 <= feather <= block // 4:
+        raise ConfigError(f"size = {size}, block = {block}, distinct = {distinct}, feather = {feather} (expected "
+                          f"sides ≥ 8, block a multiple of {TIFF_TILE}, distinct ≥ 1 or None, feather 0..block/4)")
     bands = 4 if nir else 3
     grid = kessmoor_grid(pixel_size) if geo else None
     pool: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    m = feather
 
-    def scene(by: int, bx: int, bh: int, bw: int) -> tuple[np.ndarray, np.ndarray]:
+    def scene(by: int, bx: int) -> tuple[np.ndarray, np.ndarray]:
+        """Block (by, bx) rendered ``m`` pixels larger on every side (image, labels)."""
+        bh, bw = min(block, h - by * block), min(block, w - bx * block)
         rng = np.random.default_rng([seed, by, bx])
         if distinct is None:
-            return render_scene((bh, bw), rng, nir)
+            return render_scene((bh + 2 * m, bw + 2 * m), rng, nir)
         k = int(rng.integers(distinct))
         if k not in pool:
-            pool[k] = render_scene(block, np.random.default_rng([seed, k]), nir)
+            pool[k] = render_scene(block + 2 * m, np.random.default_rng([seed, k]), nir)
         turns, flip = int(rng.integers(4)), bool(rng.integers(2))
         img, lab = (np.rot90(a, turns) for a in pool[k])
         if flip:
             img, lab = img[:, ::-1], lab[:, ::-1]
-        return img[:bh, :bw], lab[:bh, :bw]
+        return img[:bh + 2 * m, :bw + 2 * m], lab[:bh + 2 * m, :bw + 2 * m]
 
     stripe: dict[str, Any] = {"top": -1}
     label_rows: list[bytes] = []  # each row of blocks' labels, Deflate-compressed
+    rows_of_blocks, cols_of_blocks = -(-h // block), -(-w // block)
     bar = None
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=-(-h // block), desc="mosaic", unit="block row")
+        bar = tqdm(total=rows_of_blocks, desc="mosaic", unit="block row")
+
+    def blend(top: int, bh: int) -> tuple[np.ndarray, np.ndarray]:
+        """Rows top..top+bh, one block column at a time: every block that reaches them, weighted (image), and
+        the labels of the blocks that hold them."""
+        out = np.empty((bh, w, bands), np.uint8)
+        lab = np.empty((bh, w), np.uint8)
+        own = top // block
+        for cx in range(cols_of_blocks):
+            X0, X1 = cx * block, min(cx * block + block, w)
+            acc = np.zeros((bh, X1 - X0, bands), np.float32)
+            for by in range(max(0, own - 1), min(rows_of_blocks, own + 2)):
+                y0, y1 = by * block, min(by * block + block, h)
+                a0, a1 = max(y0 - m, top), min(y1 + m, top + bh)  # stripe rows this block reaches
+                if a1 <= a0:
+                    continue
+                wy = feather_weights(h, y0, y1, m)[a0 - (y0 - m):a1 - (y0 - m)]
+                for bx in range(max(0, cx - 1), min(cols_of_blocks, cx + 2)):
+                    x0, x1 = bx * block, min(bx * block + block, w)
+                    c0, c1 = max(x0 - m, X0), min(x1 + m, X1)  # this block column's pixels it reaches
+                    if c1 <= c0:
+                        continue
+                    img, blk = scene(by, bx)
+                    wx = feather_weights(w, x0, x1, m)[c0 - (x0 - m):c1 - (x0 - m)]
+                    weight = np.outer(wy, wx).astype(np.float32)[..., None]
+                    acc[a0 - top:a1 - top, c0 - X0:c1 - X0] += img[a0 - (y0 - m):a1 - (y0 - m),
+                                                                   c0 - (x0 - m):c1 - (x0 - m)] * weight
+                    if by == own and bx == cx:
+                        lab[:, X0:X1] = blk[m:m + bh, m:m + X1 - X0]
+            out[:, X0:X1] = np.clip(np.rint(acc), 0, 255)
+        return out, lab
 
     def image_rows(y0: int, y1: int) -> np.ndarray:
         top = y0 // block * block
         if stripe["top"] != top:
-            bh = min(block, h - top)
-            img, lab = np.empty((bh, w, bands), np.uint8), np.empty((bh, w), np.uint8)
-            for bx in range(0, w, block):
-                img[:, bx:bx + block], lab[:, bx:bx + block] = scene(top // block, bx // block, bh,
-                                                                     min(block, w - bx))
+            img, lab = blend(top, min(block, h - top))
             stripe.update(top=top, image=img)
             if mask_path is not None:
                 label_rows.append(zlib.compress(lab.tobytes(), 1))
