@@ -141,6 +141,7 @@ def output_names(stem: str, as_tiff: bool, polygons: str | None = None) -> dict[
     ext = ".tif" if as_tiff else ".png"
     names = {"labels": f"{stem}.labels{ext}", "confidence": f"{stem}.confidence{ext}",
              "uncertainty": f"{stem}.uncertainty{ext}", "overlay": f"{stem}.overlay{ext}",
+             "preview": f"{stem}.preview.png",
              "areas_csv": f"{stem}.areas.csv", "areas_json": f"{stem}.areas.json"}
     if polygons is not None:
         names["polygons"] = f"{stem}.polygons{POLYGON_FORMATS[polygons]}"
@@ -257,6 +258,7 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
                       work=work)
     else:
         _write_png(paths["overlay"], picture)
+    _write_png(paths["preview"], _preview_card(raster, maps["labels"], small, picture, step, classes, counts, stem))
 
     k = classes.num_classes
     if area.kind == "constant":
@@ -287,6 +289,34 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
            "valid_pixels": height * width - nodata, "classes": rows, "caution": CAUTION}
     write_text_atomic(paths["areas_json"], json.dumps(doc, indent=2) + "\n")
     return MapOutputs(paths, rows, nodata, notes)
+
+
+def _preview_card(raster: Raster, labels: RowStore, small: np.ndarray, picture: np.ndarray, step: int,
+                  classes: ClassTable, counts: np.ndarray, stem: str) -> np.ndarray:
+    """The preview card (fcnkit.preview): the overlay, a full-resolution inset where the map is busiest (when
+    the overview is down-sampled at all), and the legend with each class's share of the mapped pixels."""
+    from fcnkit.preview import INSET, choose_inset, preview_card
+
+    height, width, _ = raster.shape
+    inset = box = None
+    if step > 1:
+        r, c = choose_inset(small, max(1, INSET // step), classes.ignore)
+        y0, x0 = r * step, c * step
+        y1, x1 = min(y0 + INSET, height), min(x0 + INSET, width)
+        valid = raster.valid(y0, y1, 0, width) if getattr(raster, "masked", False) else None
+        region = raster.read(y0, y1, x0, x1)
+        region_valid = None if valid is None else valid[:, x0:x1]
+        inset = overlay(display_rgb(region, region_valid), np.array(labels.rows(y0, y1, write=False)[:, x0:x1]),
+                        classes.colors)
+        if region_valid is not None:
+            inset[~region_valid] = 0
+        box = (c, r, c + -(-(x1 - x0) // step), r + -(-(y1 - y0) // step))
+    k = classes.num_classes
+    mapped = counts[:k].sum()
+    shares = [float(n / mapped) if mapped else 0.0 for n in counts[:k]]
+    scale = f"1:{step} overview" if step > 1 else "full resolution"
+    return preview_card(picture, inset, box, classes.names, classes.colors, shares,
+                        f"{stem}: {width}x{height} px, {scale}")
 
 
 def _areas(raster: Raster, pixel_size: float | tuple[float, float] | None) -> PixelArea:

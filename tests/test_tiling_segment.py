@@ -62,7 +62,8 @@ def test_geotiff_outputs_are_cogs_on_the_input_grid_with_class_metadata(tmp_path
     model = _model_file(tmp_path)
     img = _geotiff(tmp_path / "field.tif")
     res = segment_image(model, tmp_path / "field.tif", tmp_path / "out", tile=64, preview=64, progress=False)
-    assert set(res.paths) == {"labels", "confidence", "uncertainty", "overlay", "areas_csv", "areas_json"}
+    assert set(res.paths) == {"labels", "confidence", "uncertainty", "overlay", "preview", "areas_csv",
+                              "areas_json"}
     assert _visible(tmp_path / "out") == sorted(p.name for p in res.paths.values())
     assert list((tmp_path / "out").iterdir()) == [p for p in (tmp_path / "out").iterdir() if p.name[0] != "."]
 
