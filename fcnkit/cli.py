@@ -76,8 +76,8 @@ def _train(args: argparse.Namespace) -> int:
               note=_note, **settings)
     r = model.last_run
     if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
-        best = "no validation images, model of the last epoch kept" if math.isnan(r.best_miou) else \
-            f"best val mIoU {r.best_miou:.4f} at epoch {r.best_epoch}"
+        best = "no validation images, model of the last epoch kept" if math.isnan(r.best_mean_iou) else \
+            f"best validation mean IoU {r.best_mean_iou:.4f} at epoch {r.best_epoch}"
         stop = ", stopped early" if r.stopped_early else ""
         print(f"{r.epochs} epochs{stop}; {best}; model: {r.model_path}; metrics: {r.run_dir / 'metrics.csv'}")
     return 0

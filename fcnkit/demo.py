@@ -218,8 +218,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     model = Model.build(cfg).fit(paths["train_scenes"], out_dir=out / "run", progress=progress)
     result = model.last_run
     paths["model"], paths["curves"] = result.model_path, result.run_dir / "metrics.csv"
-    figures["best_epoch"], figures["val_miou"] = result.best_epoch, result.best_miou
-    step("train", f"      best validation mean IoU {result.best_miou:.4f} at epoch {result.best_epoch}")
+    figures["best_epoch"], figures["val_mean_iou"] = result.best_epoch, result.best_mean_iou
+    step("train", f"      best validation mean IoU {result.best_mean_iou:.4f} at epoch {result.best_epoch}")
 
     echo(f"[3/{n}] evaluating the model on the {plan.test_scenes} held-out test scenes")
     ev = evaluate(paths["model"], paths["test_scenes"], json_path=out / "evaluation.json", curves=paths["curves"],

@@ -110,7 +110,7 @@ class Evaluation:
         for i, name in enumerate(self.classes.names):
             share = s["support"][i] / total if total else math.nan
             lines.append(f"{name[:17]:<18}{s['support'][i]:>13,}{share:>8.1%}{s['predicted'][i]:>13,}"
-                         f"{_bias(s['predicted'][i], s['support'][i]):>8}{_num(s['accuracy'][i]):>8}"
+                         f"{_bias(s['predicted'][i], s['support'][i]):>8}{_num(s['recall'][i]):>8}"
                          f"{_num(s['precision'][i]):>10}{_num(s['iou'][i]):>8}{_num(s['dice'][i]):>8}")
         lines.append("recall = producer's accuracy, precision = user's accuracy; bias = predicted / true pixels − 1")
         return "\n".join(lines)

@@ -363,7 +363,7 @@ def _class_table(scores: dict[str, Any], classes: ClassTable) -> str:
             f'<tr data-class="{html.escape(name)}"><td class="name">{sw}{html.escape(name)}</td><td>{cid}</td>'
             f'<td>{support[i]:,}</td><td>{support[i] / total:.1%}</td><td>{predicted[i]:,}</td>'
             f'<td data-key="bias">{_bias(predicted[i], support[i])}</td>'
-            f'<td data-key="accuracy">{_fmt(scores["accuracy"][i])}</td>'
+            f'<td data-key="recall">{_fmt(scores["recall"][i])}</td>'
             f'<td data-key="precision">{_fmt(scores["precision"][i])}</td>'
             f'<td data-key="iou">{_fmt(scores["iou"][i])}</td><td data-key="dice">{_fmt(scores["dice"][i])}</td></tr>')
     head = ('<tr><th class="name">class</th><th>id</th><th>true pixels</th><th>share</th><th>predicted pixels</th>'

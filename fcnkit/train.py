@@ -54,7 +54,7 @@ class TrainResult:
     model_path: Path
     epochs: int  # epochs completed
     best_epoch: int
-    best_miou: float  # NaN when there is no validation split
+    best_mean_iou: float  # NaN when there is no validation split
     stopped_early: bool
     history: list[dict[str, Any]]
 
@@ -174,7 +174,7 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
     else:
         opt = torch.optim.SGD(model.parameters(), lr=t.lr, momentum=t.momentum, weight_decay=t.weight_decay)
     p = {"epoch": 0, "batch": 0, "step": 0, "seconds": 0.0, "epoch_seconds": 0.0, "loss_sum": 0.0,
-         "loss_batches": 0, "pixels": 0, "best_miou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
+         "loss_batches": 0, "pixels": 0, "best_mean_iou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
          "stopped_early": False, "history": []}
     best_state = _copy_state(model)
     if state is not None:
@@ -288,7 +288,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            px_s=f"{p['pixels'] * g.world / (time.perf_counter() - tic):.3g}")
+                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
@@ -297,7 +297,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
         _end_epoch(run, lr, time.perf_counter() - tic)
         if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
             _interrupt(run)
-    best = p["best_miou"] if p["best_miou"] > -math.inf else math.nan
+    best = p["best_mean_iou"] if p["best_mean_iou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
                        p["stopped_early"], p["history"])
 
@@ -315,16 +315,16 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     loss_sum, batches, pixels, ce, norm = sums.tolist()
     row = {"epoch": p["epoch"] + 1, "seconds": round(p["seconds"] + train_seconds + time.perf_counter() - tic, 2),
            "lr": lr, "train_loss": loss_sum / max(batches, 1), "val_loss": ce / norm if norm > 0 else math.nan,
-           "val_pixel_acc": scores["pixel_accuracy"], "val_mean_acc": scores["mean_accuracy"],
-           "val_miou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
-           "pixels_per_s": round(pixels / max(train_seconds, 1e-9))}
+           "val_pixel_accuracy": scores["pixel_accuracy"], "val_mean_accuracy": scores["mean_accuracy"],
+           "val_mean_iou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
+           "pixels_per_second": round(pixels / max(train_seconds, 1e-9))}
     names = [name.replace(" ", "_") for name in model.classes.names]
     row.update({f"iou_{name}": v for name, v in zip(names, scores["iou"], strict=True)})
     miou = scores["mean_iou"] if not math.isnan(scores["mean_iou"]) else -math.inf
     p.update(epoch=p["epoch"] + 1, batch=0, seconds=row["seconds"], epoch_seconds=0.0, loss_sum=0.0,
              loss_batches=0, pixels=0, history=[*p["history"], row])
-    if p["best_epoch"] == 0 or miou > p["best_miou"] or not run.has_val:  # without validation: keep the latest
-        p.update(best_miou=miou, best_epoch=p["epoch"], bad_epochs=0)
+    if p["best_epoch"] == 0 or miou > p["best_mean_iou"] or not run.has_val:  # without validation: keep the latest
+        p.update(best_mean_iou=miou, best_epoch=p["epoch"], bad_epochs=0)
         run.best_state = _copy_state(model)
         model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:

@@ -103,7 +103,7 @@ def test_report_scores_equal_scikit_learn():
         "fw_iou": jaccard_score(t, p, labels=labels, average="weighted"),
     }
     per_class = {
-        "accuracy": recall_score(t, p, labels=labels, average=None),
+        "recall": recall_score(t, p, labels=labels, average=None),
         "precision": precision_score(t, p, labels=labels, average=None, zero_division=0),
         "iou": jaccard_score(t, p, labels=labels, average=None),
         "dice": f1_score(t, p, labels=labels, average=None),

@@ -130,8 +130,8 @@ def full_report(folder: Path, classes: ClassTable = CLASSES, seed: int = 0,
     curves = folder / "metrics.csv"
     with open(curves, "w", newline="") as f:  # the columns fcnkit.train writes
         w = csv.writer(f)
-        w.writerow(["epoch", "seconds", "lr", "train_loss", "val_loss", "val_pixel_acc", "val_mean_acc", "val_miou",
-                    "val_fw_iou", "pixels_per_s", *(f"iou_{n}" for n in names)])
+        w.writerow(["epoch", "seconds", "lr", "train_loss", "val_loss", "val_pixel_accuracy", "val_mean_accuracy",
+                    "val_mean_iou", "val_fw_iou", "pixels_per_second", *(f"iou_{n}" for n in names)])
         for e in range(1, 13):
             w.writerow([e, 10 * e, 1e-3 / e, 1 / e, 1.1 / e, 1 - 0.3 / e, 1 - 0.35 / e, 1 - 0.4 / e, 1 - 0.38 / e,
                         9000, *(1 - (0.3 + 0.5 * i / k) / e for i in range(k))])
