@@ -70,7 +70,7 @@ def _train(args: argparse.Namespace) -> int:
 
     cfg = load_config(args.config)
     model = Model.build(cfg) if args.init is None else Model.load(args.init)  # --init: that net, trained further
-    settings = {**config_to_dict(cfg)["train"], **{k: v for k, v in (("epochs", args.epochs),
+    settings = {**config_to_dict(cfg)["train"], **{k: v for k, v in (("epochs", args.epochs), ("seconds", args.seconds),
                                                                       ("threads", args.threads)) if v is not None}}
     model.fit(args.data, out_dir=args.out, resume=args.resume, progress=not args.quiet, max_pixels=args.max_pixels,
               note=_note, **settings)
@@ -78,7 +78,7 @@ def _train(args: argparse.Namespace) -> int:
     if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
         best = "no validation images, model of the last epoch kept" if math.isnan(r.best_mean_iou) else \
             f"best validation mean IoU {r.best_mean_iou:.4f} at epoch {r.best_epoch}"
-        stop = ", stopped early" if r.stopped_early else ""
+        stop = ", stopped early" if r.stopped_early else ", out of time (train.seconds)" if r.out_of_time else ""
         print(f"{r.epochs} epochs{stop}; {best}; model: {r.model_path}; metrics: {r.run_dir / 'metrics.csv'}")
     return 0
 
@@ -92,6 +92,9 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--resume", action="store_true", help="continue the run in RUN_DIR exactly where it stopped")
     p.add_argument("--init", metavar="MODEL", help="start from this model file (its net replaces [model])")
     p.add_argument("--epochs", type=int, metavar="N", help="override train.epochs")
+    p.add_argument("--seconds", type=float, metavar="S",
+                   help="override train.seconds: wall-time budget; stops in time to validate, keep the best model "
+                        "and calibrate it")
     p.add_argument("--threads", type=int, metavar="N", help="override train.threads (0 = torch's default)")
     p.add_argument("--max-pixels", type=int, default=2**27, metavar="N",
                    help="refuse images with more pixels than this (default 134217728)")

@@ -82,10 +82,11 @@ class TrainConfig:
     """Optimisation, sampling and augmentation settings used by ``fcnkit train``."""
 
     epochs: int = _opt(20, min=1)
+    seconds: float | None = _opt(None, min=0.0)  # wall-time budget of the run (None or 0: none); fcnkit.budget
     batch: int = _opt(8, min=1)
     patch: int = _opt(128, min=8)
     patches_per_epoch: int = _opt(256, min=1)
-    balanced: bool = _opt(False)
+    balanced: bool | None = _opt(None)  # None: class-balanced crops when labels are sparse (fcnkit.data.patches)
     optimizer: str = _opt("adamw", choices=("adamw", "sgd"))
     lr: float = _opt(2e-3, min=0.0)
     momentum: float = _opt(0.9, min=0.0, max=1.0)
@@ -98,7 +99,7 @@ class TrainConfig:
     calibrate: bool = _opt(True)  # fit a temperature on the validation split after training (Guo et al. 2017)
     patience: int = _opt(0, min=0)
     augment: bool = _opt(True)
-    scale: list[float] = _opt([0.75, 1.25], min=0.1)
+    scale: list[float] = _opt([1.0, 1.0], min=0.1)  # zoom range; [1, 1] = none (scale is a cue at a fixed pixel size)
     channels_last: bool = _opt(True)
     bf16: bool = _opt(False)
     threads: int = _opt(0, min=0)

@@ -10,8 +10,9 @@ import math
 POLY_POWER = 0.9  # the "poly" policy's exponent (Chen et al. 2017, DeepLab; common practice)
 
 
-def lr_factor(step: int, total: int, warmup: int, schedule: str) -> float:
-    """Multiplier of the base learning rate at optimiser step ``step`` (0-based) of ``total`` steps.
+def lr_factor(step: float, total: int, warmup: int, schedule: str) -> float:
+    """Multiplier of the base learning rate at optimiser step ``step`` (0-based) of ``total`` steps; ``step``
+    may be fractional (a time budget maps the share of time used onto the steps, fcnkit.budget).
 
     Warm-up rises linearly from 1/warmup to 1 over the first ``warmup`` steps; after it, ``poly`` decays as
     (1 − t)^0.9, ``cosine`` as (1 + cos πt)/2 and ``constant`` stays at 1, with t running from 0 to 1 over the

@@ -4,7 +4,8 @@ Each epoch draws ``train.patches_per_epoch`` patches from the training images (f
 them with per-pixel cross-entropy over labelled pixels (optionally class-weighted and with a Dice term),
 then scores the held-out whole images. The best model by validation mean IoU is kept as
 RUN_DIR/model.safetensors; RUN_DIR/resume.pt lets ``resume=True`` continue exactly (see fcnkit.runstate);
-RUN_DIR/metrics.csv gets a row per epoch. Under torchrun the patches of an epoch are shared out among the
+RUN_DIR/metrics.csv gets a row per epoch. With ``train.seconds`` the whole call, calibration included, keeps to a
+wall-time budget (fcnkit.budget). Under torchrun the patches of an epoch are shared out among the
 processes (DistributedDataParallel, gloo), validation images too, and rank 0 alone writes files.
 """
 
@@ -32,7 +33,9 @@ from torch.utils.data import DataLoader
 from tqdm import tqdm
 
 from fcnkit import parallel, runstate
+from fcnkit.budget import TimeBudget
 from fcnkit.config import TrainConfig, config_from_dict
+from fcnkit.cores import CoreWatch
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
@@ -57,6 +60,7 @@ class TrainResult:
     best_mean_iou: float  # NaN when there is no validation split
     stopped_early: bool
     history: list[dict[str, Any]]
+    out_of_time: bool = False  # stopped by the train.seconds budget
 
 
 class TrainingInterrupted(KeyboardInterrupt):
@@ -73,6 +77,7 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
     (a loaded model being fine-tuned keeps its own). The model ends holding the weights of its best epoch.
     Images and masks above ``max_pixels`` pixels are refused (default 2^27). ``note`` receives one-line remarks
     on the data (nodata pixels met)."""
+    start = time.perf_counter()  # a time budget counts from here
     t = _settings(model, settings)
     group, threads = parallel.start(), torch.get_num_threads()
     temporary = out_dir is None
@@ -82,8 +87,10 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
             torch.set_num_threads(t.threads)
         run = _prepare(model, t, data, masks, run_dir, resume, group,
                        DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels, note)
+        run.cores = CoreWatch(threads) if not t.threads else None
+        budget = TimeBudget(t.seconds or 0.0, run.p["seconds"] + run.p["epoch_seconds"], start)
         with _StopRequest() as stop:
-            result = _loop(run, stop, progress)
+            result = _loop(run, stop, progress, budget)
         model.net.load_state_dict(run.best_state)
         model.eval()
         _calibrate(run)
@@ -124,6 +131,8 @@ class _Run:
     data_id: str
     p: dict[str, Any]
     best_state: dict[str, torch.Tensor]
+    best_sample: tuple[int, _PixelSample] | None = None  # the best epoch's calibration pixels (this session's)
+    cores: CoreWatch | None = None  # chooses the thread count when train.threads = 0
 
 
 def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarray],
@@ -175,7 +184,7 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
         opt = torch.optim.SGD(model.parameters(), lr=t.lr, momentum=t.momentum, weight_decay=t.weight_decay)
     p = {"epoch": 0, "batch": 0, "step": 0, "seconds": 0.0, "epoch_seconds": 0.0, "loss_sum": 0.0,
          "loss_batches": 0, "pixels": 0, "best_mean_iou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
-         "stopped_early": False, "history": []}
+         "stopped_early": False, "out_of_time": False, "history": []}
     best_state = _copy_state(model)
     if state is not None:
         model.net.load_state_dict(state["model"])
@@ -259,23 +268,41 @@ def _check_fits(model: Model, images: list[np.ndarray], classes: ClassTable) -> 
             raise ConfigError(f"model.bands: the net takes {model.bands} bands but image {i} has {x.shape[2]}")
 
 
-def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
+THREAD_WINDOW = 2.0  # seconds of training between choices of the thread count (train.threads = 0)
+
+
+def _loop(run: _Run, stop: _StopRequest, progress: bool, budget: TimeBudget) -> TrainResult:
     t, p, g = run.t, run.p, run.group
     ignore, total_steps = run.model.classes.ignore, t.epochs * run.steps_per_epoch
     fmt = torch.channels_last if t.channels_last else torch.contiguous_format
-    while p["epoch"] < t.epochs and not p["stopped_early"]:
+    val_pixels = sum(m.size for m in run.val_masks)
+    if budget.active and t.calibrate and run.has_val:
+        budget.calibration = _calibration_seconds(run)
+    if run.cores is not None:  # one thread until the cores others leave free have been measured
+        torch.set_num_threads(run.cores.choice)
+    chosen = time.perf_counter()
+    while p["epoch"] < t.epochs and not p["stopped_early"] and not p.get("out_of_time"):
+        if budget.active and p["epoch"] and not p["batch"] and parallel.any_rank(g, budget.must_stop(val_pixels))[0]:
+            p["out_of_time"] = True  # the last epoch's end left no time for another step and the closing
+            break
         epoch, tic, lr = p["epoch"], time.perf_counter() - p["epoch_seconds"], 0.0
         bar = tqdm(total=run.steps_per_epoch, initial=p["batch"], desc=f"epoch {epoch + 1}/{t.epochs}",
                    unit="batch", disable=not (progress and g.main), dynamic_ncols=True)
         run.net.train()
+        step_tic = time.perf_counter()
         for x, y in _batches(run, epoch, p["batch"]):
-            lr = t.lr * lr_factor(p["step"], total_steps, t.warmup * run.steps_per_epoch, t.schedule)
+            if run.cores is not None and step_tic - chosen > THREAD_WINDOW:  # other programs come and go
+                torch.set_num_threads(run.cores.threads())
+                chosen = step_tic
+            at = budget.schedule_step(p["step"], total_steps, val_pixels)  # steps, or time when further along
+            lr = t.lr * lr_factor(at, total_steps, t.warmup * run.steps_per_epoch, t.schedule)
             for group in run.opt.param_groups:
                 group["lr"] = lr
             x = x.contiguous(memory_format=fmt)  # raw pixels: the model normalises them
             with torch.autocast("cpu", dtype=torch.bfloat16, enabled=t.bf16):
                 logits = run.net(x)
             loss = segmentation_loss(logits, y, run.weight, ignore, t.dice)
+            forward_seconds = time.perf_counter() - step_tic
             diverged, stopping = parallel.any_rank(g, not torch.isfinite(loss).item(), stop.requested)
             if diverged:
                 raise ConfigError(f"train.lr: the loss became {loss.item()} at epoch {epoch + 1}, batch "
@@ -293,13 +320,20 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
                 _interrupt(run)
+            budget.note_step(time.perf_counter() - step_tic, forward_seconds / y.numel())  # loading included
+            step_tic = time.perf_counter()
+            if budget.active and parallel.any_rank(g, budget.must_stop(val_pixels))[0]:  # one verdict for all
+                p["out_of_time"] = True
+                break
         bar.close()
-        _end_epoch(run, lr, time.perf_counter() - tic)
+        end_tic = time.perf_counter()
+        _end_epoch(run, lr, end_tic - tic)
+        budget.closing = time.perf_counter() - end_tic
         if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
             _interrupt(run)
     best = p["best_mean_iou"] if p["best_mean_iou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
-                       p["stopped_early"], p["history"])
+                       p["stopped_early"], p["history"], bool(p.get("out_of_time")))
 
 
 def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
@@ -307,8 +341,9 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     t, p, g, model = run.t, run.p, run.group, run.model
     tic = time.perf_counter()
     parallel.share_buffers(g, model)
+    sample = _PixelSample(run) if t.calibrate and run.has_val else None
     cm, ce, norm = validate(model, run.val_images, run.val_masks, weight=run.weight, margin=run.margin,
-                            channels_last=t.channels_last)
+                            channels_last=t.channels_last, on_block=sample)
     sums = parallel.all_sum(g, torch.tensor([p["loss_sum"], p["loss_batches"], p["pixels"], ce, norm]))
     cm = parallel.all_sum(g, torch.from_numpy(cm)).numpy().round().astype(np.int64)
     scores = segmentation_scores(cm)
@@ -326,6 +361,7 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     if p["best_epoch"] == 0 or miou > p["best_mean_iou"] or not run.has_val:  # without validation: keep the latest
         p.update(best_mean_iou=miou, best_epoch=p["epoch"], bad_epochs=0)
         run.best_state = _copy_state(model)
+        run.best_sample = None if sample is None else (p["epoch"], sample)
         model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:
             model.save(run.run_dir / runstate.MODEL_FILE)
@@ -371,30 +407,57 @@ def _scored_blocks(model: Model, images: Sequence[np.ndarray], masks: Sequence[n
 
 
 def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
-             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
-             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
+             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024, channels_last: bool = False,
+             on_block: Callable[[torch.Tensor, torch.Tensor], None] | None = None) -> tuple[np.ndarray, float, float]:
     """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
-    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights)."""
+    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights).
+    ``on_block`` is shown every block's logits (1×C×h×w) and labels (1×h×w) as they are scored."""
     k, ignore = model.num_classes, model.classes.ignore
     cm = np.zeros((k, k), np.int64)
     ce = norm = 0.0
     for logits, target in _scored_blocks(model, images, masks, margin=margin, block=block,
                                          channels_last=channels_last):
+        if on_block is not None:
+            on_block(logits, target)
         total, n = pixel_cross_entropy(logits, target, weight, ignore)
         ce, norm = ce + total.item(), norm + n.item()
         cm += confusion_matrix(target, logits.argmax(1), k, ignore)
     return cm, ce, norm
 
 
-CALIBRATION_PIXELS = 200_000  # labelled validation pixels each process keeps for fitting the temperature
+# Labelled validation pixels each process keeps for fitting the temperature. Measured on two models of the texture
+# mosaics of scripts/bench_train_vs_script.py: temperatures fitted on five random 50,000-pixel samples of 295,000
+# held-out pixels spread by 1.5-2 % (200,000: 0.5-0.7 %), no more than the validation and the held-out fit differ
+# by, and the fit took 0.22 s instead of 0.85 s on one thread.
+CALIBRATION_PIXELS = 50_000
+
+
+class _PixelSample:
+    """A seeded random choice of labelled validation pixels — their logits and labels, up to CALIBRATION_PIXELS
+    per process — taken block by block as the validation images are scored (the same pixels every time the
+    same images are scored). The best epoch's sample is what the temperature is fitted on, so calibration
+    does not run the validation images through the net again."""
+
+    def __init__(self, run: _Run) -> None:
+        self.ignore = run.model.classes.ignore
+        labelled = sum(int((m != self.ignore).sum()) for m in run.val_masks)
+        self.keep = min(1.0, CALIBRATION_PIXELS / max(labelled, 1))
+        self.rng = np.random.default_rng(run.t.seed + run.group.rank)
+        self.x: list[np.ndarray] = []
+        self.y: list[np.ndarray] = []
+
+    def __call__(self, logits: torch.Tensor, target: torch.Tensor) -> None:
+        z = logits[0].flatten(1).T.float().numpy()
+        y = target[0].flatten().numpy()
+        chosen = (y != self.ignore) & (self.rng.random(y.shape) < self.keep)
+        self.x.append(z[chosen])
+        self.y.append(y[chosen])
 
 
 def _calibrate(run: _Run) -> None:
     """Fit the temperature of softmax(logits / T) on the validation split (Guo et al. 2017), once per run:
     the best model's logits on a seeded sample of labelled validation pixels, pooled over every process. The
     fit, and the reliability of the confidences before and after, go into the model and its file."""
-    from fcnkit.calibration import fit_temperature, reliability, scaled_softmax
-
     model, t, p, g = run.model, run.t, run.p, run.group
     if "calibration" not in p:
         if not (t.calibrate and run.has_val):
@@ -404,16 +467,7 @@ def _calibrate(run: _Run) -> None:
             p["calibration"] = {"temperature": 1.0, "fitted": False,
                                 "note": "not calibrated: no labelled validation pixels"}
         else:
-            logits, labels = pixels
-            fit = fit_temperature(logits, labels, axis=1, ignore=None, max_pixels=len(labels), seed=t.seed)
-            before = reliability(scaled_softmax(logits, 1.0, axis=1), labels, axis=1, ignore=None)
-            after = reliability(scaled_softmax(logits, fit.temperature, axis=1), labels, axis=1, ignore=None)
-            p["calibration"] = {"temperature": fit.temperature, "fitted": True, "pixels": fit.pixels,
-                                "nll_before": fit.nll_before, "nll_after": fit.nll_after, "at_bound": fit.at_bound,
-                                "ece_before": before.ece, "ece_after": after.ece,
-                                "reliability_before": before.to_dict(), "reliability_after": after.to_dict(),
-                                "method": "temperature scaling on the validation split (Guo et al. 2017); "
-                                          "ECE over 15 equal-width confidence bins"}
+            p["calibration"] = _fit_calibration(*pixels, t.seed)
         model.temperature = p["calibration"]["temperature"]
         model.extra = {**model.extra, "calibration": p["calibration"]}
         if g.main and (run.run_dir / runstate.MODEL_FILE).exists():
@@ -424,24 +478,63 @@ def _calibrate(run: _Run) -> None:
         model.extra = {**model.extra, "calibration": p["calibration"]}
 
 
+def _fit_calibration(logits: np.ndarray, labels: np.ndarray, seed: int) -> dict[str, Any]:
+    """The temperature fitted on N×C logits and N labels, and the reliability before and after, as recorded."""
+    from fcnkit.calibration import fit_temperature, reliability, scaled_softmax
+
+    fit = fit_temperature(logits, labels, axis=1, ignore=None, max_pixels=len(labels), seed=seed)
+    before = reliability(scaled_softmax(logits, 1.0, axis=1), labels, axis=1, ignore=None)
+    after = reliability(scaled_softmax(logits, fit.temperature, axis=1), labels, axis=1, ignore=None)
+    return {"temperature": fit.temperature, "fitted": True, "pixels": fit.pixels, "nll_before": fit.nll_before,
+            "nll_after": fit.nll_after, "at_bound": fit.at_bound, "ece_before": before.ece, "ece_after": after.ece,
+            "reliability_before": before.to_dict(), "reliability_after": after.to_dict(),
+            "method": "temperature scaling on the validation split (Guo et al. 2017); "
+                      "ECE over 15 equal-width confidence bins"}
+
+
+CALIBRATION_PROBE = 16_384  # stand-in pixels timed to estimate the calibration's cost under a time budget
+# The fit's cost per pixel can grow once its float64 arrays outgrow the caches: measured 5-6 µs per pixel at
+# 2,048-16,384 pixels and 4-10 µs at 50,000 (one thread, 4 classes), so the probe's time is scaled up by this.
+CALIBRATION_CACHE_FACTOR = 1.5
+
+
+def _calibration_seconds(run: _Run) -> float:
+    """Seconds the calibration after training will take on this machine: ``_fit_calibration`` timed on up to
+    CALIBRATION_PROBE random stand-in pixels (its iterations do not depend on the values) and scaled to the pixels
+    the real fit will use, plus saving the model file and the resume point."""
+    from fcnkit.budget import SAVE_SECONDS
+
+    ignore, k = run.model.classes.ignore, run.model.num_classes
+    labelled = sum(int((m != ignore).sum()) for m in run.val_masks)
+    pixels = min(labelled, CALIBRATION_PIXELS) * run.group.world
+    probe = min(pixels, CALIBRATION_PROBE)
+    if not probe:
+        return 2 * SAVE_SECONDS
+    rng = np.random.default_rng(run.t.seed)
+    logits = (3 * rng.standard_normal((probe, k))).astype(np.float32)
+    labels = rng.integers(0, k, probe)
+    tic = time.perf_counter()
+    _fit_calibration(logits, labels, run.t.seed)
+    scale = pixels / probe * (CALIBRATION_CACHE_FACTOR if pixels > probe else 1.0)
+    return (time.perf_counter() - tic) * scale + 2 * SAVE_SECONDS
+
+
 def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
     """The best model's logits (N×C) and labels (N) at up to CALIBRATION_PIXELS labelled validation pixels per
-    process, a seeded random choice, pooled over every process (ignored pixels labelled −1)."""
+    process, a seeded random choice, pooled over every process (ignored pixels labelled −1): the sample the
+    best epoch's validation kept, or, when that epoch ran in an earlier session, the same pixels scored again."""
     model, g = run.model, run.group
-    ignore = model.classes.ignore
-    labelled = sum(int((m != ignore).sum()) for m in run.val_masks)
-    keep = min(1.0, CALIBRATION_PIXELS / max(labelled, 1))
-    rng = np.random.default_rng(run.t.seed + g.rank)
-    parts_x, parts_y = [], []
-    for logits, target in _scored_blocks(model, run.val_images, run.val_masks, margin=run.margin):
-        z = logits[0].flatten(1).T.numpy()
-        y = target[0].flatten().numpy()
-        chosen = (y != ignore) & (rng.random(y.shape) < keep)
-        parts_x.append(z[chosen])
-        parts_y.append(y[chosen])
+    kept = run.best_sample
+    if kept is None or kept[0] != run.p["best_epoch"]:
+        sample = _PixelSample(run)
+        for logits, target in _scored_blocks(model, run.val_images, run.val_masks, margin=run.margin,
+                                             channels_last=run.t.channels_last):
+            sample(logits, target)
+        kept = (run.p["best_epoch"], sample)
+    sample = kept[1]
     k = model.num_classes
-    x = np.concatenate(parts_x) if parts_x else np.zeros((0, k), np.float32)
-    y = np.concatenate(parts_y) if parts_y else np.zeros(0, np.int64)
+    x = np.concatenate(sample.x) if sample.x else np.zeros((0, k), np.float32)
+    y = np.concatenate(sample.y) if sample.y else np.zeros(0, np.int64)
     if g.world > 1:  # equal shapes for the exchange: pad with ignored rows, dropped afterwards
         size = int(parallel.all_sum(g, torch.tensor([float(len(y))]), op="max").item())
         x = np.concatenate([x, np.zeros((size - len(y), k), np.float32)])
@@ -449,7 +542,7 @@ def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
         x = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(x))])
         y = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(y))])
         x, y = x[y >= 0], y[y >= 0]
-    return x.astype(np.float32), y
+    return x.astype(np.float32), y.astype(np.int64)
 
 
 def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,

@@ -2,13 +2,17 @@
 
 One 10k×10k labelled image yields as many patches as an epoch asks for: random crops of a set size, optionally
 class-balanced (pick a class uniformly, then one of its pixels as the crop centre), so rare classes and sparse
-scribbles are seen as often as common ones. Crops that leave the image are padded: image with 0, mask with the
-ignore value, so padding never counts in the loss.
+scribbles are seen as often as common ones. By default (``balanced=None``) crops are balanced when the labels are
+sparse — under ``SPARSE_SHARE`` of the pixels labelled, as with scribbled strokes — and plain otherwise. Crops
+that leave the image are padded: image with 0, mask with the ignore value, so padding never counts in the loss.
 
 Augmentation is torchvision.transforms.v2 acting on a ``tv_tensors.Image`` and a ``tv_tensors.Mask`` in one
 call, so every geometric step (scale, flips, quarter turns) is applied identically to both; masks are resampled
-nearest-neighbour and filled with the ignore value. Brightness and contrast act on the image only, for any
-number of bands in raw units (torchvision's ColorJitter assumes 1 or 3 channels scaled to [0, 1]).
+nearest-neighbour. The zoom resizes a centred square of the crop (one resize rather than an affine warp that
+samples a grid) and quarter turns are exact index permutations (torch.rot90): an augmented 96-pixel patch took
+8-9 ms instead of 14-20 ms, measured side by side on a busy 2-core machine, where a small net's training step
+on 8 patches takes 200-300 ms. Brightness and contrast act on the image only, for
+any number of bands in raw units (torchvision's ColorJitter assumes 1 or 3 channels scaled to [0, 1]).
 """
 
 from __future__ import annotations
@@ -25,6 +29,12 @@ from torchvision.transforms import v2
 from torchvision.transforms.v2 import functional as F
 
 from fcnkit.errors import DataError
+
+# Labels covering less than this share of the pixels count as sparse, and are sampled class-balanced when
+# ``balanced`` is left to the data. Measured on scribbles (about 2 % of the pixels labelled) in
+# scripts/bench_train_vs_script.py: balanced crops raised the validation mIoU reached in a 20 s budget in each
+# of 4 runs (by 0.03 to 0.19), while on dense labels they were no better than plain crops.
+SPARSE_SHARE = 0.5
 
 
 class BandJitter(v2.Transform):
@@ -52,22 +62,58 @@ class BandJitter(v2.Transform):
         return tv_tensors.wrap(out, like=inpt)
 
 
-def augmentation(patch: int, *, ignore: int = 255, scale: tuple[float, float] | None = (0.8, 1.25),
-                 brightness: float = 0.2, contrast: float = 0.2, limit: float | None = None) -> v2.Compose:
-    """The v2 pipeline applied to (Image, Mask) pairs of side ≥ ``patch``; returns ``patch``-sided pairs.
+class RandomZoom(v2.Transform):
+    """Zoom about the centre by a factor drawn uniformly from ``scale`` (above 1 enlarges) and keep the centre
+    ``patch``×``patch``: the centred square of side patch / factor is resized to ``patch``: bilinear for images,
+    nearest for masks, both sampling at pixel centres (torch's "nearest" would sample at pixel corners and shift
+    the mask by up to a source pixel against the image). Inputs must be at least patch / min(scale) a side."""
+
+    def __init__(self, patch: int, scale: tuple[float, float]) -> None:
+        super().__init__()
+        self.patch, self.scale = patch, scale
+
+    def make_params(self, flat_inputs: list[Any]) -> dict[str, float]:
+        return {"factor": float(torch.empty(1).uniform_(*self.scale))}
+
+    def transform(self, inpt: Any, params: dict[str, Any]) -> Any:
+        h, w = inpt.shape[-2:]
+        side = max(1, min(round(self.patch / params["factor"]), h, w))
+        box = ((h - side) // 2, (w - side) // 2, side, side, [self.patch, self.patch])
+        if isinstance(inpt, tv_tensors.Mask):
+            plain = inpt.as_subclass(torch.Tensor)[None]
+            out = F.resized_crop(plain, *box, interpolation=v2.InterpolationMode.NEAREST_EXACT)[0]
+            return tv_tensors.wrap(out, like=inpt)
+        return F.resized_crop(inpt, *box, interpolation=v2.InterpolationMode.BILINEAR, antialias=False)
+
+
+class RandomQuarterTurn(v2.Transform):
+    """Turn image and mask together by 90° with probability ``p`` (an exact permutation of pixels)."""
+
+    def __init__(self, p: float = 0.5) -> None:
+        super().__init__()
+        self.p = p
+
+    def make_params(self, flat_inputs: list[Any]) -> dict[str, bool]:
+        return {"turn": bool(torch.rand(1) < self.p)}
+
+    def transform(self, inpt: Any, params: dict[str, Any]) -> Any:
+        return tv_tensors.wrap(inpt.rot90(1, (-2, -1)), like=inpt) if params["turn"] else inpt
+
+
+def augmentation(patch: int, *, scale: tuple[float, float] | None = (0.8, 1.25), brightness: float = 0.2,
+                 contrast: float = 0.2, limit: float | None = None) -> v2.Compose:
+    """The v2 pipeline applied to (Image, Mask) pairs of side ≥ ``patch`` (≥ patch / scale[0] with ``scale``);
+    returns ``patch``-sided pairs.
 
     ``scale`` zooms by a factor drawn from the range (above 1 enlarges), then the centre ``patch``×``patch``
     is kept; flips and quarter turns give all eight orientations.
     """
-    fill = {tv_tensors.Image: 0.0, tv_tensors.Mask: ignore}
-    steps: list[v2.Transform] = []
-    if scale is not None:
-        steps += [v2.RandomAffine(degrees=0, scale=scale, interpolation=v2.InterpolationMode.BILINEAR, fill=fill)]
+    zoom = scale is not None and tuple(scale) != (1.0, 1.0)  # a range of exactly 1 is no zoom: skip the resize
+    steps: list[v2.Transform] = [RandomZoom(patch, scale) if zoom else v2.CenterCrop(patch)]
     steps += [
-        v2.CenterCrop(patch),
         v2.RandomHorizontalFlip(),
         v2.RandomVerticalFlip(),
-        v2.RandomApply([v2.RandomRotation((90, 90), fill=fill)], p=0.5),
+        RandomQuarterTurn(),
         BandJitter(brightness, contrast, limit),
     ]
     return v2.Compose(steps)
@@ -77,11 +123,12 @@ class PatchDataset(Dataset):
     """``count`` random patches per epoch from H×W×B images (arrays or memmaps) and their H×W uint8 masks.
 
     Item i of epoch e is a pure function of (seed, e, i); call ``set_epoch(e)`` before each epoch. Returns
-    (image float32 tensor B×P×P in raw pixel units, mask int64 tensor P×P).
+    (image float32 tensor B×P×P in raw pixel units, mask int64 tensor P×P). ``balanced=None`` balances the
+    crops when labels are sparse (see ``SPARSE_SHARE``); ``self.balanced`` tells what was chosen.
     """
 
     def __init__(self, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], patch: int, count: int, *,
-                 balanced: bool = False, ignore: int = 255, augment: bool = False,
+                 balanced: bool | None = False, ignore: int = 255, augment: bool = False,
                  scale: tuple[float, float] | None = (0.8, 1.25), seed: int = 0, brightness: float = 0.2,
                  contrast: float = 0.2) -> None:
         _check_args(patch, count, ignore, scale)
@@ -96,17 +143,21 @@ class PatchDataset(Dataset):
                                 "mask the size of its image)")
             if im.shape[2] != self.images[0].shape[2]:
                 raise DataError(f"sample {k}: {im.shape[2]} bands but sample 0 has {self.images[0].shape[2]}")
+        rows = [_row_counts(m) for m in self.masks] if balanced is None else None
+        if rows is not None:
+            labelled = sum(int(r.sum() - r[:, ignore].sum()) for r in rows)
+            balanced = labelled < SPARSE_SHARE * sum(m.size for m in self.masks)
         self.patch, self.count, self.balanced, self.ignore, self.seed = patch, count, balanced, ignore, seed
         self.epoch = 0
         zoom_out = scale[0] if augment and scale is not None else 1.0
         self.crop = max(patch, math.ceil(patch / zoom_out))  # source side that still fills P×P after zooming
         limit = {np.dtype(np.uint8): 255.0, np.dtype(np.uint16): 65535.0}.get(self.images[0].dtype)
-        self.augment = augmentation(patch, ignore=ignore, scale=scale, brightness=brightness, contrast=contrast,
+        self.augment = augmentation(patch, scale=scale, brightness=brightness, contrast=contrast,
                                     limit=limit) if augment else None
         areas = np.array([m.size for m in self.masks], np.float64)
         self._image_p = areas / areas.sum()
         if balanced:
-            self._index_classes()
+            self._index_classes(rows)
 
     def set_epoch(self, epoch: int) -> None:
         self.epoch = int(epoch)
@@ -143,9 +194,9 @@ class PatchDataset(Dataset):
         left = int(rng.integers(w - c + 1)) if w >= c else (w - c) // 2
         return j, top, left
 
-    def _index_classes(self) -> None:
+    def _index_classes(self, rows: list[np.ndarray] | None = None) -> None:
         """Per image, cumulative per-row pixel counts of every labelled value: O(rows × classes) memory."""
-        rows = [_row_counts(m) for m in self.masks]
+        rows = rows if rows is not None else [_row_counts(m) for m in self.masks]
         present = np.flatnonzero(sum(r.sum(axis=0) for r in rows))
         self._values = present[present != self.ignore]
         self._cum = [np.cumsum(r[:, self._values], axis=0) for r in rows]
