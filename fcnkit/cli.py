@@ -1,16 +1,22 @@
 """Command-line interface: a thin argparse layer over the public API.
 
-Every error caused by the user's input is printed as one line on stderr and exits with status 2.
+Every error caused by the user's input is printed as one line on stderr and exits with status 2. Ctrl-C
+(SIGINT) and SIGTERM stop a command alike, cleaning up as it goes (training first writes a resume point): exit
+status 130 for SIGINT, 143 for SIGTERM (128 + the signal's number).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
+import os
+import signal
 import sys
-from collections.abc import Callable, Sequence
+import threading
+from collections.abc import Callable, Iterator, Sequence
 
-from fcnkit.errors import FcnkitError
+from fcnkit.errors import FcnkitError, Interrupted
 
 
 class _Parser(argparse.ArgumentParser):
@@ -45,10 +51,8 @@ def _add_describe(sub: argparse._SubParsersAction) -> None:
 
 
 def _export(args: argparse.Namespace) -> int:
-    from fcnkit.export import check_destination
     from fcnkit.model import Model
 
-    check_destination(args.out)
     print(Model.load(args.model).export(args.out, args.format).summary())
     return 0
 
@@ -63,7 +67,6 @@ def _add_export(sub: argparse._SubParsersAction) -> None:
 
 def _train(args: argparse.Namespace) -> int:
     import math
-    import os
 
     from fcnkit.config import config_to_dict, load_config
     from fcnkit.model import Model
@@ -125,10 +128,10 @@ def _evaluate(args: argparse.Namespace) -> int:
     r = evaluate(args.model, args.data, json_path=args.json, report=args.report, curves=args.curves,
                  examples=args.examples, scan=args.scan, tile=args.tile, overlap=args.overlap, batch=args.batch,
                  window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
-                 max_pixels=args.max_pixels, progress=not args.quiet)
+                 max_pixels=args.max_pixels, progress=not args.quiet, note=_note)
     print(r.table())
-    for what, path in r.paths.items():
-        print(f"{what}: {path}")
+    for what, path in r.paths.items():  # in full: the scores go to the current folder unless --json says otherwise
+        print(f"{what}: {os.path.abspath(path)}")
     return 0
 
 
@@ -137,7 +140,8 @@ def _add_evaluate(sub: argparse._SubParsersAction) -> None:
     p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")
     p.add_argument("--data", required=True, metavar="DIR", help="labelled folder (images/, masks/, classes.toml)")
     p.add_argument("--json", default="evaluation.json", metavar="FILE",
-                   help="where to write the scores (default evaluation.json)")
+                   help="where to write the scores (default evaluation.json in the current folder; the full path "
+                   "is printed)")
     p.add_argument("--report", metavar="FILE", help="also write a self-contained HTML report here")
     p.add_argument("--curves", metavar="CSV", help="training metrics for the report (default: metrics.csv beside "
                    "the model file, if any)")
@@ -206,9 +210,12 @@ def _convert(args: argparse.Namespace) -> int:
     if args.grow and args.save is None:
         raise FcnkitError("--grow: give --save MODEL for the segmenter's model file")
     if args.save is not None:  # before minutes of conversion, not after
-        from fcnkit.export import check_destination
+        from pathlib import Path
 
-        check_destination(args.save)
+        from fcnkit.destinations import check_outputs
+
+        source = args.source if Path(args.source).is_file() else None
+        check_outputs([args.save], inputs=[source, args.weights, args.classes])
     table = load_classes(args.classes) if args.classes else None
     src = load_classifier(args.source, args.weights, random_weights=args.random_weights)
     conv = convert_classifier(src.module, args.native, global_pool=args.pool, sizes=tuple(args.sizes),
@@ -349,17 +356,17 @@ def _assess(args: argparse.Namespace) -> int:
 
     if args.pixel_size is not None and not args.pixel_size > 0:
         raise FcnkitError(f"--pixel-size {args.pixel_size} (expected a positive number of metres)")
-    if args.report:  # before the work, not after
-        from fcnkit.export import check_destination
+    from fcnkit.destinations import check_outputs
 
-        check_destination(args.report, FcnkitError)
+    check_outputs([args.json, args.csv, *([args.report] if args.report else [])],  # before the work, not after
+                  inputs=[args.sample, args.labels, args.counts, args.classes])
     table = assess_sample(args.sample, labels=args.labels, counts=args.counts,
                           classes=load_classes(args.classes) if args.classes else None,
                           pixel_area_m2=args.pixel_size ** 2 if args.pixel_size is not None else None,
                           reference_field=args.reference_field, json_path=args.json, csv_path=args.csv,
                           max_pixels=args.max_pixels)
     print(format_assessment(table))
-    print(f"json: {args.json}\ncsv: {args.csv}")
+    print(f"json: {os.path.abspath(args.json)}\ncsv: {os.path.abspath(args.csv)}")
     if args.report:
         from fcnkit.report import write_assessment_report
 
@@ -409,10 +416,35 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _terminate(signum: int, frame: object) -> None:
+    raise Interrupted("terminated", signum)
+
+
+@contextlib.contextmanager
+def _signals() -> Iterator[None]:
+    """SIGTERM stops a command as Ctrl-C does (each command cleans up as it goes; training writes a resume
+    point), and text that the terminal's encoding cannot show — file names that are not UTF-8 — is printed
+    as escapes instead of failing the command."""
+    from fcnkit.atomic import ESCAPES
+
+    previous = None
+    if threading.current_thread() is threading.main_thread():
+        previous = signal.signal(signal.SIGTERM, _terminate)
+    for stream in (sys.stdout, sys.stderr):
+        if hasattr(stream, "reconfigure") and getattr(stream, "errors", ESCAPES) == "strict":
+            stream.reconfigure(errors=ESCAPES)
+    try:
+        yield
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        return int(args.run(args) or 0)
+        with _signals():
+            return int(args.run(args) or 0)
     except FcnkitError as e:
         message = " ".join(str(e).splitlines())  # always one line, whatever the message holds
         sys.stderr.write(f"fcnkit {args.command}: error: {message}\n")
@@ -423,4 +455,4 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     except KeyboardInterrupt as e:  # the message, when there is one, says what was saved
         sys.stderr.write(f"fcnkit {args.command}: {str(e) or 'interrupted'}\n")
-        return 130
+        return 128 + getattr(e, "signum", signal.SIGINT)  # 130 for Ctrl-C, 143 for SIGTERM

@@ -145,6 +145,8 @@ def load_config(path: str | Path) -> Config:
     except tomllib.TOMLDecodeError as e:
         detail = " ".join(str(e).split())
         raise ConfigError(f"{path}: not valid TOML ({detail}); expected a TOML config file") from None
+    except RecursionError:
+        raise ConfigError(f"{path}: arrays or tables nested too deeply to read; expected a TOML config file") from None
     try:
         return config_from_dict(table)
     except ConfigError as e:

@@ -30,6 +30,7 @@ from fcnkit.convert import DENSE_KIND, GROWN_KIND, Conversion, default_normalisa
 from fcnkit.data.classes import ClassTable, load_classes
 from fcnkit.errors import ConfigError, FcnkitError, ModelFileError
 from fcnkit.geometry import PadPlan
+from fcnkit.inputrange import check_stats
 from fcnkit.modelfile import read_model_file, write_model_file
 from fcnkit.nets import PaddedNet, build_model
 from fcnkit.nets.graph import NetGeometry, net_geometry
@@ -88,7 +89,7 @@ class Model(nn.Module):
     def __init__(self, net: PaddedNet | None, *, classes: ClassTable | None, mean: Sequence[float] | None = None,
                  std: Sequence[float] | None = None, kind: str = ENCODER_DECODER,
                  config: dict[str, Any] | None = None, extra: dict[str, Any] | None = None,
-                 temperature: float = 1.0) -> None:
+                 temperature: float = 1.0, input_stats: dict[str, Any] | None = None) -> None:
         super().__init__()
         self.net = net
         self.classes = classes
@@ -96,6 +97,7 @@ class Model(nn.Module):
         self.config = dict(config or {})
         self.extra = dict(extra or {})
         self.temperature = float(temperature)
+        self.input_stats = input_stats  # per-band pixel statistics of the training data (fcnkit.inputrange)
         self.register_buffer("mean", None, persistent=False)
         self.register_buffer("std", None, persistent=False)
         if mean is not None and std is not None:
@@ -262,7 +264,7 @@ class Model(nn.Module):
         classes = self.classes or ClassTable.generic(self.num_classes)
         return {"kind": self.kind, "version": __version__, "config": self.config, "classes": classes.to_dict(),
                 "mean": norm[0], "std": norm[1], "padding": self.plan.to_dict(), "temperature": self.temperature,
-                "extra": self.extra}
+                "extra": self.extra, **({"input_stats": self.input_stats} if self.input_stats is not None else {})}
 
     def save(self, path: str | Path) -> Path:
         """Write the model to one safetensors file (atomically)."""
@@ -285,8 +287,10 @@ class Model(nn.Module):
             raise ModelFileError(f"{where}: metadata gives {len(mean)} bands and {classes.num_classes} classes but "
                                  f"the net has {net.bands} bands and {net.classes} classes")
         _load_weights(net, tensors, where)
+        stats = values.get("input_stats")
         model = cls(net.eval(), classes=classes, mean=mean, std=std, kind=kind, config=values["config"],
-                    extra=values["extra"], temperature=temperature).eval()
+                    extra=values["extra"], temperature=temperature,
+                    input_stats=None if stats is None else check_stats(stats, net.bands, where)).eval()
         model.path = Path(path)  # where it came from (training records it as the run's starting point)
         return model
 

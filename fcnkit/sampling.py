@@ -38,6 +38,7 @@ from fcnkit.assessment import (
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import SEGMENT_MAX_PIXELS, TIFF_SUFFIXES, ArrayRaster, Raster, open_raster
+from fcnkit.destinations import check_outputs
 from fcnkit.errors import DataError
 
 SAMPLE_FIELDS = ("point_id", "row", "col", "x", "y", "map_id", "map_class", "reference")
@@ -256,8 +257,6 @@ def _check_outputs(out: str | Path | Sequence[str | Path]) -> list[Path]:
         if p.suffix.lower() not in SAMPLE_SUFFIXES:
             raise DataError(f"{p}: unsupported sample file type {p.suffix or '(none)'}; expected one of: "
                             + ", ".join(SAMPLE_SUFFIXES))
-        if not p.parent.is_dir():
-            raise DataError(f"{p}: cannot write here, folder {p.parent} does not exist")
     return paths
 
 
@@ -282,6 +281,8 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
     paths = _check_outputs(out)
     if chips is not None and image is None:
         raise DataError("image chips need the mapped image (the image the label map was made from)")
+    check_outputs(paths, inputs=[labels, image], folders=[(chips, "point_*.png")] if chips is not None else [],
+                  error=DataError)
     if total is not None and total < 1:
         raise DataError(f"sample size {total} points (expected at least 1)")
     if minimum < 0:
@@ -512,6 +513,8 @@ def read_counts(path: str | Path) -> tuple[dict[int, int], float | None]:
                 entries = list(csv.DictReader(f))
     except (UnicodeDecodeError, json.JSONDecodeError, csv.Error) as e:
         raise DataError(f"{path}: not a readable counts file ({e})") from None
+    except RecursionError:
+        raise DataError(f"{path}: not a readable counts file (nested too deeply)") from None
     counts: dict[int, int] = {}
     for e in entries:
         if not isinstance(e, dict) or "id" not in e or "pixels" not in e:
@@ -566,9 +569,8 @@ def assess_sample(sample: str | Path, *, labels: str | Path | None = None, count
         raise DataError("give either the label map or a file of its pixel counts per class (not both)")
     if pixel_area_m2 is not None and not pixel_area_m2 > 0:
         raise DataError(f"pixel area {pixel_area_m2} m² (expected a positive number)")
-    for out in (json_path, csv_path):
-        if out is not None and not Path(out).parent.is_dir():
-            raise DataError(f"{out}: cannot write here, folder {Path(out).parent} does not exist")
+    check_outputs([p for p in (json_path, csv_path) if p is not None], inputs=[sample, labels, counts],
+                  error=DataError)
     points = read_sample(sample, reference_field, need_cells=labels is not None)
     area_source = "given" if pixel_area_m2 is not None else None
     if labels is not None:

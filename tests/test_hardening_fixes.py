@@ -249,14 +249,14 @@ def test_a_read_only_folder_is_refused_before_any_work_even_for_root(tmp_path):
     """os.access says yes to root on any folder; the destination check now creates a probe file instead."""
     from bad_inputs import Workspace
 
-    from fcnkit.export import check_destination
+    from fcnkit.destinations import check_outputs
 
     folder = Workspace.read_only(Workspace.__new__(Workspace), tmp_path)  # only uses its folder argument
     with pytest.raises(FcnkitError, match="m.onnx: cannot write here"):
-        check_destination(folder / "m.onnx")
+        check_outputs([folder / "m.onnx"])
     with pytest.raises(FcnkitError, match="y.txt: cannot write here"):  # atomic output names the final file
         write_text_atomic(folder / "y.txt", "z")
-    check_destination(tmp_path / "fine.onnx")
+    check_outputs([tmp_path / "fine.onnx"])
     assert not [p for p in tmp_path.iterdir() if ".partial" in p.name]  # the probe is removed
 
 

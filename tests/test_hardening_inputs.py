@@ -1,6 +1,6 @@
 """The malformed-input battery (cases in tests/bad_inputs.py) against the CLI contract for bad input:
 exit status 2, exactly one line on stderr naming the culprit and what was expected, no traceback, nothing new
-under a final name in the output location and no hidden .partial file left behind."""
+under a final name in the output location, no hidden .partial file left behind and no earlier file changed."""
 
 from __future__ import annotations
 
@@ -48,6 +48,7 @@ def test_bad_input_gives_one_line_and_exit_2(ws, c):
         assert want.lower() in line.lower(), f"{want!r} not in: {line}"
     assert not o.new_files, o.new_files
     assert not o.partials, o.partials
+    assert not o.changed, o.changed
     markers = list((ws.root / "cases").rglob("MARKER"))
     assert not markers, f"a pickle payload ran: {markers}"
 

@@ -220,6 +220,8 @@ def read_classes_toml(path: str | Path) -> tuple[ClassTable | None, list[str]]:
         return None, [f"{path}: missing (expected a class table, see README 'Dataset folders')"]
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as e:
         return None, [f"{path}: not readable as TOML ({e})"]
+    except RecursionError:
+        return None, [f"{path}: not readable as TOML (arrays or tables nested too deeply)"]
     problems: list[str] = []
     raw = _parse(d, problems)
     if raw is not None:

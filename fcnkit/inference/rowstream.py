@@ -291,7 +291,15 @@ _POINTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.GELU, nn.SiLU, nn.Sigmoid, nn.
 def _conv_relu(x: torch.Tensor, m: nn.Conv2d, stride: tuple[int, int], padding: tuple[int, int],
                dilation: tuple[int, int]) -> torch.Tensor:
     """Convolution with the ReLU after it done by oneDNN in the same pass (the fused kernel torch's own compiler
-    uses on CPUs); results equal conv2d followed by relu."""
+    uses on CPUs); results equal conv2d followed by relu.
+
+    The fused ReLU turns NaN into 0 where ``relu`` keeps it, so rows would quietly differ from whole-image
+    inference: input that is not finite (its sum is not; a sum that merely overflows also lands here, harmlessly)
+    takes the unfused path, and the NaN reaches the scores, where every scan refuses it. A NaN born inside one
+    convolution from finite input needs sums overflowing float32 both ways, which pixels within the training
+    range check's limit (fcnkit.inputrange) cannot produce with finite weights."""
+    if not bool(torch.isfinite(x.sum())):
+        return F.relu(F.conv2d(x, m.weight, m.bias, stride, padding, dilation, m.groups))
     return torch.ops.mkldnn._convolution_pointwise(x, m.weight, m.bias, list(padding), list(stride), list(dilation),
                                                    m.groups, "relu", [None], "")
 

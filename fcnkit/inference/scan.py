@@ -29,6 +29,7 @@ from fcnkit.errors import ConfigError, DataError
 from fcnkit.inference.engines import Engine, make_engine, prepared
 from fcnkit.inference.rowstream import NotStreamable, RowStreamer
 from fcnkit.inference.tiles import DEFAULT_TILE, auto_batch, plan_tiles, stream_tiles
+from fcnkit.inputrange import RangeCheck
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -110,11 +111,16 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
                   overlap: int | None = None, batch: int | None = None, window: str | None = None,
                   exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
                   engine: str | Engine = "torch", progress: bool = False, desc: str = "mapping",
-                  echo: Callable[[str], None] | None = None) -> Iterator[tuple[int, torch.Tensor]]:
+                  echo: Callable[[str], None] | None = None,
+                  note: Callable[[str], None] | None = None) -> Iterator[tuple[int, torch.Tensor]]:
     """Choose the scan (:func:`choose_scan`) and stream the class probabilities (the model's calibrated ones,
     or ``logits``) of ``raster`` as (first row, C×h×W float32) bands from top to bottom. The checks run at once,
     before the first band is asked for; ``echo`` receives the one-line note of an automatic choice. Tile
     settings left as None take their defaults (512 px tiles, Hann window, a batch of about a quarter megapixel).
+
+    Every region read is checked against the model's training range (:mod:`fcnkit.inputrange`: ``note``, or a
+    RangeWarning, when outside; DataError when far outside), and every band of scores must be finite: a NaN or
+    inf anywhere in the net ends the scan with a DataError on every scan alike, never a plausible-looking map.
     """
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
@@ -125,9 +131,11 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
         raise ConfigError("tta: flip test-time augmentation cannot be combined with exact tiles "
                           "(flipped tiles see different pooling grids)")
     height, width, bands = raster.shape
+    where = str(raster.path or "image")
     if bands != model.bands:
-        where = raster.path or "image"
         raise DataError(f"{where}: has {bands} bands but the model expects {model.bands}")
+    if model.input_stats is not None:
+        raster = RangeCheck(raster, model.input_stats, where=where, model=str(model.path or "the model"), note=note)
     asked = any(v is not None for v in (tile, overlap, batch, window))
     choice = choose_scan(model, height, width, scan, tiles_asked=asked, exact_tiles=exact, tta=tta, engine=engine)
     graph = prepared(model, "graph", lambda m: layer_graph(m.net))
@@ -135,11 +143,11 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     if choice.scan == "rows":
         streamer = _streamer(model, bf16)
         check_forward_memory(graph, streamer.band_rows(width), width, 1, bands, factor=factor)  # type: ignore[arg-type]
-        return streamer.stream(raster, logits=logits, progress=progress, desc=desc)
+        return _finite(streamer.stream(raster, logits=logits, progress=progress, desc=desc), where)
     run = engine if callable(engine) else make_engine(engine, model, bf16)
     if choice.scan == "whole":
         _say(echo, choice)
-        return _whole(run, raster, model, logits)
+        return _finite(_whole(run, raster, model, logits), where)
     plan = plan_tiles(model.geometry, height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
                       window=window or "hann", exact=exact)
     batch = batch or auto_batch(plan)
@@ -147,8 +155,20 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     check_forward_memory(graph, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,  # type: ignore[arg-type]
                          factor=factor)
     _say(echo, choice)
-    return stream_tiles(run, raster, plan, batch=batch, tta=tta, probabilities=None if logits else model.probabilities,
-                        progress=progress, desc=desc)
+    return _finite(stream_tiles(run, raster, plan, batch=batch, tta=tta,
+                                probabilities=None if logits else model.probabilities, progress=progress, desc=desc),
+                   where)
+
+
+def _finite(bands: Iterator[tuple[int, torch.Tensor]], where: str) -> Iterator[tuple[int, torch.Tensor]]:
+    """The bands of scores, each checked to be finite."""
+    for y0, band in bands:
+        if not bool(torch.isfinite(band).all()):
+            bad = torch.nonzero(~torch.isfinite(band))[0].tolist()
+            raise DataError(f"{where}: the model's class scores are NaN or infinite at row {y0 + bad[1]}, column "
+                            f"{bad[2]} (its activations overflowed: pixel values far outside what it was trained "
+                            "on, or a damaged model)")
+        yield y0, band
 
 
 def _say(echo: Callable[[str], None] | None, choice: ScanChoice) -> None:

@@ -11,9 +11,10 @@ from pathlib import Path
 
 import numpy as np
 
+from fcnkit.atomic import DISK_FULL, default_mode
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import SEGMENT_MAX_PIXELS
-from fcnkit.errors import ConfigError
+from fcnkit.errors import ConfigError, DataError, DiskFullError
 from fcnkit.inference.engines import Engine, make_engine
 from fcnkit.inference.scan import stream_scores
 from fcnkit.model import Model
@@ -36,9 +37,18 @@ class SegmentResult:
     size: tuple[int, int] = (0, 0)  # height, width
 
 
-def _prepare_folder(out_dir: Path) -> None:
-    from fcnkit.errors import DataError
+def check_segment_outputs(model: Model, images: Sequence[Path], out_dir: Path) -> None:
+    """Refuse, before any work, outputs that would replace an input (an image, the model file) or weights
+    (:func:`fcnkit.destinations.check_outputs`), for every output name an image may get."""
+    from fcnkit.destinations import check_outputs
+    from fcnkit.outputs import output_names
 
+    names = {out_dir / n for p in images for tiff in (False, True) for geo in (False, True)
+             for n in output_names(p.stem, tiff, geo).values()}
+    check_outputs(sorted(names), inputs=[model.path, *images], folders=[out_dir], error=DataError)
+
+
+def _prepare_folder(out_dir: Path) -> None:
     if out_dir.exists() and not out_dir.is_dir():
         raise DataError(f"{out_dir}: is a file, expected an output folder")
     try:
@@ -73,6 +83,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
     model = as_model(model_or_path)
     image_path, out_dir = Path(image_path), Path(out_dir)
+    check_segment_outputs(model, [image_path], out_dir)
     _prepare_folder(out_dir)
     raster = open_raster(image_path, max_pixels)
     work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
@@ -80,7 +91,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         height, width, _ = raster.shape
         scores = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
                                exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
-                               desc=image_path.name, echo=note)
+                               desc=image_path.name, echo=note, note=note)
         done = work / "done"
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
@@ -89,9 +100,20 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
                                      done, image_path.stem, work=work if large else None, pixel_size=pixel_size,
                                      preview=preview)
         final = {k: out_dir / p.name for k, p in paths.items()}
+        mode = default_mode()
         for k, p in paths.items():  # renames within one file system: each is atomic, all follow at once
+            p.chmod(mode)
             p.replace(final[k])
         return SegmentResult(final, areas, (height, width))
+    except (OSError, DiskFullError) as e:  # written in the work folder: name the file's final place
+        if isinstance(e, DiskFullError):
+            where, why = out_dir / Path(str(e.path)).name, e.reason
+        elif e.errno in DISK_FULL:
+            where, why = out_dir, e.strerror or str(e)
+        else:
+            raise
+        raise DiskFullError(f"{where}: {why} while writing the maps of {image_path} (nothing was written under a "
+                            "final name; free some space or write elsewhere)", where, why) from None
     finally:
         raster.close()
         shutil.rmtree(work, ignore_errors=True)
@@ -101,7 +123,6 @@ def find_images(inputs: Sequence[str | Path]) -> list[Path]:
     """Image files named directly or found (not recursively) in folders, sorted; DataError for a missing input
     or two inputs whose outputs would share a name."""
     from fcnkit.data.raster import RASTER_SUFFIXES
-    from fcnkit.errors import DataError
 
     found: list[Path] = []
     for item in map(Path, inputs):
@@ -144,6 +165,7 @@ def segment_images(model_or_path: Model | str | Path, inputs: Sequence[str | Pat
     distinct one-line note once."""
     model = as_model(model_or_path)
     files = shard(find_images(inputs), rank, world)
+    check_segment_outputs(model, files, Path(out_dir))  # every image's, before the first is mapped
     engine = options.get("engine", "torch")
     if isinstance(engine, str) and engine != "torch":  # e.g. onnxruntime: build the session once
         options["engine"] = make_engine(engine, model)
