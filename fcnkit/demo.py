@@ -7,8 +7,9 @@ Everything happens in one output folder (default ``fcnkit-demo``), in the invent
 2. the shipped ``demo`` config is trained on the training scenes (a validation split is held back by the trainer);
 3. the best model is evaluated on the test scenes, with the JSON scores and the HTML report;
 4. a large GeoTIFF mosaic (8192×8192 by default) and its true labels are written block by block;
-5. the mosaic is mapped by exact row streaming (labels, confidence, uncertainty, overlay, area table), and
-   the map is scored against the mosaic's true labels;
+5. the mosaic is mapped by exact row streaming (labels, confidence, uncertainty and overlay as Cloud-Optimised
+   GeoTIFFs, area table, class polygons of 25 m² or more as a GeoPackage), and the map is scored against the
+   mosaic's true labels;
 6. a stratified random reference sample is drawn from the map, its reference classes are filled in from the
    mosaic's true labels (in real use a person does this, in a GIS or in the field), and accuracy and area
    are estimated with 95 % intervals (Olofsson et al. 2014); the report gets that section.
@@ -33,6 +34,7 @@ from fcnkit.errors import DataError
 
 CONFIG = "demo"  # the shipped config (fcnkit/configs/demo.toml)
 MARKER = ".fcnkit-demo"
+MIN_POLYGON_M2 = 25.0  # class polygons smaller than this (100 pixels of 0.5 m) are left out of the demo's layer
 PARTS = ("scenes", "run", "map", "evaluation.json", "report.html", "mosaic.tif", "mosaic_truth.tif",
          "sample.gpkg", "sample_filled.csv", "assessment.json", "assessment.csv",
          "mosaic_scores.json")
@@ -96,7 +98,7 @@ def _score_map(labels_path: Path, truth_path: Path, num_classes: int, ignore: in
     from fcnkit.data.raster import open_raster
     from fcnkit.metrics import confusion_matrix, segmentation_scores
 
-    pred, truth = open_raster(labels_path, None), open_raster(truth_path, None)
+    pred, truth = open_raster(labels_path, None, indices=True), open_raster(truth_path, None, indices=True)
     try:
         h, w, _ = truth.shape
         cm = np.zeros((num_classes, num_classes), np.int64)
@@ -120,7 +122,7 @@ def fill_from_truth(sample: Any, truth: Path, out: Path) -> Path:
     from fcnkit.data.raster import open_raster
     from fcnkit.data.scenes import SCENE_CLASSES
 
-    raster = open_raster(truth, None)
+    raster = open_raster(truth, None, indices=True)
     try:
         refs = [int(raster.read(int(r), int(r) + 1, int(c), int(c) + 1)[0, 0, 0])
                 for r, c in zip(sample.rows, sample.cols, strict=True)]
@@ -141,7 +143,7 @@ def _true_pixels(truth: Path, k: int) -> np.ndarray:
     """Pixels per class of the mosaic's true labels (read a band of rows at a time)."""
     from fcnkit.data.raster import open_raster
 
-    raster = open_raster(truth, None)
+    raster = open_raster(truth, None, indices=True)
     try:
         h, w, _ = raster.shape
         return sum((np.bincount(raster.read(y0, min(y0 + 1024, h), 0, w).ravel(), minlength=256)[:k]
@@ -183,6 +185,7 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     from fcnkit.evaluate import evaluate
     from fcnkit.inference.segment import segment_image
     from fcnkit.model import Model
+    from fcnkit.outputs import OutputOptions
     from fcnkit.sampling import assess_sample, draw_sample
 
     plan = QUICK if quick else FULL
@@ -215,8 +218,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     model = Model.build(cfg).fit(paths["train_scenes"], out_dir=out / "run", progress=progress)
     result = model.last_run
     paths["model"], paths["curves"] = result.model_path, result.run_dir / "metrics.csv"
-    figures["best_epoch"], figures["val_miou"] = result.best_epoch, result.best_miou
-    step("train", f"      best validation mean IoU {result.best_miou:.4f} at epoch {result.best_epoch}")
+    figures["best_epoch"], figures["val_mean_iou"] = result.best_epoch, result.best_mean_iou
+    step("train", f"      best validation mean IoU {result.best_mean_iou:.4f} at epoch {result.best_epoch}")
 
     echo(f"[3/{n}] evaluating the model on the {plan.test_scenes} held-out test scenes")
     ev = evaluate(paths["model"], paths["test_scenes"], json_path=out / "evaluation.json", curves=paths["curves"],
@@ -234,7 +237,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     step("mosaic", "")
 
     echo(f"[5/{n}] mapping the mosaic in bands of rows (exact: equal to whole-image inference)")
-    seg = segment_image(paths["model"], paths["mosaic"], out / "map", progress=progress)
+    seg = segment_image(paths["model"], paths["mosaic"], out / "map", progress=progress,
+                        outputs=OutputOptions(polygons="gpkg", min_area_m2=MIN_POLYGON_M2))
     paths.update({f"map_{k}": Path(v) for k, v in seg.paths.items()})
     label_path = seg.paths["labels"]
     mosaic_scores = _score_map(label_path, paths["mosaic_truth"], SCENE_CLASSES.num_classes, SCENE_CLASSES.ignore)
@@ -266,6 +270,7 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     width = max(len(k) for k in paths)
     for key, p in paths.items():
         echo(f"  {key:<{width}}  {p}")
-    echo("Open the report in a browser; open the map rasters (GeoTIFF) in any GIS viewer. The figures are "
-         "estimates on synthetic scenes.")
+    echo("Open the report in a browser; open the map rasters (Cloud-Optimised GeoTIFFs with class names, colours "
+         "and nodata) and the class polygons (GeoPackage) in any GIS viewer. The figures are estimates on synthetic "
+         "scenes.")
     return DemoResult(out, paths, figures, seconds, cpu)

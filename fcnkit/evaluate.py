@@ -19,8 +19,8 @@ import numpy as np
 from fcnkit.atomic import ESCAPES, atomic_output
 from fcnkit.calibration import ReliabilityAccumulator, scaled_softmax
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
+from fcnkit.data.dataset import Sample, find_samples, sample_mask
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.destinations import check_outputs, dataset_files
@@ -112,7 +112,7 @@ class Evaluation:
         for i, name in enumerate(self.classes.names):
             share = s["support"][i] / total if total else math.nan
             lines.append(f"{name[:17]:<18}{s['support'][i]:>13,}{share:>8.1%}{s['predicted'][i]:>13,}"
-                         f"{_bias(s['predicted'][i], s['support'][i]):>8}{_num(s['accuracy'][i]):>8}"
+                         f"{_bias(s['predicted'][i], s['support'][i]):>8}{_num(s['recall'][i]):>8}"
                          f"{_num(s['precision'][i]):>10}{_num(s['iou'][i]):>8}{_num(s['dice'][i]):>8}")
         lines.append("recall = producer's accuracy, precision = user's accuracy; bias = predicted / true pixels − 1")
         return "\n".join(lines)
@@ -155,9 +155,8 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
         h, w, bands = raster.shape
         if bands != model.bands:
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
-        mask = read_mask(sample.mask, classes, max_pixels)
-        if mask.shape != (h, w):
-            raise DataError(f"{sample.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image is {w}x{h}")
+        mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
+        raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
         logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, note=note,
                                 **settings)
         cm = np.zeros((k, k), np.int64)

@@ -101,6 +101,9 @@ def load_resume(path: Path, config: dict[str, Any], data: str) -> dict[str, Any]
         what = f"it was {was}, now {now}" if was != now else f"the files of {now} changed since"
         raise ModelFileError(f"{path}: resume point belongs to other training data ({what}); resume with the same "
                              "data or start a new run in another output folder")
+    progress = state.get("progress")
+    if isinstance(progress, dict) and "best_miou" in progress and "best_mean_iou" not in progress:
+        progress["best_mean_iou"] = progress.pop("best_miou")  # the key's spelling before the metric rename
     return state
 
 
@@ -150,8 +153,8 @@ def write_metrics(path: Path, history: list[dict[str, Any]]) -> None:
 
 _REQUIRED = {"model": dict, "mean": torch.Tensor, "std": torch.Tensor, "optimizer": dict, "rng": dict,
              "progress": dict}
-_PROGRESS = ("epoch", "batch", "step", "seconds", "epoch_seconds", "loss_sum", "loss_batches", "pixels", "best_miou",
-             "best_epoch", "bad_epochs", "stopped_early", "history")
+_PROGRESS = ("epoch", "batch", "step", "seconds", "epoch_seconds", "loss_sum", "loss_batches", "pixels",
+             "best_mean_iou", "best_epoch", "bad_epochs", "stopped_early", "history")
 
 
 def check_resume(path: Path, state: dict[str, Any], weights: dict[str, torch.Tensor]) -> None:

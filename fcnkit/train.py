@@ -20,7 +20,7 @@ import signal
 import tempfile
 import threading
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -35,8 +35,8 @@ from tqdm import tqdm
 from fcnkit import parallel, runstate
 from fcnkit.config import TrainConfig, config_from_dict
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, band_stats, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_image, read_mask
+from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.patches import PatchDataset
 from fcnkit.destinations import check_outputs, dataset_files
 from fcnkit.errors import ConfigError, DataError, FcnkitError, Interrupted, ModelFileError
@@ -57,7 +57,7 @@ class TrainResult:
     model_path: Path
     epochs: int  # epochs completed
     best_epoch: int
-    best_miou: float  # NaN when there is no validation split
+    best_mean_iou: float  # NaN when there is no validation split
     stopped_early: bool
     history: list[dict[str, Any]]
 
@@ -68,13 +68,14 @@ class TrainingInterrupted(Interrupted):
 
 def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None = None, *,
           out_dir: str | Path | None = None, resume: bool = False, progress: bool = True,
-          max_pixels: int | None = None, **settings: Any) -> TrainResult:
+          max_pixels: int | None = None, note: Callable[[str], None] | None = None, **settings: Any) -> TrainResult:
     """Train ``model`` on a dataset folder ``data``, or on image arrays ``data`` (H×W×B) and ``masks`` (H×W class
     ids), writing the run to ``out_dir`` (a temporary folder, removed afterwards, when None). ``settings``
     override the model config's [train] table. The model's net is built first when the data has to give its
     band and class counts; its normalisation is measured on the training images unless it has one already
     (a loaded model being fine-tuned keeps its own). The model ends holding the weights of its best epoch.
-    Images and masks above ``max_pixels`` pixels are refused (default 2^27)."""
+    Images and masks above ``max_pixels`` pixels are refused (default 2^27). ``note`` receives one-line remarks
+    on the data (nodata pixels met)."""
     t = _settings(model, settings)
     group, threads = parallel.start(), torch.get_num_threads()
     temporary = out_dir is None
@@ -89,7 +90,7 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
             if t.threads:
                 torch.set_num_threads(t.threads)
             run = _prepare(model, t, data, masks, run_dir, resume, group,
-                           DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels)
+                           DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels, note)
             try:
                 with _StopRequest() as stop:
                     result = _loop(run, stop, progress)
@@ -141,11 +142,15 @@ class _Run:
 
 def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarray],
              masks: Sequence[np.ndarray] | None, run_dir: Path, resume: bool, group: parallel.Group,
-             max_pixels: int | None) -> _Run:
+             max_pixels: int | None, note: Callable[[str], None] | None = None) -> _Run:
     torch.manual_seed(t.seed)
     np.random.seed(t.seed)
     random.seed(t.seed)
-    images, labels, classes, keys, data_id = _data(data, masks, model, max_pixels)
+    notes: list[str] = []
+    images, labels, classes, keys, data_id = _data(data, masks, model, max_pixels, notes)
+    if group.main and note is not None:
+        for text in notes:
+            note(text)
     if not model.built:
         model._make_net(images[0].shape[2], classes.num_classes)
     if model.path is not None:  # fine-tuning a model file: the run records where it started
@@ -186,7 +191,7 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
     else:
         opt = torch.optim.SGD(model.parameters(), lr=t.lr, momentum=t.momentum, weight_decay=t.weight_decay)
     p = {"epoch": 0, "batch": 0, "step": 0, "seconds": 0.0, "epoch_seconds": 0.0, "loss_sum": 0.0,
-         "loss_batches": 0, "pixels": 0, "best_miou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
+         "loss_batches": 0, "pixels": 0, "best_mean_iou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
          "stopped_early": False, "history": []}
     best_state = _copy_state(model)
     if state is not None:
@@ -226,14 +231,15 @@ def split_indices(n: int, val_fraction: float, seed: int) -> tuple[list[int], li
 
 
 def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None, model: Model,
-          max_pixels: int | None) -> tuple[list[np.ndarray], list[np.ndarray], ClassTable, list[str], str]:
+          max_pixels: int | None, notes: list[str]) -> tuple[list[np.ndarray], list[np.ndarray], ClassTable,
+                                                             list[str], str]:
     """Images, masks, class table, each image's name (file stem, or index) and an identity of the data (what a
-    resume point must find again)."""
+    resume point must find again); one-line remarks on the data go to ``notes``."""
     if isinstance(data, (str, Path)):
         if masks is not None:
             raise ConfigError("masks: give them only with image arrays (a dataset folder holds its own masks/)")
         samples, classes = find_samples(data)
-        images, labels = _read(samples, classes, max_pixels, model.bands if model.built else None)
+        images, labels = _read(samples, classes, max_pixels, model.bands if model.built else None, notes)
         ident = ",".join(f"{s.stem}:{s.image.stat().st_size}:{s.mask.stat().st_size}" for s in samples)
         return images, labels, classes, [s.stem for s in samples], f"{Path(data).resolve()}|{ident}"
     if masks is None or len(masks) != len(data) or not len(data):
@@ -309,7 +315,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            px_s=f"{p['pixels'] * g.world / (time.perf_counter() - tic):.3g}")
+                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
@@ -318,7 +324,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
         _end_epoch(run, lr, time.perf_counter() - tic)
         if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
             _interrupt(run, stop.signum)
-    best = p["best_miou"] if p["best_miou"] > -math.inf else math.nan
+    best = p["best_mean_iou"] if p["best_mean_iou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
                        p["stopped_early"], p["history"])
 
@@ -364,16 +370,16 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     loss_sum, batches, pixels, ce, norm = sums.tolist()
     row = {"epoch": p["epoch"] + 1, "seconds": round(p["seconds"] + train_seconds + time.perf_counter() - tic, 2),
            "lr": lr, "train_loss": loss_sum / max(batches, 1), "val_loss": ce / norm if norm > 0 else math.nan,
-           "val_pixel_acc": scores["pixel_accuracy"], "val_mean_acc": scores["mean_accuracy"],
-           "val_miou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
-           "pixels_per_s": round(pixels / max(train_seconds, 1e-9))}
+           "val_pixel_accuracy": scores["pixel_accuracy"], "val_mean_accuracy": scores["mean_accuracy"],
+           "val_mean_iou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
+           "pixels_per_second": round(pixels / max(train_seconds, 1e-9))}
     names = [name.replace(" ", "_") for name in model.classes.names]
     row.update({f"iou_{name}": v for name, v in zip(names, scores["iou"], strict=True)})
     miou = scores["mean_iou"] if not math.isnan(scores["mean_iou"]) else -math.inf
     p.update(epoch=p["epoch"] + 1, batch=0, seconds=row["seconds"], epoch_seconds=0.0, loss_sum=0.0,
              loss_batches=0, pixels=0, history=[*p["history"], row])
-    if p["best_epoch"] == 0 or miou > p["best_miou"] or not run.has_val:  # without validation: keep the latest
-        p.update(best_miou=miou, best_epoch=p["epoch"], bad_epochs=0)
+    if p["best_epoch"] == 0 or miou > p["best_mean_iou"] or not run.has_val:  # without validation: keep the latest
+        p.update(best_mean_iou=miou, best_epoch=p["epoch"], bad_epochs=0)
         run.best_state = _copy_state(model)
         model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:
@@ -502,23 +508,27 @@ def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,
-          bands: int | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
+          bands: int | None = None, notes: list[str] | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Every image and mask of a dataset folder; each image must have ``bands`` bands (the net's, when it is
-    built) and as many as the first."""
+    built) and as many as the first. A line about nodata pixels met goes to ``notes``."""
     images, masks = [], []
+    notes = [] if notes is None else notes
+    nodata = met = 0
     for s in samples:
-        image = read_image(s.image, max_pixels)
+        sample = read_sample(s, classes, max_pixels)  # masks or vector labels; nodata pixels unlabelled
+        image = sample.image
         if bands is not None and image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
         if images and image.shape[2] != images[0].shape[2]:
             raise DataError(f"{s.image}: has {image.shape[2]} bands but {samples[0].image.name} has "
                             f"{images[0].shape[2]} (every image needs the same bands)")
-        mask = read_mask(s.mask, classes, max_pixels)
-        if mask.shape != image.shape[:2]:
-            raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
-                            f"{image.shape[1]}x{image.shape[0]} (expected the same size)")
         images.append(image)
-        masks.append(mask)
+        masks.append(sample.mask)
+        nodata += sample.nodata_pixels
+        met += sample.nodata_pixels > 0
+    if nodata:
+        notes.append(f"nodata: {nodata:,} pixels in {met} of {len(samples)} images are unlabelled and left out of "
+                     "the band statistics")
     return images, masks
 
 

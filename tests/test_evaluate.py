@@ -93,7 +93,7 @@ def test_json_scores_equal_scikit_learn(tmp_path, model_file):
                                                       abs=1e-12)
     assert saved["scores"]["iou"] == pytest.approx(list(jaccard_score(t, p, labels=labels, average=None)))
     assert saved["scores"]["dice"] == pytest.approx(list(f1_score(t, p, labels=labels, average=None)))
-    assert saved["scores"]["accuracy"] == pytest.approx(list(recall_score(t, p, labels=labels, average=None)))
+    assert saved["scores"]["recall"] == pytest.approx(list(recall_score(t, p, labels=labels, average=None)))
     assert saved["scores"]["precision"] == pytest.approx(list(precision_score(t, p, labels=labels, average=None)))
     assert saved["scores"]["predicted"] == np.bincount(p, minlength=3).tolist()
     assert np.array_equal(saved["confusion_matrix"], result.confusion)
