@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from fcnkit.errors import ConfigError
+from fcnkit.inputfiles import require_regular
 
 
 def _opt(default: Any, **rules: Any) -> Any:
@@ -130,6 +131,7 @@ def load_config(path: str | Path) -> Config:
     path = Path(path)
     if not path.exists() and path.suffix == "" and len(path.parts) == 1 and (SHIPPED / f"{path}.toml").is_file():
         path = SHIPPED / f"{path}.toml"
+    require_regular(path, ConfigError)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:

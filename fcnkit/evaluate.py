@@ -28,6 +28,7 @@ from fcnkit.errors import ConfigError, DataError
 from fcnkit.inference.engines import make_engine
 from fcnkit.inference.scan import predict_scores
 from fcnkit.inference.tiles import DEFAULT_TILE
+from fcnkit.inputfiles import require_regular
 from fcnkit.metrics import bootstrap_mean_iou, confusion_matrix, segmentation_scores
 from fcnkit.model import Model
 from fcnkit.outputs import normalised_entropy, strided_rgb
@@ -197,6 +198,8 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
     data_dir = Path(data_dir)
     if examples < 0:
         raise ConfigError(f"examples: {examples} must be >= 0")
+    if curves is not None:
+        require_regular(curves, DataError)
     if curves is not None and not Path(curves).is_file():
         raise DataError(f"{curves}: no such training metrics CSV")
     path = Path(model) if not isinstance(model, Model) else model.path

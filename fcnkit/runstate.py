@@ -131,8 +131,9 @@ def set_rng_states(s: dict[str, Any]) -> None:
 
 def write_metrics(path: Path, history: list[dict[str, Any]]) -> None:
     """The whole per-epoch table as CSV (rewritten from the history each epoch, so a rerun epoch after a
-    crash replaces its row instead of adding a second one). Written by the csv module (RFC 4180 quoting), so
-    a class name holding a comma, quote or line break stays in its own column."""
+    crash replaces its row instead of adding a second one). Written by the csv module with RFC 4180's quoting
+    and CRLF line ends, so a class name holding a comma, quote or line break (CR or LF) stays in its own column
+    (with LF line ends the csv module leaves a lone CR unquoted, and readers take it for a line end)."""
     if not history:
         return
     columns = list(history[0])
@@ -143,7 +144,7 @@ def write_metrics(path: Path, history: list[dict[str, Any]]) -> None:
         return str(v)
 
     buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\n")
+    writer = csv.writer(buf, lineterminator="\r\n")
     writer.writerow(columns)
     writer.writerows([cell(row.get(c, "")) for c in columns] for row in history)
     write_text_atomic(path, buf.getvalue())

@@ -35,7 +35,7 @@ from tqdm import tqdm
 from fcnkit import parallel, runstate
 from fcnkit.config import TrainConfig, config_from_dict
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
+from fcnkit.data.dataset import Sample, band_stats, find_samples, mixed_images, read_sample
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.patches import PatchDataset
 from fcnkit.destinations import check_outputs, dataset_files
@@ -519,13 +519,13 @@ def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = D
         image = sample.image
         if bands is not None and image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
-        if images and image.shape[2] != images[0].shape[2]:
-            raise DataError(f"{s.image}: has {image.shape[2]} bands but {samples[0].image.name} has "
-                            f"{images[0].shape[2]} (every image needs the same bands)")
         images.append(image)
         masks.append(sample.mask)
         nodata += sample.nodata_pixels
         met += sample.nodata_pixels > 0
+    mixed = mixed_images([(s.image, x.shape[2], str(x.dtype)) for s, x in zip(samples, images, strict=True)])
+    if mixed:  # the rule `check` applies
+        raise DataError(mixed[0])
     if nodata:
         notes.append(f"nodata: {nodata:,} pixels in {met} of {len(samples)} images are unlabelled and left out of "
                      "the band statistics")

@@ -1633,3 +1633,37 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("demo: --out is a training run's folder", "demo", "run", "not empty", "nothing was changed")
 def _(ws: Workspace, folder: Path) -> Call:
     return Call(["demo", "--quick", "--quiet", "--out", _run_folder(ws, folder)], [folder])
+
+
+# special files where a file is read: a FIFO would block the reader until some process writes to it
+
+def _fifo(path: Path) -> Path:
+    path.unlink(missing_ok=True)
+    os.mkfifo(path)
+    return path
+
+
+_image_case("image: a FIFO (named pipe) named s0.png", lambda d: _fifo(d / "images" / "s0.png"), "s0.png",
+            "FIFO", "not a regular file")
+_data_case("classes.toml: a FIFO (named pipe)", lambda d: _fifo(d / "classes.toml"), "classes.toml", "FIFO",
+           "not a regular file")
+
+
+@case("config: a FIFO (named pipe)", "describe", "bad.toml", "FIFO", "not a regular file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _describe(_fifo(folder / "bad.toml"))
+
+
+_model_case("model: a FIFO (named pipe)", lambda ws, f: _fifo(f / "m.safetensors"), "m.safetensors", "FIFO",
+            "not a regular file")
+
+
+@case("evaluate: --curves is a FIFO (named pipe)", "evaluate", "metrics.csv", "FIFO", "not a regular file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _evaluate(ws, folder, ws.model, "--report", folder / "r.html", "--curves", _fifo(folder / "metrics.csv"))
+
+
+# one dataset, two scales: one normalisation cannot fit 8-bit and 16-bit pixels at once
+
+_data_case("dataset: one 16-bit image among 8-bit ones", lambda d: _replace_image(d, "s0.tif", lambda p: write_tiff(
+    p, scene(0)[0].astype(np.uint16) * 39)), "s0.tif", "pixel type uint16", "uint8", commands=("train", "check"))

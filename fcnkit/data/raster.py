@@ -41,6 +41,7 @@ from fcnkit.data.rasterbase import (  # noqa: F401 - the front also offers what 
     supported_dtype,
 )
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import require_regular
 
 TIFF_SUFFIXES = (".tif", ".tiff")
 GDAL_SUFFIXES = TIFF_SUFFIXES + (".vrt",)
@@ -58,6 +59,7 @@ def open_raster(path: str | Path, max_pixels: int | None, *, indices: bool = Fal
     the colours) instead of expanding them to colours.
     """
     path = Path(path)
+    require_regular(path, DataError)
     if not path.is_file():
         raise DataError(f"{path}: no such image file")
     if path.stat().st_size == 0:
