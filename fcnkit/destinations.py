@@ -134,9 +134,12 @@ def _check_writable(out: Path, error: type[FcnkitError]) -> None:
 
 
 def dataset_files(folder: PathLike) -> list[Path]:
-    """Every file of a dataset folder (classes.toml, images/, masks/): the inputs of a run that reads it."""
+    """Every file of a dataset folder (classes.toml, a vector label file or any other file beside it, images/,
+    masks/): the inputs of a run that reads it."""
     folder = Path(folder)
     found = [folder / "classes.toml"]
+    if folder.is_dir():
+        found += [p for p in folder.iterdir() if p.is_file() and p.name != "classes.toml"]
     for sub in ("images", "masks"):
         if (folder / sub).is_dir():
             found += [p for p in (folder / sub).iterdir() if p.is_file()]

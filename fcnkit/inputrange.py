@@ -100,21 +100,8 @@ class RangeCheck:
         self.needless = dtype is not None and dtype.kind in "ui" and bool(
             (self.soft[0] <= np.iinfo(dtype).min).all() and (np.iinfo(dtype).max <= self.soft[1]).all())
 
-    @property
-    def shape(self) -> tuple[int, int, int]:
-        return self.raster.shape
-
-    @property
-    def path(self) -> Any:
-        return getattr(self.raster, "path", None)
-
-    @property
-    def dtype(self) -> Any:
-        return self.raster.dtype
-
-    @property
-    def geo(self) -> Any:
-        return getattr(self.raster, "geo", None)
+    def __getattr__(self, name: str) -> Any:  # shape, dtype, path, geo, valid, masked…: the wrapped reader's
+        return getattr(self.__dict__["raster"], name)
 
     def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
         region = self.raster.read(y0, y1, x0, x1)

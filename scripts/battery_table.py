@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT / "tests"))
+sys.path[:0] = [str(ROOT), str(ROOT / "tests")]  # this checkout's fcnkit, not an installed one
 
 from bad_inputs import CASES, Workspace, available_commands, run_case  # noqa: E402
 

@@ -1419,6 +1419,13 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["evaluate", ws.model, "--data", data, "--json", data / "masks" / "s1.png", "--quiet"], [folder])
 
 
+@case("evaluate: --json is the dataset's vector label file", "evaluate", "labels.gpkg", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    data = ws.copy_data(folder)
+    _vector_labels(data, "water")
+    return Call(["evaluate", ws.model, "--data", data, "--json", data / "labels.gpkg", "--quiet"], [folder])
+
+
 @case("evaluate: --json and --report name one file", "evaluate", "same.html", "its own name")
 def _(ws: Workspace, folder: Path) -> Call:
     return Call(["evaluate", ws.model, "--data", ws.data, "--json", folder / "same.html", "--report",
