@@ -171,7 +171,7 @@ def _area_table(areas: list[dict[str, Any]]) -> str:
     head = f"      {'class':<14}{'pixels':>14}{'share':>8}" + (f"{'area m²':>14}{'hectares':>10}" if has_m2 else "")
     lines = [head]
     for a in areas:
-        line = f"      {a['name']:<14}{a['pixels']:>14,}{a['fraction']:>8.1%}"
+        line = f"      {a['name']:<14}{a['pixels']:>14,}{a['share']:>8.1%}"
         if has_m2:
             line += f"{a['area_m2']:>14,.0f}{a['area_m2'] / 1e4:>10.2f}"
         lines.append(line)

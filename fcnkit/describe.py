@@ -87,7 +87,8 @@ def describe(cfg: Config | ModelConfig | nn.Module) -> dict[str, Any]:
 
     if isinstance(cfg, (Config, ModelConfig)):
         m = cfg.model if isinstance(cfg, Config) else cfg
-        assumed = {k: v for k, v in (("bands", DEFAULT_BANDS), ("classes", DEFAULT_CLASSES)) if getattr(m, k) is None}
+        defaults = (("bands", DEFAULT_BANDS), ("num_classes", DEFAULT_CLASSES))
+        assumed = {k: v for k, v in defaults if getattr(m, k) is None}
         d = describe_graph(layer_graph(build_model(dataclasses.replace(m, **assumed))))
         return {**d, "assumed": {f"model.{k}": v for k, v in assumed.items()}} if assumed else d
     return describe_graph(layer_graph(cfg))

@@ -155,7 +155,8 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
         mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
         raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
-        logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, **settings)
+        logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append,
+                                desc=Path(sample.image).name, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))
         for y0 in range(0, h, 256):

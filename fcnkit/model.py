@@ -114,21 +114,21 @@ class Model(nn.Module):
         cfg = _as_config(config)
         m = cfg.model
         table = resolve_classes(classes) if classes is not None else None
-        for key, value in (("bands", bands), ("classes", table.num_classes if table else None)):
+        for key, value in (("bands", bands), ("num_classes", table.num_classes if table else None)):
             set_in_config = getattr(m, key)
             if value is not None and set_in_config is not None and value != set_in_config:
                 raise ConfigError(f"model.{key}: the config says {set_in_config} but {value} were given")
-        m = dataclasses.replace(m, bands=bands or m.bands, classes=table.num_classes if table else m.classes)
+        m = dataclasses.replace(m, bands=bands or m.bands, num_classes=table.num_classes if table else m.num_classes)
         cfg = dataclasses.replace(cfg, model=m)
         model = cls(None, classes=table, config=config_to_dict(cfg))
-        if m.bands is not None and m.classes is not None:
-            model._make_net(m.bands, m.classes)
+        if m.bands is not None and m.num_classes is not None:
+            model._make_net(m.bands, m.num_classes)
         return model
 
     def _make_net(self, bands: int, classes: int) -> None:
         """Build the net of this (encoder–decoder) model once its band and class counts are known."""
         cfg = config_from_dict(self.config)
-        m = dataclasses.replace(cfg.model, bands=bands, classes=classes)
+        m = dataclasses.replace(cfg.model, bands=bands, num_classes=classes)
         self.config = config_to_dict(dataclasses.replace(cfg, model=m))
         with torch.random.fork_rng():  # initial weights from the config's seed: the same config, the same net
             torch.manual_seed(cfg.train.seed)
@@ -157,7 +157,7 @@ class Model(nn.Module):
         if conversion.certificate is not None:
             extra["certificate"] = conversion.certificate.to_dict()
         return cls(net, classes=table, mean=mean, std=std, kind=conversion.kind,
-                   config={"model": {"bands": net.bands, "classes": net.classes}}, extra=extra)
+                   config={"model": {"bands": net.bands, "num_classes": net.classes}}, extra=extra)
 
     # --- what it is ---------------------------------------------------------------------------------------
 

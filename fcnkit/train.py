@@ -248,7 +248,7 @@ def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] |
 def _check_fits(model: Model, images: list[np.ndarray], classes: ClassTable) -> None:
     """The data must have the model's bands and classes."""
     if classes.num_classes != model.num_classes:
-        raise ConfigError(f"model.classes: the net has {model.num_classes} classes but the data has "
+        raise ConfigError(f"model.num_classes: the net has {model.num_classes} classes but the data has "
                           f"{classes.num_classes}")
     if model.classes is not None and model.classes.names != classes.names:
         raise DataError(f"classes: the data's classes ({', '.join(classes.names)}) differ from the model's "

@@ -39,7 +39,7 @@ ROOT = Path(__file__).resolve().parent.parent
 TINY_CONFIG = """\
 [model]
 bands = 3
-classes = 3
+num_classes = 3
 widths = [4, 8]
 blocks = [1, 1]
 head = [8]
@@ -461,7 +461,7 @@ _config_case("config: float where an integer is expected", tiny_config("bands = 
 _config_case("config: true where an integer is expected", tiny_config("bands = true"), "model.bands",
              "expected int")
 _config_case("config: zero width", tiny_config("widths = [4, 0]"), "model.widths[1]", "minimum 1")
-_config_case("config: one class", tiny_config("classes = 1"), "model.classes", "minimum 2")
+_config_case("config: one class", tiny_config("num_classes = 1"), "model.num_classes", "minimum 2")
 _config_case("config: unknown choice upsample = 'bicubic'", tiny_config("upsample = 'bicubic'"), "model.upsample",
              "transposed, bilinear")
 _config_case("config: [model] is a string", 'model = "big"\n', "model", "expected a table")
@@ -556,7 +556,7 @@ _classes_case("classes.toml: id is a string", "id = 2", 'id = "2"', "classes[2].
 _data_case("classes.toml: a folder", lambda d: ((d / "classes.toml").unlink(), (d / "classes.toml").mkdir()),
            "classes.toml", "toml")
 _data_case("classes.toml: 4 classes for a 3-class config", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.classes", "4",
+    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.num_classes", "4",
     commands=("train",))
 _image_case("image: truncated PNG", lambda d: truncate(d / "images" / "s0.png"), "s0.png", "truncated")
 _image_case("image: random bytes named .png", lambda d: garbage(d / "images" / "s0.png"), "s0.png",
@@ -733,7 +733,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 # --- model files (evaluate, export, segment) -----------------------------------------------------------------
 
 def _evaluate(ws: Workspace, folder: Path, model: Path, *extra: object, data: Path | None = None) -> Call:
-    return Call(["evaluate", model, "--data", data or ws.data, "--json", folder / "scores.json", "--quiet", *extra],
+    return Call(["evaluate", model, "--data", data or ws.data, "--out", folder / "scores.json", "--quiet", *extra],
                 [folder])
 
 
@@ -819,13 +819,13 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _evaluate(ws, folder, ws.model, data=data)
 
 
-@case("--json in an unwritable folder", "evaluate", "scores.json", "cannot write")
+@case("--out in an unwritable folder", "evaluate", "scores.json", "cannot write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out / "scores.json", "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out / "scores.json", "--quiet"], [folder, out])
 
 
-@case("--json is a folder", "evaluate", "scores.json", "folder")
+@case("--out is a folder", "evaluate", "scores.json", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scores.json").mkdir()
     return _evaluate(ws, folder, ws.model)
@@ -976,7 +976,7 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, pickle_payload(folder / "net.pt", folder / "MARKER"), "--native", 32)
 
 
-@case("convert: --grow without --save", "convert", "--grow", "--save")
+@case("convert: --grow without --out", "convert", "--grow", "--out")
 def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--grow")
 
@@ -985,7 +985,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "classes.toml").write_text(CLASSES_TOML.replace("id = 2", "id = 1"))
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--classes",
-                    folder / "classes.toml", "--save", folder / "m.safetensors")
+                    folder / "classes.toml", "--out", folder / "m.safetensors")
 
 
 @case("convert: --keep not a list of numbers", "convert", "--keep", "whole numbers")
@@ -993,10 +993,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "1,two")
 
 
-@case("convert: --save in an unwritable folder", "convert", "m.safetensors", "write")
+@case("convert: --out in an unwritable folder", "convert", "m.safetensors", "write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--out",
                  out / "m.safetensors", "--keep", "0,1,2"], [folder, out])
 
 
@@ -1104,30 +1104,30 @@ def _(ws: Workspace, folder: Path) -> Call:
 
 @case("scenes: --count 0", "scenes", "count", "≥ 1")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--count", 0], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 0], [folder])
 
 
 @case("scenes: --size 0", "scenes", "size", "≥ 8")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--size", 0, "--count", 1], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--size", 0, "--count", 1], [folder])
 
 
-@case("scenes: OUT_DIR is a regular file", "scenes", "a-regular-file", "folder")
+@case("scenes: --out DIR is a regular file", "scenes", "a-regular-file", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", ws.file, "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", ws.file, "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR holds other files", "scenes", "scenes", "empty")
+@case("scenes: --out DIR holds other files", "scenes", "scenes", "empty")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scenes").mkdir()
     (folder / "scenes" / "notes.txt").write_text("mine\n")
-    return Call(["scenes", folder / "scenes", "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR in an unwritable place", "scenes", "out", "not a directory")
+@case("scenes: --out DIR in an unwritable place", "scenes", "out", "not a directory")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
 # --- an existing folder the user cannot write to ---------------------------------------------------------------
@@ -1138,10 +1138,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["train", ws.config, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
-@case("read-only output folder (--json RO/scores.json)", "evaluate", "scores.json", "cannot write here")
+@case("read-only output folder (--out RO/scores.json)", "evaluate", "scores.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scores.json"
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out, "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
 @case("read-only output folder (--out RO/m.onnx)", "export", "m.onnx", "cannot write here")
@@ -1155,16 +1155,16 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _segment(ws, folder, out=ws.read_only(folder) / "maps")
 
 
-@case("read-only output folder (OUT_DIR RO/scenes)", "scenes", "/scenes")
+@case("read-only output folder (--out RO/scenes)", "scenes", "/scenes")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scenes"
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
-@case("read-only output folder (--save RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
+@case("read-only output folder (--out RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "m.safetensors"
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--out",
                  out], [folder, out])
 
 
@@ -1202,8 +1202,8 @@ def _filled_sample(ws: Workspace, folder: Path, edit: Callable[[list[dict]], lis
 
 
 def _assess(ws: Workspace, folder: Path, sample: Path, *more: object) -> Call:
-    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv", *more], [folder])
+    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}", *more], [folder])
 
 
 @case("sample: LABELS is an RGB image", "sample", "s0.png", "one band of integer class ids")
@@ -1292,13 +1292,13 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("assess: counts file without a pixels column", "assess", "counts.csv", "'pixels'")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "counts.csv").write_text("id,name,area\n0,ground,5\n1,water,6\n2,roof,7\n")
-    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv"], [folder])
+    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}"], [folder])
 
 
-@case("assess: --json in an unwritable place", "assess", "a.json", "cannot write here")
+@case("assess: --out in an unwritable place", "assess", "a.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
     sample = _filled_sample(ws, folder)
-    return Call(["assess", sample, "--labels", _labels(ws), "--json", out / "a.json", "--csv", folder / "a.csv"],
+    return Call(["assess", sample, "--labels", _labels(ws), "--out", f"{out / 'a.json'},{folder / 'a.csv'}"],
                 [folder, out])

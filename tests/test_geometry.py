@@ -244,7 +244,7 @@ def test_params_and_macs_match_the_module(cfg: ModelConfig, h: int, w: int) -> N
 
 
 def test_global_layers_rule_out_exact_tiling() -> None:
-    graph = layer_graph(build_model(ModelConfig(bands=3, classes=2, widths=[4, 4], norm="group", groups=2)))
+    graph = layer_graph(build_model(ModelConfig(bands=3, num_classes=2, widths=[4, 4], norm="group", groups=2)))
     assert not geometry.is_local(graph)
     assert {g.note for g in geometry.global_layers(graph)} == {"GroupNorm"}
     with pytest.raises(ValueError, match="global layers"):

@@ -94,7 +94,7 @@ def test_net_output_is_input_sized(fusion: str, upsample: str, down: str, data: 
 
 
 def test_net_trains_on_tiny_inputs() -> None:
-    cfg = ModelConfig(bands=2, classes=3, widths=[4, 4, 4], fusion="sum")
+    cfg = ModelConfig(bands=2, num_classes=3, widths=[4, 4, 4], fusion="sum")
     net = build_model(cfg).train()
     y = net(torch.rand(2, 2, 5, 3))
     assert y.shape == (2, 3, 5, 3)
