@@ -252,21 +252,21 @@ def test_global_layers_rule_out_exact_tiling() -> None:
 
 
 @settings(max_examples=300, deadline=None)
-@given(factor=st.integers(1, 64), offset=st.integers(-64, 400), n=st.integers(1, 3000))
-def test_padding_plan_aligns_every_size(factor: int, offset: int, n: int) -> None:
-    """The one padding rule: a padded side is the offset plus a whole number (at least one) of cells, holds the
-    crop and the input, and is the smallest such side (no cell computed in vain)."""
-    plan = geometry.PadPlan(factor, offset)
+@given(factor=st.integers(1, 64), offset=st.integers(-64, 400), n=st.integers(1, 3000), cells=st.integers(1, 4))
+def test_padding_plan_aligns_every_size(factor: int, offset: int, n: int, cells: int) -> None:
+    """The one padding rule: a padded side is the offset plus a whole number (at least ``cells``) of cells, holds
+    the crop and the input, and is the smallest such side (no cell computed in vain)."""
+    plan = geometry.PadPlan(factor, offset, cells)
     side = plan.padded(n)
     assert plan.before >= 0 and plan.after(n) >= 0 and plan.crop >= 0
-    assert (side - offset) % factor == 0 and side - offset >= factor
+    assert (side - offset) % factor == 0 and side - offset >= cells * factor
     # the net's output (side − offset pixels at full resolution, from the offset's half on) covers the crop
     assert plan.crop + n <= side - offset
-    assert side - factor < max(plan.before + n, offset + factor, plan.crop + n + offset)
+    assert side - factor < max(plan.before + n, offset + cells * factor, plan.crop + n + offset)
 
 
 def test_padding_plan_records_for_traced_sizes() -> None:
     """The rule is plain arithmetic, so a size a tracer hands over as a tensor gives the same padding."""
-    plan = geometry.PadPlan(8, 12)
+    plan = geometry.PadPlan(8, 12, cells=2)
     for n in (1, 5, 17, 40):
         assert int(plan.after(torch.tensor(n), lambda v: v.clamp(min=0))) == plan.after(n)
