@@ -156,7 +156,8 @@ def _train(args: argparse.Namespace) -> int:
 
 
 def _add_train(sub: argparse._SubParsersAction) -> None:
-    p = sub.add_parser("train", help="train a net on a dataset folder; resumable, best model kept by val mIoU")
+    p = sub.add_parser("train", help="train a net on a dataset folder (resumable); keeps the best model by "
+                       "validation mean IoU")
     p.add_argument("config", metavar="CONFIG", help="TOML config file ([model] and [train] tables), or the name of "
                    "a shipped config (tiny, demo, fcn8s, fcn32s, unet)")
     p.add_argument("--data", required=True, metavar="DIR", help="dataset folder (images/, masks/, classes.toml)")
