@@ -14,6 +14,7 @@ from torch import nn
 from fcnkit import geometry
 from fcnkit.config import Config, ModelConfig
 from fcnkit.geometry import Layer
+from fcnkit.units import si
 
 # What a config that leaves bands and classes to the data is described with.
 DEFAULT_BANDS, DEFAULT_CLASSES = 3, 2
@@ -94,13 +95,6 @@ def describe(cfg: Config | ModelConfig | nn.Module) -> dict[str, Any]:
     return describe_graph(layer_graph(cfg))
 
 
-def _si(n: float) -> str:
-    for unit, div in (("G", 1e9), ("M", 1e6), ("k", 1e3)):
-        if abs(n) >= div:
-            return f"{n / div:.2f} {unit}"
-    return f"{n:.0f}"
-
-
 def _global_summary(d: dict[str, Any]) -> str:
     kinds = Counter(item.rsplit("(", 1)[-1].rstrip(")") for item in d["global_layers"])
     return ", ".join(f"{n} x {k}" for k, n in kinds.items()) + " make outputs depend on the whole input"
@@ -116,7 +110,7 @@ def format_description(d: dict[str, Any]) -> str:
         f"receptive field                {field_text(d['receptive_field'])}",
         f"tile margin for exact tiling   {field_text(d['tile_margin'])}",
         f"parameters                     {d['params']:,}",
-        f"MACs per megapixel             {_si(d['macs_per_megapixel'])}",
+        f"MACs per megapixel             {si(d['macs_per_megapixel'])}",
         f"exact tiling possible          {'yes' if d['exact_tiling'] else 'no: ' + _global_summary(d)}",
     ]
     if d.get("assumed"):
@@ -127,5 +121,5 @@ def format_description(d: dict[str, Any]) -> str:
         for r in d["stages"]:
             rf = "-" if r["receptive_field"] is None else str(r["receptive_field"])
             lines.append(f"{r['part']:<22}{r['stride']:>7}{r['channels']:>10}{rf:>8}{r['params']:>12,}"
-                         f"{_si(r['macs_per_megapixel']):>12}")
+                         f"{si(r['macs_per_megapixel']):>12}")
     return "\n".join(lines)

@@ -41,6 +41,7 @@ from fcnkit.errors import ConfigError, DataError
 from fcnkit.losses import median_frequency_weights, pixel_cross_entropy, segmentation_loss
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.schedules import lr_factor
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -288,7 +289,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
+                            speed=pixel_rate(p["pixels"] * g.world, time.perf_counter() - tic))
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
