@@ -231,6 +231,7 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     paths["evaluation"] = ev.paths["json"]
     figures["test"] = {k: ev.scores[k] for k in ("pixel_accuracy", "mean_accuracy", "mean_iou", "fw_iou")}
     figures["test"]["mean_iou_interval"] = ev.interval
+    figures["test"]["calibration"] = {k: ev.calibration[k] for k in ("temperature", "ece", "ece_uncalibrated")}
     step("evaluate", "\n".join("      " + line for line in ev.table().splitlines()))
 
     side = plan.mosaic_size

@@ -31,7 +31,7 @@ def _minutes(seconds: float) -> str:
 def render(f: dict[str, Any]) -> str:
     """The README's figures block from a demo run's figures.json."""
     plan, test, mosaic, a = f["plan"], f["test"], f["mosaic"], f["assessment"]
-    iv = test["mean_iou_interval"]
+    iv, cal = test["mean_iou_interval"], test["calibration"]
     px_ha = a["pixel_area_m2"] / 1e4
     o = a["overall_accuracy"]
     rows = [
@@ -39,6 +39,8 @@ def render(f: dict[str, Any]) -> str:
                      f"best validation mean IoU {f['val_mean_iou']:.3f} at epoch {f['best_epoch']}"),
         ("held-out test scenes", f"{plan['test_scenes']} scenes: pixel accuracy {test['pixel_accuracy']:.3f}, mean IoU "
                                  f"{test['mean_iou']:.3f} (95 % bootstrap interval {iv['low']:.3f}–{iv['high']:.3f})"),
+        ("calibration", f"temperature {cal['temperature']:.2f} fitted on the validation split; expected calibration "
+                        f"error on the test scenes {cal['ece']:.4f} with it, {cal['ece_uncalibrated']:.4f} without"),
         ("mapped mosaic", f"{plan['mosaic_size']}×{plan['mosaic_size']} px against its true labels: pixel accuracy "
                           f"{mosaic['pixel_accuracy']:.3f}, mean IoU {mosaic['mean_iou']:.3f}; "
                           f"{f['pixels_per_second'] / 1e6:.2f} Mpx/s including every output"),

@@ -43,7 +43,7 @@ def model_configs(draw: st.DrawFn, *, norms: tuple[str, ...] = ("batch", "none",
     widths = [4] * n if norm == "group" else draw(st.lists(st.sampled_from([1, 2, 4]), min_size=n, max_size=n))
     table = dict(
         bands=draw(st.integers(1, 3)),
-        classes=draw(st.integers(2, 3)),
+        num_classes=draw(st.integers(2, 3)),
         widths=widths,
         blocks=draw(st.lists(st.integers(1, 2), min_size=n, max_size=n)),
         strides=strides,

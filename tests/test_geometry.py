@@ -168,7 +168,7 @@ def test_receptive_field_matches_gradient_measurement(cfg: ModelConfig) -> None:
     picks = [(mid + ph, ph % cols) for ph in range(factor)] + [(0, cols - 1), (rows - 1, 0)]
     x = (torch.rand(len(picks), cfg.bands, rows, cols, dtype=torch.float64) + 0.5).requires_grad_()
     y = body(x)
-    assert y.shape == (len(picks), cfg.classes, rows, cols)
+    assert y.shape == (len(picks), cfg.num_classes, rows, cols)
     total = sum(y[i, :, r, c].sum() for i, (r, c) in enumerate(picks))
     (grad,) = torch.autograd.grad(total, x)
     lo_r, hi_r = geometry.dependency_intervals(graph, rows)

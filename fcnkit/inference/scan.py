@@ -76,9 +76,10 @@ def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, ti
         raise ConfigError("exact: flip TTA averages flipped passes, which never equal whole-image inference; "
                           "drop --tta or --exact")
     tiles_can_be_exact = model.geometry.margin is not None
+    whole_image_layers = ("exact tiling is impossible: layers " + ", ".join(model.geometry.global_layers)
+                          + " make every output depend on the whole image")
     if exact and scan == "tiles" and not tiles_can_be_exact:
-        raise ConfigError("exact: tiles of this net cannot equal whole-image inference (it has global layers); "
-                          "use scan rows or whole")
+        raise ConfigError(f"exact: {whole_image_layers}; use scan rows or whole")
     if scan == "tiles":
         return ScanChoice("tiles", exact)
     conflicts = [name for name, bad in (("flip TTA", tta), ("tile settings", tiles_asked),
@@ -89,8 +90,7 @@ def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, ti
             raise ConfigError(f"scan: {scan} cannot be combined with {asked} (use scan tiles)")
         if exact:
             if not tiles_can_be_exact:
-                raise ConfigError(f"exact: {asked} need tiles, and tiles of this net cannot equal whole-image "
-                                  "inference (it has global layers)")
+                raise ConfigError(f"exact: {asked} need tiles, and {whole_image_layers}")
             return ScanChoice("tiles", True, f"{asked} asked for: scanning by exact tiles (equal to whole-image "
                               "inference)")
         return ScanChoice("tiles", False, f"{asked} asked for: scanning by blended tiles, not exact (equal to "
@@ -109,7 +109,7 @@ def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, ti
     if exact:
         if not tiles_can_be_exact:
             raise ConfigError(f"exact: the net cannot be streamed in rows ({reason}), the {width}x{height} image "
-                              "is too large for one pass and tiles of this net cannot be exact")
+                              f"is too large for one pass, and {whole_image_layers}")
         return ScanChoice("tiles", True, f"the net cannot be streamed in rows ({reason}) and the {width}x{height} "
                           "image is too large for one pass: exact tiles")
     return ScanChoice("tiles", False, f"the net cannot be streamed in rows ({reason}) and the {width}x{height} image "
