@@ -159,7 +159,7 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
         mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
         raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
         logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, note=note,
-                                **settings)
+                                desc=Path(sample.image).name, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))
         for y0 in range(0, h, 256):

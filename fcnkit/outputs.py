@@ -9,7 +9,7 @@ the per-class pixel counts and areas:
 * uncertainty — the normalised entropy −Σ p log p / log C × 255 (0 = certain, 255 = all classes equally
   likely; scale 1/255): the map that shows where labelling more pixels would help most.
 
-Then a down-sampled colour overlay for a quick look, a table of per-class pixel counts, fractions and areas in
+Then a down-sampled colour overlay for a quick look, a table of per-class pixel counts, shares and areas in
 m² (:mod:`fcnkit.areas`: any projected unit, rotated grids, geodesic areas for degrees) as CSV and JSON, and
 optionally the class polygons (:mod:`fcnkit.polygons`).
 
@@ -107,25 +107,25 @@ def overlay(rgb: np.ndarray, labels: np.ndarray, colors: Sequence[tuple[int, int
 
 
 def area_rows(counts: np.ndarray, classes: ClassTable, areas_m2: Sequence[float] | None) -> list[dict[str, Any]]:
-    """One row per class: id, name, pixels, fraction of the valid pixels, area in m² (None when unknown)."""
+    """One row per class: id, name, pixels, share of the valid pixels (0–1), area in m² (None when unknown)."""
     total = int(np.sum(counts))
     return [{"id": c.id, "name": c.name, "pixels": int(counts[c.id]),
-             "fraction": float(counts[c.id] / total) if total else 0.0,
+             "share": float(counts[c.id] / total) if total else 0.0,
              "area_m2": float(areas_m2[c.id]) if areas_m2 is not None else None}
             for c in classes.classes]
 
 
 def areas_csv(rows: list[dict[str, Any]], nodata: tuple[int, int] | None = None) -> str:
     """The area table as CSV; ``nodata`` (its value in the label map, pixel count) adds a last row for the
-    nodata pixels, which have no fraction and no area."""
+    nodata pixels, which have no share and no area."""
     buf = io.StringIO()
-    writer = csv.DictWriter(buf, ["id", "name", "pixels", "fraction", "area_m2"], lineterminator="\n")
+    writer = csv.DictWriter(buf, ["id", "name", "pixels", "share", "area_m2"], lineterminator="\n")
     writer.writeheader()
     for r in rows:
-        writer.writerow({**r, "fraction": f"{r['fraction']:.6f}",
+        writer.writerow({**r, "share": f"{r['share']:.6f}",
                          "area_m2": "" if r["area_m2"] is None else f"{r['area_m2']:.4f}"})
     if nodata is not None:
-        writer.writerow({"id": nodata[0], "name": "nodata", "pixels": nodata[1], "fraction": "", "area_m2": ""})
+        writer.writerow({"id": nodata[0], "name": "nodata", "pixels": nodata[1], "share": "", "area_m2": ""})
     return buf.getvalue()
 
 

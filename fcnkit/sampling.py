@@ -37,7 +37,7 @@ from fcnkit.assessment import (
 )
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import SEGMENT_MAX_PIXELS, TIFF_SUFFIXES, Raster, open_raster
+from fcnkit.data.raster import DEFAULT_MAX_PIXELS, TIFF_SUFFIXES, Raster, open_raster
 from fcnkit.destinations import check_outputs
 from fcnkit.errors import DataError
 
@@ -130,7 +130,7 @@ def _band(raster: Raster, y0: int, y1: int) -> np.ndarray:
     return band
 
 
-def count_classes(labels: str | Path, max_pixels: int | None = SEGMENT_MAX_PIXELS) -> np.ndarray:
+def count_classes(labels: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> np.ndarray:
     """Pixels of each value 0..max in a label map, counted band by band."""
     raster = _open_labels(labels, max_pixels)
     try:
@@ -257,7 +257,7 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
                 expected_accuracy: float | Sequence[float] = DEFAULT_EXPECTED_ACCURACY,
                 minimum: int = DEFAULT_MINIMUM, seed: int = 0, image: str | Path | None = None,
                 chips: str | Path | None = None, chip_size: int = 64,
-                max_pixels: int | None = SEGMENT_MAX_PIXELS) -> Sample:
+                max_pixels: int | None = DEFAULT_MAX_PIXELS) -> Sample:
     """Draw a stratified random sample of points from a label map and write it to ``out`` (.gpkg, .geojson
     or .csv; several names write several files).
 
@@ -363,7 +363,7 @@ def _write_sample(path: Path, sample: Sample) -> None:
 
 
 def write_chips(sample: Sample, image: str | Path, folder: str | Path, size: int = 64,
-                max_pixels: int | None = SEGMENT_MAX_PIXELS) -> Path:
+                max_pixels: int | None = DEFAULT_MAX_PIXELS) -> Path:
     """One PNG per point, ``size`` pixels of ``image`` around it (enlarged to about 256 px), the point's pixel
     outlined; named ``point_00001.png`` … after the point ids."""
     from PIL import Image
@@ -546,7 +546,7 @@ def _map_checker(raster: Raster, points: list[SamplePoint], sample: Path) -> Cal
 def assess_sample(sample: str | Path, *, labels: str | Path | None = None, counts: str | Path | None = None,
                   classes: ClassTable | None = None, pixel_area_m2: float | None = None,
                   reference_field: str = "reference", json_path: str | Path | None = None,
-                  csv_path: str | Path | None = None, max_pixels: int | None = SEGMENT_MAX_PIXELS) -> dict[str, Any]:
+                  csv_path: str | Path | None = None, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> dict[str, Any]:
     """Olofsson et al. 2014 estimates from a filled sample; returns :func:`fcnkit.assessment.assessment_table`'s
     dict (plus the files used) and writes it as JSON and tidy CSV when paths are given.
 

@@ -44,6 +44,7 @@ from fcnkit.inputrange import training_stats
 from fcnkit.losses import median_frequency_weights, pixel_cross_entropy, segmentation_loss
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.schedules import lr_factor
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -276,7 +277,7 @@ def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] |
 def _check_fits(model: Model, images: list[np.ndarray], classes: ClassTable) -> None:
     """The data must have the model's bands and classes."""
     if classes.num_classes != model.num_classes:
-        raise ConfigError(f"model.classes: the net has {model.num_classes} classes but the data has "
+        raise ConfigError(f"model.num_classes: the net has {model.num_classes} classes but the data has "
                           f"{classes.num_classes}")
     if model.classes is not None and model.classes.names != classes.names:
         raise DataError(f"classes: the data's classes ({', '.join(classes.names)}) differ from the model's "
@@ -315,7 +316,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
+                            speed=pixel_rate(p["pixels"] * g.world, time.perf_counter() - tic))
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()

@@ -41,7 +41,7 @@ ROOT = Path(__file__).resolve().parent.parent
 TINY_CONFIG = """\
 [model]
 bands = 3
-classes = 3
+num_classes = 3
 widths = [4, 8]
 blocks = [1, 1]
 head = [8]
@@ -500,7 +500,7 @@ _config_case("config: float where an integer is expected", tiny_config("bands = 
 _config_case("config: true where an integer is expected", tiny_config("bands = true"), "model.bands",
              "expected int")
 _config_case("config: zero width", tiny_config("widths = [4, 0]"), "model.widths[1]", "minimum 1")
-_config_case("config: one class", tiny_config("classes = 1"), "model.classes", "minimum 2")
+_config_case("config: one class", tiny_config("num_classes = 1"), "model.num_classes", "minimum 2")
 _config_case("config: unknown choice upsample = 'bicubic'", tiny_config("upsample = 'bicubic'"), "model.upsample",
              "transposed, bilinear")
 _config_case("config: [model] is a string", 'model = "big"\n', "model", "expected a table")
@@ -595,7 +595,7 @@ _classes_case("classes.toml: id is a string", "id = 2", 'id = "2"', "classes[2].
 _data_case("classes.toml: a folder", lambda d: ((d / "classes.toml").unlink(), (d / "classes.toml").mkdir()),
            "classes.toml", "toml")
 _data_case("classes.toml: 4 classes for a 3-class config", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.classes", "4",
+    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.num_classes", "4",
     commands=("train",))
 _image_case("image: truncated PNG", lambda d: truncate(d / "images" / "s0.png"), "s0.png", "truncated")
 _image_case("image: random bytes named .png", lambda d: garbage(d / "images" / "s0.png"), "s0.png",
@@ -772,7 +772,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 # --- model files (evaluate, export, segment) -----------------------------------------------------------------
 
 def _evaluate(ws: Workspace, folder: Path, model: Path, *extra: object, data: Path | None = None) -> Call:
-    return Call(["evaluate", model, "--data", data or ws.data, "--json", folder / "scores.json", "--quiet", *extra],
+    return Call(["evaluate", model, "--data", data or ws.data, "--out", folder / "scores.json", "--quiet", *extra],
                 [folder])
 
 
@@ -858,13 +858,13 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _evaluate(ws, folder, ws.model, data=data)
 
 
-@case("--json in an unwritable folder", "evaluate", "scores.json", "cannot write")
+@case("--out in an unwritable folder", "evaluate", "scores.json", "cannot write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out / "scores.json", "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out / "scores.json", "--quiet"], [folder, out])
 
 
-@case("--json is a folder", "evaluate", "scores.json", "folder")
+@case("--out is a folder", "evaluate", "scores.json", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scores.json").mkdir()
     return _evaluate(ws, folder, ws.model)
@@ -1015,7 +1015,7 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, pickle_payload(folder / "net.pt", folder / "MARKER"), "--native", 32)
 
 
-@case("convert: --grow without --save", "convert", "--grow", "--save")
+@case("convert: --grow without --out", "convert", "--grow", "--out")
 def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--grow")
 
@@ -1024,7 +1024,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "classes.toml").write_text(CLASSES_TOML.replace("id = 2", "id = 1"))
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--classes",
-                    folder / "classes.toml", "--save", folder / "m.safetensors")
+                    folder / "classes.toml", "--out", folder / "m.safetensors")
 
 
 @case("convert: --keep not a list of numbers", "convert", "--keep", "whole numbers")
@@ -1032,10 +1032,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "1,two")
 
 
-@case("convert: --save in an unwritable folder", "convert", "m.safetensors", "write")
+@case("convert: --out in an unwritable folder", "convert", "m.safetensors", "write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--out",
                  out / "m.safetensors", "--keep", "0,1,2"], [folder, out])
 
 
@@ -1143,30 +1143,30 @@ def _(ws: Workspace, folder: Path) -> Call:
 
 @case("scenes: --count 0", "scenes", "count", "≥ 1")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--count", 0], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 0], [folder])
 
 
 @case("scenes: --size 0", "scenes", "size", "≥ 8")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--size", 0, "--count", 1], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--size", 0, "--count", 1], [folder])
 
 
-@case("scenes: OUT_DIR is a regular file", "scenes", "a-regular-file", "folder")
+@case("scenes: --out DIR is a regular file", "scenes", "a-regular-file", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", ws.file, "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", ws.file, "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR holds other files", "scenes", "scenes", "empty")
+@case("scenes: --out DIR holds other files", "scenes", "scenes", "empty")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scenes").mkdir()
     (folder / "scenes" / "notes.txt").write_text("mine\n")
-    return Call(["scenes", folder / "scenes", "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR in an unwritable place", "scenes", "out", "not a directory")
+@case("scenes: --out DIR in an unwritable place", "scenes", "out", "not a directory")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
 # --- an existing folder the user cannot write to ---------------------------------------------------------------
@@ -1177,10 +1177,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["train", ws.config, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
-@case("read-only output folder (--json RO/scores.json)", "evaluate", "scores.json", "cannot write here")
+@case("read-only output folder (--out RO/scores.json)", "evaluate", "scores.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scores.json"
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out, "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
 @case("read-only output folder (--out RO/m.onnx)", "export", "m.onnx", "cannot write here")
@@ -1194,16 +1194,16 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _segment(ws, folder, out=ws.read_only(folder) / "maps")
 
 
-@case("read-only output folder (OUT_DIR RO/scenes)", "scenes", "/scenes")
+@case("read-only output folder (--out RO/scenes)", "scenes", "/scenes")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scenes"
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
-@case("read-only output folder (--save RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
+@case("read-only output folder (--out RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "m.safetensors"
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--out",
                  out], [folder, out])
 
 
@@ -1241,8 +1241,8 @@ def _filled_sample(ws: Workspace, folder: Path, edit: Callable[[list[dict]], lis
 
 
 def _assess(ws: Workspace, folder: Path, sample: Path, *more: object) -> Call:
-    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv", *more], [folder])
+    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}", *more], [folder])
 
 
 @case("sample: LABELS is an RGB image", "sample", "s0.png", "one band of integer class ids")
@@ -1331,15 +1331,15 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("assess: counts file without a pixels column", "assess", "counts.csv", "'pixels'")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "counts.csv").write_text("id,name,area\n0,ground,5\n1,water,6\n2,roof,7\n")
-    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv"], [folder])
+    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}"], [folder])
 
 
-@case("assess: --json in an unwritable place", "assess", "a.json", "cannot write here")
+@case("assess: --out in an unwritable place", "assess", "a.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
     sample = _filled_sample(ws, folder)
-    return Call(["assess", sample, "--labels", _labels(ws), "--json", out / "a.json", "--csv", folder / "a.csv"],
+    return Call(["assess", sample, "--labels", _labels(ws), "--out", f"{out / 'a.json'},{folder / 'a.csv'}"],
                 [folder, out])
 
 
@@ -1401,10 +1401,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["export", ws.model, "--out", _copy_model(ws, folder, "other.safetensors")], [folder])
 
 
-@case("evaluate: --json is the model file", "evaluate", "m.safetensors", "input of this run")
+@case("evaluate: --out is the model file", "evaluate", "m.safetensors", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     model = _copy_model(ws, folder)
-    return Call(["evaluate", model, "--data", ws.data, "--json", model, "--quiet"], [folder])
+    return Call(["evaluate", model, "--data", ws.data, "--out", model, "--quiet"], [folder])
 
 
 @case("evaluate: --report is the model file", "evaluate", "m.safetensors", "input of this run")
@@ -1413,22 +1413,22 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _evaluate(ws, folder, model, "--report", model)
 
 
-@case("evaluate: --json is a mask of the data", "evaluate", "s1.png", "input of this run")
+@case("evaluate: --out is a mask of the data", "evaluate", "s1.png", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     data = ws.copy_data(folder)
-    return Call(["evaluate", ws.model, "--data", data, "--json", data / "masks" / "s1.png", "--quiet"], [folder])
+    return Call(["evaluate", ws.model, "--data", data, "--out", data / "masks" / "s1.png", "--quiet"], [folder])
 
 
-@case("evaluate: --json is the dataset's vector label file", "evaluate", "labels.gpkg", "input of this run")
+@case("evaluate: --out is the dataset's vector label file", "evaluate", "labels.gpkg", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     data = ws.copy_data(folder)
     _vector_labels(data, "water")
-    return Call(["evaluate", ws.model, "--data", data, "--json", data / "labels.gpkg", "--quiet"], [folder])
+    return Call(["evaluate", ws.model, "--data", data, "--out", data / "labels.gpkg", "--quiet"], [folder])
 
 
-@case("evaluate: --json and --report name one file", "evaluate", "same.html", "its own name")
+@case("evaluate: --out and --report name one file", "evaluate", "same.html", "its own name")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", folder / "same.html", "--report",
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", folder / "same.html", "--report",
                  folder / "same.html", "--quiet"], [folder])
 
 
@@ -1450,26 +1450,26 @@ def _run_folder(ws: Workspace, folder: Path) -> Path:
     return run
 
 
-@case("convert: --save over a run's model beside its resume point", "convert", "model.safetensors",
+@case("convert: --out over a run's model beside its resume point", "convert", "model.safetensors",
       "already holds a model file")
 def _(ws: Workspace, folder: Path) -> Call:
     run = _run_folder(ws, folder)
-    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
+    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--out",
                     run / "model.safetensors")
 
 
-@case("convert: --save is the --weights file", "convert", "w.safetensors", "input of this run")
+@case("convert: --out is the --weights file", "convert", "w.safetensors", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     from torchvision.models import mobilenet_v3_small
 
     w = write_safetensors(folder / "w.safetensors", mobilenet_v3_small().state_dict(), None)
-    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--weights", w, "--keep", "0,1,2", "--save", w)
+    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--weights", w, "--keep", "0,1,2", "--out", w)
 
 
-@case("evaluate: --json over a run's metrics.csv", "evaluate", "metrics.csv", "metrics of the training run")
+@case("evaluate: --out over a run's metrics.csv", "evaluate", "metrics.csv", "metrics of the training run")
 def _(ws: Workspace, folder: Path) -> Call:
     run = _run_folder(ws, folder)
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", run / "metrics.csv", "--quiet"], [folder])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", run / "metrics.csv", "--quiet"], [folder])
 
 
 @case("segment: --out is the input folder after an earlier run", "segment", "s0.labels.png", "input of this run")
@@ -1489,7 +1489,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 
 @case("sample: the same --out file twice", "sample", "s.csv", "its own name")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["sample", _labels(ws), "--out", folder / "s.csv", folder / "s.csv"], [folder])
+    return Call(["sample", _labels(ws), "--out", f"{folder / 's.csv'},{folder / 's.csv'}"], [folder])
 
 
 @case("sample: --chips into the image's folder where a chip name is the image", "sample", "point_00001.png",
@@ -1500,17 +1500,17 @@ def _(ws: Workspace, folder: Path) -> Call:
                  "--points", 5], [folder])
 
 
-@case("assess: --csv is the filled sample", "assess", "filled.csv", "input of this run")
+@case("assess: --out is the filled sample", "assess", "filled.csv", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     sample = _filled_sample(ws, folder)
-    return Call(["assess", sample, "--labels", _labels(ws), "--json", folder / "a.json", "--csv", sample], [folder])
+    return Call(["assess", sample, "--labels", _labels(ws), "--out", f"{folder / 'a.json'},{sample}"], [folder])
 
 
 @case("assess: --report is the label map", "assess", "labels.png", "input of this run")
 def _(ws: Workspace, folder: Path) -> Call:
     labels = Path(shutil.copy(_labels(ws), folder / "labels.png"))
     sample = _filled_sample(ws, folder)
-    return Call(["assess", sample, "--labels", labels, "--json", folder / "a.json", "--csv", folder / "a.csv",
+    return Call(["assess", sample, "--labels", labels, "--out", f"{folder / 'a.json'},{folder / 'a.csv'}",
                  "--report", labels], [folder])
 
 
@@ -1616,7 +1616,7 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["export", ws.model, "--out", folder / "m.onnx"], [folder], fsize=2000)
 
 
-@case("disk full while writing --json", "evaluate", "scores.json", "too large")
+@case("disk full while writing --out", "evaluate", "scores.json", "too large")
 def _(ws: Workspace, folder: Path) -> Call:
     call = _evaluate(ws, folder, ws.model)
     call.fsize = 1000

@@ -70,7 +70,7 @@ def test_a_one_pixel_image_is_accepted(ws, tmp_path):
     data = Path(shutil.copytree(ws.data, tmp_path / "data"))
     write_png(data / "images" / "dot.png", scene(5)[0][:1, :1])
     write_png(data / "masks" / "dot.png", np.array([[1]], np.uint8))
-    code, _, err = run_cli(["evaluate", ws.model, "--data", data, "--json", tmp_path / "s.json", "--quiet"])
+    code, _, err = run_cli(["evaluate", ws.model, "--data", data, "--out", tmp_path / "s.json", "--quiet"])
     assert code == 0, err
     assert (tmp_path / "s.json").is_file()
     code, _, err = run_cli(["train", ws.config, "--data", data, "--out", tmp_path / "run", "--quiet"])

@@ -150,7 +150,7 @@ def test_sixteen_bit_pixels_into_an_eight_bit_model_are_noted_once(tmp_path):
     for p in (tmp_path / "data" / "images").iterdir():
         write_tiff(p.with_suffix(".tif"), scene(int(p.stem[1:]))[0].astype(np.uint16) * 39)
         p.unlink()
-    code, out, err = run_cli(["evaluate", model, "--data", tmp_path / "data", "--json", tmp_path / "e.json",
+    code, out, err = run_cli(["evaluate", model, "--data", tmp_path / "data", "--out", tmp_path / "e.json",
                               "--quiet"])
     assert code == 0, err
     assert sum(line.startswith("fcnkit: note:") and "outside the range" in line for line in err.splitlines()) == 3

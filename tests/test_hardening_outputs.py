@@ -86,18 +86,6 @@ def test_the_guard_protects_weights_but_lets_exports_and_results_be_made_again(t
     check_outputs([tmp_path / "net.pt", tmp_path / "scores.json"])  # a TorchScript export, an earlier result
 
 
-def test_evaluate_says_where_its_default_json_goes(tmp_path, monkeypatch):
-    model = write_model(tmp_path / "m.safetensors")
-    data = write_dataset(tmp_path / "data")
-    work = tmp_path / "here"
-    work.mkdir()
-    monkeypatch.chdir(work)
-    code, out, err = run_cli(["evaluate", model, "--data", data, "--quiet"])
-    assert code == 0, err
-    assert f"json: {work / 'evaluation.json'}" in out.splitlines()
-    assert json.loads((work / "evaluation.json").read_text())["classes"] == ["ground", "water", "roof"]
-
-
 def test_demo_refuses_a_run_folder_and_a_model_file_as_its_output(tmp_path):
     run = tmp_path / "run"
     write_dataset(tmp_path / "data")
@@ -203,7 +191,7 @@ def test_written_files_get_the_umask_s_mode(tmp_path, umask):
     try:
         model = write_model(tmp_path / "m.safetensors")  # safetensors alone would make it 0600
         data = write_dataset(tmp_path / "data")
-        code, _, err = run_cli(["evaluate", model, "--data", data, "--json", tmp_path / "e.json", "--quiet"])
+        code, _, err = run_cli(["evaluate", model, "--data", data, "--out", tmp_path / "e.json", "--quiet"])
         assert code == 0, err
         code, _, err = run_cli(["segment", model, data / "images" / "s0.png", "--out", tmp_path / "maps", "--quiet"])
         assert code == 0, err
@@ -222,7 +210,7 @@ def test_file_names_that_are_not_utf8_are_processed_and_shown_escaped(tmp_path):
         (data / sub / "s0.png").rename(data / sub / f"{odd}.png")
     model = write_model(tmp_path / "m.safetensors")
     report, maps = tmp_path / "r.html", tmp_path / "maps"
-    calls = [["check", data], ["evaluate", model, "--data", data, "--json", tmp_path / "e.json", "--report", report,
+    calls = [["check", data], ["evaluate", model, "--data", data, "--out", tmp_path / "e.json", "--report", report,
                                "--quiet"], ["segment", model, data / "images", "--out", maps, "--quiet"]]
     code = ("import sys, io\n"
             "sys.stdout = io.TextIOWrapper(sys.stdout.buffer, encoding='utf-8', errors='strict')\n"  # a UTF-8 terminal

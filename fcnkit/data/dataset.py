@@ -81,7 +81,7 @@ class CheckReport:
         return not self.problems
 
     @property
-    def class_fractions(self) -> list[float]:
+    def class_shares(self) -> list[float]:
         """Each class's share of the labelled (non-ignore) pixels."""
         total = sum(self.class_pixels)
         return [n / total if total else 0.0 for n in self.class_pixels]
@@ -275,12 +275,12 @@ def format_check(report: CheckReport) -> str:
     if report.classes is not None and report.images:
         total = sum(report.class_pixels) + report.ignore_pixels
         width = max(len(n) for n in report.classes.names + ["ignore"])
-        lines.append(f"  {'id':>3}  {'class':<{width}}  {'pixels':>12}  fraction")
-        for c, n, f in zip(report.classes.classes, report.class_pixels, report.class_fractions, strict=True):
-            lines.append(f"  {c.id:>3}  {c.name:<{width}}  {n:>12}  {f:8.4f}")
+        lines.append(f"  {'id':>3}  {'class':<{width}}  {'pixels':>12}  share")
+        for c, n, f in zip(report.classes.classes, report.class_pixels, report.class_shares, strict=True):
+            lines.append(f"  {c.id:>3}  {c.name:<{width}}  {n:>12}  {f:6.1%}")
         share = report.ignore_pixels / total if total else 0.0
         lines.append(f"  {report.classes.ignore:>3}  {'ignore':<{width}}  {report.ignore_pixels:>12}  "
-                     f"({share:.4f} of all mask pixels)")
+                     f"({share:.1%} of all mask pixels)")
         absent = [c.name for c, n in zip(report.classes.classes, report.class_pixels, strict=True) if n == 0]
         if absent:
             lines.append(f"note: no labelled pixels of {', '.join(absent)}")

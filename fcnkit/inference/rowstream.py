@@ -29,6 +29,7 @@ from torch.nn import functional as F
 
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -484,6 +485,6 @@ class RowStreamer:
                 yield done, y[0]
                 done += y.shape[2]
                 bar.update(y.shape[2])
-                bar.set_postfix_str(f"{done * width / 1e6 / (time.perf_counter() - t0):.2f} MP/s")
+                bar.set_postfix_str(pixel_rate(done * width, time.perf_counter() - t0))
         if done != height:
             raise RuntimeError(f"row streaming produced {done} of {height} rows")

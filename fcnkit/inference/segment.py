@@ -14,7 +14,7 @@ import numpy as np
 
 from fcnkit.atomic import DISK_FULL, default_mode
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import SEGMENT_MAX_PIXELS
+from fcnkit.data.raster import DEFAULT_MAX_PIXELS
 from fcnkit.errors import ConfigError, DataError, DiskFullError
 from fcnkit.inference.engines import Engine, make_engine
 from fcnkit.inference.scan import stream_scores
@@ -34,7 +34,7 @@ def as_model(model_or_path: Model | str | Path) -> Model:
 @dataclass
 class SegmentResult:
     """The files written for one image (by kind: labels, confidence, uncertainty, overlay, areas_csv,
-    areas_json) and its per-class area rows (id, name, pixels, fraction, area_m2)."""
+    areas_json) and its per-class area rows (id, name, pixels, share, area_m2)."""
 
     paths: dict[str, Path]
     areas: list[dict]
@@ -69,7 +69,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
                   scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
                   window: str | None = None, exact: bool = False,
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
-                  max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
+                  max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
                   engine: Engine | str = "torch", preview: int = 1024, outputs: OutputOptions | None = None,
                   note: Callable[[str], None] | None = None) -> SegmentResult:
     """Map one image file (PNG, JPEG, or any GeoTIFF GDAL reads, of any size) into ``out_dir``.
