@@ -99,7 +99,7 @@ def _max_pixels_option(p: argparse.ArgumentParser) -> None:
 
 def _overwrite_option(p: argparse.ArgumentParser) -> None:
     p.add_argument("--overwrite", action="store_true", help="replace results an earlier run left at --out "
-                   "(without it, existing results are never replaced)")
+                   "(without it an existing result is never replaced; inputs and weights never are)")
 
 
 def _describe(args: argparse.Namespace) -> int:
@@ -125,7 +125,7 @@ def _add_describe(sub: argparse._SubParsersAction) -> None:
 def _export(args: argparse.Namespace) -> int:
     from fcnkit.model import Model
 
-    print(Model.load(args.model).export(args.out, args.format).summary())
+    print(Model.load(args.model).export(args.out, args.format, overwrite=args.overwrite).summary())
     return 0
 
 
@@ -134,6 +134,7 @@ def _add_export(sub: argparse._SubParsersAction) -> None:
     p.add_argument("model", metavar="MODEL", help="model file (.safetensors) written by fcnkit")
     p.add_argument("--format", choices=("onnx", "torchscript"), default="onnx", help="output format ")
     p.add_argument("--out", required=True, metavar="FILE", help="where to write the exported net")
+    _overwrite_option(p)
     p.set_defaults(run=_export)
 
 
@@ -202,6 +203,7 @@ def _evaluate(args: argparse.Namespace) -> int:
         _note("--json FILE is now spelled --out FILE (--json alone prints the scores as JSON); read as such")
         args.out, args.json = args.json, False
     r = evaluate(args.model, args.data, json_path=args.out, report=args.report, curves=args.curves,
+                 overwrite=args.overwrite,
                  examples=args.examples, scan=args.scan, tile=args.tile, overlap=args.overlap, batch=args.batch,
                  window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
                  max_pixels=args.max_pixels, progress=not args.quiet, note=_note)
@@ -229,6 +231,7 @@ def _add_evaluate(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--examples", type=int, default=3, metavar="N", help="worst-scoring images shown in the report")
     add_tile_options(p)
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _overwrite_option(p)
     p.set_defaults(run=_evaluate)
 
 
@@ -238,7 +241,8 @@ def _segment(args: argparse.Namespace) -> int:
     segment_images(args.model, args.inputs, args.out, scan=args.scan, tile=args.tile, overlap=args.overlap,
                    batch=args.batch, window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
                    bf16=args.bf16, pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
-                   progress=not args.quiet, echo=print, note=_note, outputs=_output_options(args))
+                   progress=not args.quiet, echo=print, note=_note, outputs=_output_options(args),
+                   overwrite=args.overwrite)
     return 0
 
 
@@ -270,13 +274,14 @@ def _add_segment(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--no-cog", action="store_true",
                    help="write plain tiled GeoTIFFs instead of Cloud-Optimised GeoTIFFs with overviews")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _overwrite_option(p)
     p.set_defaults(run=_segment)
 
 
 def _demo(args: argparse.Namespace) -> int:
     from fcnkit.demo import run_demo
 
-    run_demo(args.out, quick=args.quick, progress=not args.quiet)
+    run_demo(args.out, quick=args.quick, progress=not args.quiet, overwrite=args.overwrite)
     return 0
 
 
@@ -285,6 +290,7 @@ def _add_demo(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--out", default="fcnkit-demo", metavar="DIR", help="output folder")
     p.add_argument("--quick", action="store_true", help="toy sizes: the same steps in seconds")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    _overwrite_option(p)
     p.set_defaults(run=_demo)
 
 
@@ -299,7 +305,7 @@ def _convert(args: argparse.Namespace) -> int:
         from fcnkit.destinations import check_outputs
 
         source = args.source if Path(args.source).is_file() else None
-        check_outputs([args.out], inputs=[source, args.weights, args.classes])
+        check_outputs([args.out], inputs=[source, args.weights, args.classes], overwrite=args.overwrite)
     table = load_classes(args.classes) if args.classes else None
     src = load_classifier(args.source, args.weights, random_weights=args.random_weights)
     conv = convert_classifier(src.module, args.native, global_pool=args.pool, sizes=tuple(args.sizes),
@@ -346,6 +352,7 @@ def _add_convert(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--mean", type=_csv(float, "numbers"), metavar="M1,M2,...", help="per-band mean in raw pixel units")
     p.add_argument("--std", type=_csv(float, "numbers"), metavar="S1,S2,...", help="per-band std in raw pixel units")
     p.add_argument("--json", action="store_true", help="print the certificate as one JSON object")
+    _overwrite_option(p)
     p.set_defaults(run=_convert)
 
 
@@ -401,6 +408,7 @@ def _sample(args: argparse.Namespace) -> int:
 
     expected = args.expected_accuracy[0] if len(args.expected_accuracy) == 1 else args.expected_accuracy
     s = draw_sample(args.labels, args.out, classes=load_classes(args.classes) if args.classes else None,
+                    overwrite=args.overwrite,
                     total=args.points, target_se=args.target_se, expected_accuracy=expected,
                     minimum=args.min_per_class, seed=args.seed, image=args.image, chips=args.chips,
                     chip_size=args.chip_size, max_pixels=args.max_pixels)
@@ -436,6 +444,7 @@ def _add_sample(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--chips", metavar="DIR", help="also write one PNG of the image around each point into DIR")
     p.add_argument("--chip-size", type=int, default=64, metavar="PX", help="side of the image chips")
     _max_pixels_option(p)
+    _overwrite_option(p)
     p.set_defaults(run=_sample)
 
 
@@ -453,8 +462,8 @@ def _assess(args: argparse.Namespace) -> int:
             raise FcnkitError(f"--out {name}: expected one .json and/or one .csv file")
         by_suffix[suffix] = name
     check_outputs([*args.out, *([args.report] if args.report else [])],  # before the work, not after
-                  inputs=[args.sample, args.labels, args.counts, args.classes])
-    table = assess_sample(args.sample, labels=args.labels, counts=args.counts,
+                  inputs=[args.sample, args.labels, args.counts, args.classes], overwrite=args.overwrite)
+    table = assess_sample(args.sample, labels=args.labels, counts=args.counts, overwrite=args.overwrite,
                           classes=load_classes(args.classes) if args.classes else None,
                           pixel_area_m2=args.pixel_size ** 2 if args.pixel_size is not None else None,
                           reference_field=args.reference_field, json_path=by_suffix.get(".json"),
@@ -494,6 +503,7 @@ def _add_assess(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--json", action="store_true", help="print the estimates as one JSON object instead of a table")
     p.add_argument("--report", metavar="FILE", help="also write a self-contained HTML report of the estimates")
     _max_pixels_option(p)
+    _overwrite_option(p)
     p.set_defaults(run=_assess)
 
 

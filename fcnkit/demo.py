@@ -73,14 +73,18 @@ class DemoResult:
     cpu_seconds: dict[str, float]
 
 
-def prepare(out: Path) -> None:
-    """Create ``out``, or clear the demo's own outputs from an earlier run; refuse any other non-empty folder."""
+def prepare(out: Path, overwrite: bool = False) -> None:
+    """Create ``out``, or with ``overwrite`` clear the demo's own outputs from an earlier run; refuse any other
+    non-empty folder."""
     if out.exists() and not out.is_dir():
         raise DataError(f"{out}: exists and is not a folder (choose another demo output folder)")
     if out.is_dir() and any(out.iterdir()):
         if not (out / MARKER).is_file():
             raise DataError(f"{out}: not empty and not an earlier demo output (choose another folder; "
                             "nothing was changed)")
+        if not overwrite:
+            raise DataError(f"{out}: holds an earlier demo run; refusing to replace it (--overwrite, or "
+                            "overwrite=True in Python, replaces it)")
         for name in PARTS:
             p = out / name
             if p.is_dir():
@@ -88,7 +92,7 @@ def prepare(out: Path) -> None:
             elif p.exists():
                 p.unlink()
     out.mkdir(parents=True, exist_ok=True)
-    (out / MARKER).write_text("made by `fcnkit demo`; the demo clears its own outputs here when re-run\n")
+    (out / MARKER).write_text("made by `fcnkit demo`; `fcnkit demo --overwrite` replaces its outputs here\n")
 
 
 def demo_config(plan: DemoPlan) -> Config:
@@ -182,7 +186,7 @@ def _area_table(areas: list[dict[str, Any]]) -> str:
 
 
 def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progress: bool = True,
-             echo: Callable[[str], None] = print) -> DemoResult:
+             echo: Callable[[str], None] = print, overwrite: bool = False) -> DemoResult:
     """Run every demo step into ``out_dir`` and print what happened and where each output is."""
     from fcnkit.data.scenes import SCENE_CLASSES, make_scenes, write_mosaic
     from fcnkit.evaluate import evaluate
@@ -195,7 +199,7 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     plan = QUICK if quick else FULL
     out = Path(out_dir)
     cfg = demo_config(plan)
-    prepare(out)
+    prepare(out, overwrite)
     paths: dict[str, Path] = {}
     figures: dict[str, Any] = {}
     seconds: dict[str, float] = {}

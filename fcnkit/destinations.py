@@ -4,8 +4,9 @@ An output is refused (one line naming it) when it is one of the run's inputs —
 path, through a symbolic link or a hard link (same device and inode) —, when two outputs of the run are one file,
 when it already holds weights (a safetensors file, a torch checkpoint such as a run's resume point) or a run's
 metrics table beside its resume point, when it is a folder, or when its folder is missing or cannot be written
-to. Exported nets (ONNX, TorchScript) and earlier results (maps, scores, reports) may be replaced: they are
-made again from a model file by rerunning the command.
+to. An earlier result (a map, scores, a report, an exported net) is replaced only when asked (``overwrite``,
+the commands' ``--overwrite``): no command replaces a file silently. Weights and a run's metrics are never
+replaced, even then (remove them first); a training run continues its own only with ``--resume``.
 """
 
 from __future__ import annotations
@@ -74,13 +75,13 @@ def protected(path: Path) -> str | None:
 
 def check_outputs(files: Iterable[PathLike] = (), *, inputs: Iterable[PathLike | None] = (),
                   folders: Iterable[PathLike | tuple[PathLike, str]] = (), replace_weights: bool = False,
-                  error: type[FcnkitError] = FcnkitError) -> None:
+                  overwrite: bool = False, error: type[FcnkitError] = FcnkitError) -> None:
     """Refuse, before any work, outputs that would destroy something (see module notes).
 
     ``files``: the files the command writes; ``inputs``: every file it reads; ``folders``: folders it writes
     into (created when missing), each alone or with a glob pattern of the names it writes there (an input in
     that folder matching the pattern is refused); ``replace_weights``: a training run replacing its own model
-    and resume point."""
+    and resume point; ``overwrite``: earlier results at ``files`` may be replaced."""
     seen_inputs = [Path(p) for p in inputs if p is not None]
     ids = {i for i in map(_identity, seen_inputs) if i is not None}
     real = {os.path.realpath(p) for p in seen_inputs}
@@ -115,6 +116,9 @@ def check_outputs(files: Iterable[PathLike] = (), *, inputs: Iterable[PathLike |
         if what is not None:
             raise error(f"{out}: already holds {what}; refusing to overwrite it (choose another name, or remove "
                         "it first)")
+        if not (overwrite or replace_weights) and out.exists():
+            raise error(f"{out}: exists (an earlier result); refusing to replace it (--overwrite, or overwrite=True "
+                        "in Python, replaces it)")
         if out.parent in writable or (out.parent in made_folders and not out.parent.exists()):
             continue  # a folder already tried, or one the command makes
         _check_writable(out, error)

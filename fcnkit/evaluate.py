@@ -183,7 +183,7 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
              scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
              window: str | None = None, exact: bool = False, tta: bool = False, engine: str = "torch",
              max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True,
-             note: Callable[[str], None] | None = None) -> Evaluation:
+             note: Callable[[str], None] | None = None, overwrite: bool = False) -> Evaluation:
     """Score a model on every image/mask pair of a labelled folder, by the same row streaming or tiled inference
     as ``segment`` (the same ``scan`` and tile settings).
 
@@ -207,7 +207,7 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
     if curves is None and path is not None and (path.parent / "metrics.csv").is_file():
         curves = path.parent / "metrics.csv"
     outputs = [p for p in (json_path, report) if p is not None]
-    check_outputs(outputs, inputs=[path, curves, *dataset_files(data_dir)], error=DataError)
+    check_outputs(outputs, inputs=[path, curves, *dataset_files(data_dir)], overwrite=overwrite, error=DataError)
     if curves is not None and report is not None:
         read_curves(curves)  # unreadable: refused now, not after the whole evaluation
     if not isinstance(model, Model):

@@ -125,13 +125,15 @@ def _runner(fmt: str, path: Path) -> tuple[Callable[[torch.Tensor], np.ndarray],
     return (lambda x: loaded(x).detach().numpy()), f"torch.jit {torch.__version__}"
 
 
-def export_model(model: Model, out: str | Path, format: str = "onnx", *, tolerance: float = TOLERANCE) -> ExportCheck:
+def export_model(model: Model, out: str | Path, format: str = "onnx", *, tolerance: float = TOLERANCE,
+                 overwrite: bool = False) -> ExportCheck:
     """Export ``model`` to ``out`` as ONNX or TorchScript, checked against its own forward pass; ModelFileError,
-    leaving nothing at ``out``, when the written file does not match."""
+    leaving nothing at ``out``, when the written file does not match. An existing ``out`` is replaced only
+    with ``overwrite``."""
     if format not in FORMATS:
         raise ModelFileError(f"export format {format!r} is not one of: {', '.join(FORMATS)}")
     out = Path(out)
-    check_outputs([out], inputs=[model.path], error=ModelFileError)
+    check_outputs([out], inputs=[model.path], overwrite=overwrite, error=ModelFileError)
     model = model.eval()
     values = model.metadata()
     mean, std, bands = values["mean"], values["std"], model.bands

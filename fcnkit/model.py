@@ -294,12 +294,12 @@ class Model(nn.Module):
         model.path = Path(path)  # where it came from (training records it as the run's starting point)
         return model
 
-    def export(self, out: str | Path, format: str = "onnx") -> ExportCheck:
+    def export(self, out: str | Path, format: str = "onnx", *, overwrite: bool = False) -> ExportCheck:
         """Write the model as ONNX or TorchScript (raw pixels in, class scores out, any size), checked against
         this model's own forward pass at sizes that are no multiple of its stride."""
         from fcnkit.export import export_model
 
-        return export_model(self, out, format)
+        return export_model(self, out, format, overwrite=overwrite)
 
     def copy(self) -> Model:
         return copy.deepcopy(self)

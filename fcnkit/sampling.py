@@ -257,7 +257,7 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
                 expected_accuracy: float | Sequence[float] = DEFAULT_EXPECTED_ACCURACY,
                 minimum: int = DEFAULT_MINIMUM, seed: int = 0, image: str | Path | None = None,
                 chips: str | Path | None = None, chip_size: int = 64,
-                max_pixels: int | None = DEFAULT_MAX_PIXELS) -> Sample:
+                max_pixels: int | None = DEFAULT_MAX_PIXELS, overwrite: bool = False) -> Sample:
     """Draw a stratified random sample of points from a label map and write it to ``out`` (.gpkg, .geojson
     or .csv; several names write several files).
 
@@ -274,7 +274,7 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
     if chips is not None and image is None:
         raise DataError("image chips need the mapped image (the image the label map was made from)")
     check_outputs(paths, inputs=[labels, image], folders=[(chips, "point_*.png")] if chips is not None else [],
-                  error=DataError)
+                  overwrite=overwrite, error=DataError)
     if total is not None and total < 1:
         raise DataError(f"sample size {total} points (expected at least 1)")
     if minimum < 0:
@@ -546,7 +546,8 @@ def _map_checker(raster: Raster, points: list[SamplePoint], sample: Path) -> Cal
 def assess_sample(sample: str | Path, *, labels: str | Path | None = None, counts: str | Path | None = None,
                   classes: ClassTable | None = None, pixel_area_m2: float | None = None,
                   reference_field: str = "reference", json_path: str | Path | None = None,
-                  csv_path: str | Path | None = None, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> dict[str, Any]:
+                  csv_path: str | Path | None = None, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+                  overwrite: bool = False) -> dict[str, Any]:
     """Olofsson et al. 2014 estimates from a filled sample; returns :func:`fcnkit.assessment.assessment_table`'s
     dict (plus the files used) and writes it as JSON and tidy CSV when paths are given.
 
@@ -562,7 +563,7 @@ def assess_sample(sample: str | Path, *, labels: str | Path | None = None, count
     if pixel_area_m2 is not None and not pixel_area_m2 > 0:
         raise DataError(f"pixel area {pixel_area_m2} m² (expected a positive number)")
     check_outputs([p for p in (json_path, csv_path) if p is not None], inputs=[sample, labels, counts],
-                  error=DataError)
+                  overwrite=overwrite, error=DataError)
     points = read_sample(sample, reference_field, need_cells=labels is not None)
     area_source = "given" if pixel_area_m2 is not None else None
     if labels is not None:

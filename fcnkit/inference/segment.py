@@ -44,7 +44,7 @@ class SegmentResult:
 
 
 def check_segment_outputs(model: Model, images: Sequence[Path], out_dir: Path,
-                          outputs: OutputOptions | None = None) -> None:
+                          outputs: OutputOptions | None = None, overwrite: bool = False) -> None:
     """Refuse, before any work, outputs that would replace an input (an image, the model file) or weights
     (:func:`fcnkit.destinations.check_outputs`), for every output name an image may get."""
     from fcnkit.destinations import check_outputs
@@ -53,7 +53,8 @@ def check_segment_outputs(model: Model, images: Sequence[Path], out_dir: Path,
     polygons = outputs.polygons if outputs is not None else None
     names = {out_dir / n for p in images for tiff in (False, True)
              for n in output_names(p.stem, tiff, polygons).values()}
-    check_outputs(sorted(names), inputs=[model.path, *images], folders=[out_dir], error=DataError)
+    check_outputs(sorted(names), inputs=[model.path, *images], folders=[out_dir], overwrite=overwrite,
+                  error=DataError)
 
 
 def _prepare_folder(out_dir: Path) -> None:
@@ -71,7 +72,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
                   max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
                   engine: Engine | str = "torch", preview: int = 1024, outputs: OutputOptions | None = None,
-                  note: Callable[[str], None] | None = None) -> SegmentResult:
+                  note: Callable[[str], None] | None = None, overwrite: bool = False) -> SegmentResult:
     """Map one image file (PNG, JPEG, or any GeoTIFF GDAL reads, of any size) into ``out_dir``.
 
     ``model_or_path`` is a :class:`~fcnkit.model.Model` or a model file. Writes
@@ -81,7 +82,8 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     scores stream from the scan straight into the
     8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
     there and only then moved to its final name, so a run that is stopped leaves no output at all for the image
-    rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan).
+    rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan). Outputs
+    of an earlier run are replaced only with ``overwrite``.
     """
     import shutil
     import tempfile
@@ -93,7 +95,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
     model = as_model(model_or_path)
     image_path, out_dir = Path(image_path), Path(out_dir)
-    check_segment_outputs(model, [image_path], out_dir, outputs)
+    check_segment_outputs(model, [image_path], out_dir, outputs, overwrite)
     _prepare_folder(out_dir)
     raster = open_raster(image_path, max_pixels)
     work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
@@ -179,7 +181,7 @@ def segment_images(model_or_path: Model | str | Path, inputs: Sequence[str | Pat
     model = as_model(model_or_path)
     files = shard(find_images(inputs), rank, world)
     # every image's outputs, before the first is mapped
-    check_segment_outputs(model, files, Path(out_dir), options.get("outputs"))
+    check_segment_outputs(model, files, Path(out_dir), options.get("outputs"), options.get("overwrite", False))
     engine = options.get("engine", "torch")
     if isinstance(engine, str) and engine != "torch":  # e.g. onnxruntime: build the session once
         options["engine"] = make_engine(engine, model)
