@@ -101,6 +101,9 @@ def check_outputs(files: Iterable[PathLike] = (), *, inputs: Iterable[PathLike |
                 if is_input(p):
                     raise error(f"{p}: is an input of this run and a name it writes in {folder}; choose another "
                                 "output folder")
+                if not overwrite:
+                    raise error(f"{folder}: holds earlier results ({pattern}); refusing to replace them "
+                                "(--overwrite, or overwrite=True in Python, replaces them)")
         made_folders.append(folder)
     outputs: dict[tuple[int, int] | str, Path] = {}
     for out in map(Path, files):

@@ -231,7 +231,7 @@ def _kill_then_rerun(runner: Runner, argv: list, out: Path, hook: tuple, referen
     assert code == -signal.SIGKILL, (hook, log)
     for name, data in _finals(out).items():  # whatever has a final name is complete
         assert data == reference[name], name
-    code, log = runner.run([*argv, "--out", out])
+    code, log = runner.run([*argv, "--out", out, "--overwrite"])  # replaces what the killed run finished
     assert code == 0, log
     assert _finals(out) == reference
 

@@ -65,9 +65,9 @@ def test_the_guard_refuses_exactly_the_outputs_that_are_an_input(tmp_path_factor
     same = out.exists() and any(os.path.samefile(out, files[i]) for i in inputs)
     if same:
         with pytest.raises(FcnkitError, match="is an input of this run"):
-            check_outputs([out], inputs=[files[i] for i in inputs])
+            check_outputs([out], inputs=[files[i] for i in inputs], overwrite=True)
     else:
-        check_outputs([out], inputs=[files[i] for i in inputs])
+        check_outputs([out], inputs=[files[i] for i in inputs], overwrite=True)
     assert all(f.read_bytes() == b"pixels" for f in files)
 
 
@@ -81,9 +81,13 @@ def test_the_guard_protects_weights_but_lets_exports_and_results_be_made_again(t
     torch.jit.save(scripted, str(tmp_path / "net.pt"))
     (tmp_path / "scores.json").write_text("{}\n")
     for name, what in (("m.safetensors", "a model file"), ("state.pt", "a torch checkpoint")):
-        with pytest.raises(FcnkitError, match=f"{name}: already holds {what}"):
+        for overwrite in (False, True):  # weights are never replaced, even when asked
+            with pytest.raises(FcnkitError, match=f"{name}: already holds {what}"):
+                check_outputs([tmp_path / name], overwrite=overwrite)
+    for name in ("net.pt", "scores.json"):  # a TorchScript export, an earlier result: replaced only when asked
+        with pytest.raises(FcnkitError, match=f"{name}: exists .*--overwrite"):
             check_outputs([tmp_path / name])
-    check_outputs([tmp_path / "net.pt", tmp_path / "scores.json"])  # a TorchScript export, an earlier result
+    check_outputs([tmp_path / "net.pt", tmp_path / "scores.json"], overwrite=True)
 
 
 def test_demo_refuses_a_run_folder_and_a_model_file_as_its_output(tmp_path):

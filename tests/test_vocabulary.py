@@ -94,42 +94,55 @@ def _keys(value: object) -> set[str]:
     return set()
 
 
-def test_written_files_use_the_shared_vocabulary(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    """A whole tiny job through the CLI (scenes, train, evaluate, segment, sample, assess): every column and
-    key it writes is in the vocabulary, and the same concept is spelled alike in every file."""
+@pytest.fixture(scope="module")
+def job(tmp_path_factory: pytest.TempPathFactory) -> dict:
+    """A whole tiny job through the CLI (scenes, train, evaluate, segment, export, sample, assess): its folder
+    and the command lines that wrote each result."""
     from tests.tiny_train import tiny, write_toml
 
-    write_toml(tmp_path / "tiny.toml", tiny(train={"epochs": 1}))
-    data, run, maps = tmp_path / "data", tmp_path / "run", tmp_path / "maps"
+    tmp = tmp_path_factory.mktemp("job")
+    write_toml(tmp / "tiny.toml", tiny(train={"epochs": 1}))
+    data, run, maps = tmp / "data", tmp / "run", tmp / "maps"
     assert main(["scenes", "--out", str(data), "--count", "3", "--size", "48", "--seed", "3"]) == 0
-    assert main(["train", str(tmp_path / "tiny.toml"), "--data", str(data), "--out", str(run), "--quiet"]) == 0
+    assert main(["train", str(tmp / "tiny.toml"), "--data", str(data), "--out", str(run), "--quiet"]) == 0
     model = str(run / "model.safetensors")
-    assert main(["evaluate", model, "--data", str(data), "--out", str(tmp_path / "e.json"), "--quiet"]) == 0
     image = sorted((data / "images").iterdir())[0]
-    assert main(["segment", model, str(image), "--out", str(maps), "--quiet"]) == 0
+    commands = {
+        "evaluate": ["evaluate", model, "--data", str(data), "--out", str(tmp / "e.json"), "--quiet"],
+        "segment": ["segment", model, str(image), "--out", str(maps), "--quiet"],
+        "export": ["export", model, "--out", str(tmp / "m.onnx")],
+    }
+    for argv in commands.values():
+        assert main(argv) == 0, argv
     labels = next(maps.glob("*.labels.*"))
-    assert main(["sample", str(labels), "--out", str(tmp_path / "s.csv"), "--points", "30", "--min-per-class", "2",
-                 "--classes", str(data / "classes.toml")]) == 0
-    rows = list(csv.DictReader(open(tmp_path / "s.csv", newline="")))
+    commands["sample"] = ["sample", str(labels), "--out", str(tmp / "s.csv"), "--points", "30", "--min-per-class",
+                          "2", "--classes", str(data / "classes.toml")]
+    assert main(commands["sample"]) == 0
+    rows = list(csv.DictReader(open(tmp / "s.csv", newline="")))
     for r in rows:
         r["reference"] = r["map_class"]
-    with open(tmp_path / "filled.csv", "w", newline="") as f:
+    with open(tmp / "filled.csv", "w", newline="") as f:
         w = csv.DictWriter(f, list(rows[0]))
         w.writeheader()
         w.writerows(rows)
-    assert main(["assess", str(tmp_path / "filled.csv"), "--labels", str(labels), "--classes",
-                 str(data / "classes.toml"), "--pixel-size", "0.5",
-                 "--out", f"{tmp_path / 'a.json'},{tmp_path / 'a.csv'}"]) == 0
-    capsys.readouterr()
+    commands["assess"] = ["assess", str(tmp / "filled.csv"), "--labels", str(labels), "--classes",
+                          str(data / "classes.toml"), "--pixel-size", "0.5",
+                          "--out", f"{tmp / 'a.json'},{tmp / 'a.csv'}"]
+    assert main(commands["assess"]) == 0
+    return {"tmp": tmp, "run": run, "maps": maps, "commands": commands, "sample_row": rows[0]}
 
+
+def test_written_files_use_the_shared_vocabulary(job: dict) -> None:
+    """Every column and key the job wrote is in the vocabulary, and a concept is spelled alike in every file."""
+    tmp, run, maps = job["tmp"], job["run"], job["maps"]
     metrics = next(csv.reader(open(run / "metrics.csv", newline="")))
-    evaluation = json.loads((tmp_path / "e.json").read_text())
+    evaluation = json.loads((tmp / "e.json").read_text())
     areas_csv = next(csv.reader(open(next(maps.glob("*.areas.csv")), newline="")))
     areas_json = json.loads(next(maps.glob("*.areas.json")).read_text())
-    assessment_csv = next(csv.reader(open(tmp_path / "a.csv", newline="")))
+    assessment_csv = next(csv.reader(open(tmp / "a.csv", newline="")))
     written = {"metrics.csv": set(metrics), "evaluation": _keys(evaluation), "areas.csv": set(areas_csv),
-               "areas.json": _keys(areas_json), "assessment.json": _keys(json.loads((tmp_path / "a.json").read_text())),
-               "assessment.csv": set(assessment_csv), "sample.csv": set(rows[0])}
+               "areas.json": _keys(areas_json), "assessment.json": _keys(json.loads((tmp / "a.json").read_text())),
+               "assessment.csv": set(assessment_csv), "sample.csv": set(job["sample_row"])}
     for name, keys in written.items():
         bad = _retired_in(" ".join(sorted(keys)))
         assert not bad, (name, bad)
@@ -140,6 +153,20 @@ def test_written_files_use_the_shared_vocabulary(tmp_path: Path, capsys: pytest.
     assert {"recall", "precision", "iou", "dice"} <= scores
     assert "pixels_per_second" in metrics
     assert "share" in areas_csv and "share" in _keys(areas_json)
+
+
+def test_one_overwrite_rule(job: dict, capsys: pytest.CaptureFixture[str]) -> None:
+    """Every command that writes refuses to replace an earlier result, in one line and touching nothing,
+    unless --overwrite is given; then it replaces it."""
+    capsys.readouterr()
+    for name, argv in job["commands"].items():
+        before = {p: p.stat().st_mtime_ns for p in job["tmp"].rglob("*") if p.is_file()}
+        assert main(argv) == 2, name
+        err = capsys.readouterr().err
+        assert len(err.strip().splitlines()) == 1 and "--overwrite" in err and "exists" in err, (name, err)
+        assert {p: p.stat().st_mtime_ns for p in job["tmp"].rglob("*") if p.is_file()} == before, name
+        assert main([*argv, "--overwrite"]) == 0, name
+        capsys.readouterr()
 
 
 def test_readme_figures_come_from_a_demo_run() -> None:
