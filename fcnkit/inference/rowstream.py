@@ -29,6 +29,7 @@ from torch.nn import functional as F
 
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -291,7 +292,15 @@ _POINTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.GELU, nn.SiLU, nn.Sigmoid, nn.
 def _conv_relu(x: torch.Tensor, m: nn.Conv2d, stride: tuple[int, int], padding: tuple[int, int],
                dilation: tuple[int, int]) -> torch.Tensor:
     """Convolution with the ReLU after it done by oneDNN in the same pass (the fused kernel torch's own compiler
-    uses on CPUs); results equal conv2d followed by relu."""
+    uses on CPUs); results equal conv2d followed by relu.
+
+    The fused ReLU turns NaN into 0 where ``relu`` keeps it, so rows would quietly differ from whole-image
+    inference: input that is not finite (its sum is not; a sum that merely overflows also lands here, harmlessly)
+    takes the unfused path, and the NaN reaches the scores, where every scan refuses it. A NaN born inside one
+    convolution from finite input needs sums overflowing float32 both ways, which pixels within the training
+    range check's limit (fcnkit.inputrange) cannot produce with finite weights."""
+    if not bool(torch.isfinite(x.sum())):
+        return F.relu(F.conv2d(x, m.weight, m.bias, stride, padding, dilation, m.groups))
     return torch.ops.mkldnn._convolution_pointwise(x, m.weight, m.bias, list(padding), list(stride), list(dilation),
                                                    m.groups, "relu", [None], "")
 
@@ -476,6 +485,6 @@ class RowStreamer:
                 yield done, y[0]
                 done += y.shape[2]
                 bar.update(y.shape[2])
-                bar.set_postfix_str(f"{done * width / 1e6 / (time.perf_counter() - t0):.2f} MP/s")
+                bar.set_postfix_str(pixel_rate(done * width, time.perf_counter() - t0))
         if done != height:
             raise RuntimeError(f"row streaming produced {done} of {height} rows")
