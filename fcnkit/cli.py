@@ -73,11 +73,11 @@ def _train(args: argparse.Namespace) -> int:
     settings = {**config_to_dict(cfg)["train"], **{k: v for k, v in (("epochs", args.epochs),
                                                                       ("threads", args.threads)) if v is not None}}
     model.fit(args.data, out_dir=args.out, resume=args.resume, progress=not args.quiet, max_pixels=args.max_pixels,
-              **settings)
+              note=_note, **settings)
     r = model.last_run
     if os.environ.get("RANK", "0") == "0":  # under torchrun, one summary
-        best = "no validation images, model of the last epoch kept" if math.isnan(r.best_miou) else \
-            f"best val mIoU {r.best_miou:.4f} at epoch {r.best_epoch}"
+        best = "no validation images, model of the last epoch kept" if math.isnan(r.best_mean_iou) else \
+            f"best validation mean IoU {r.best_mean_iou:.4f} at epoch {r.best_epoch}"
         stop = ", stopped early" if r.stopped_early else ""
         print(f"{r.epochs} epochs{stop}; {best}; model: {r.model_path}; metrics: {r.run_dir / 'metrics.csv'}")
     return 0
@@ -153,8 +153,15 @@ def _segment(args: argparse.Namespace) -> int:
     segment_images(args.model, args.inputs, args.out, scan=args.scan, tile=args.tile, overlap=args.overlap,
                    batch=args.batch, window=args.window, exact=args.exact, tta=args.tta, engine=args.engine,
                    bf16=args.bf16, pixel_size=args.pixel_size, max_pixels=args.max_pixels, preview=args.preview,
-                   progress=not args.quiet, echo=print, note=_note)
+                   progress=not args.quiet, echo=print, note=_note, outputs=_output_options(args))
     return 0
+
+
+def _output_options(args: argparse.Namespace) -> object:
+    from fcnkit.outputs import OutputOptions
+
+    return OutputOptions(cog=not args.no_cog, polygons=args.polygons, min_area_m2=args.min_area,
+                         simplify=args.simplify)
 
 
 def _add_segment(sub: argparse._SubParsersAction) -> None:
@@ -167,8 +174,17 @@ def _add_segment(sub: argparse._SubParsersAction) -> None:
     add_tile_options(p, max_pixels=SEGMENT_MAX_PIXELS)
     p.add_argument("--bf16", action="store_true", help="bfloat16 forward pass (faster on CPUs with AMX/AVX-512 BF16)")
     p.add_argument("--pixel-size", type=float, metavar="M",
-                   help="pixel side in metres, for areas (default: from the GeoTIFF's pixel scale, if any)")
+                   help="pixel side in metres, for areas (default: from the image's CRS and transform, if any)")
     p.add_argument("--preview", type=int, default=1024, metavar="PX", help="longest side of the overlay preview")
+    p.add_argument("--polygons", nargs="?", const="gpkg", choices=("gpkg", "geojson"),
+                   help="also write class polygons (id, name, area m², mean confidence): GeoPackage (default) or "
+                   "GeoJSON")
+    p.add_argument("--min-area", type=float, default=0.0, metavar="M2",
+                   help="leave out polygons smaller than this many square metres")
+    p.add_argument("--simplify", type=float, default=0.0, metavar="PX",
+                   help="simplify polygon outlines within this many pixels (default: exact pixel edges)")
+    p.add_argument("--no-cog", action="store_true",
+                   help="write plain tiled GeoTIFFs instead of Cloud-Optimised GeoTIFFs with overviews")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.set_defaults(run=_segment)
 
@@ -349,6 +365,10 @@ def _assess(args: argparse.Namespace) -> int:
 
     if args.pixel_size is not None and not args.pixel_size > 0:
         raise FcnkitError(f"--pixel-size {args.pixel_size} (expected a positive number of metres)")
+    if args.report:  # before the work, not after
+        from fcnkit.export import check_destination
+
+        check_destination(args.report, FcnkitError)
     table = assess_sample(args.sample, labels=args.labels, counts=args.counts,
                           classes=load_classes(args.classes) if args.classes else None,
                           pixel_area_m2=args.pixel_size ** 2 if args.pixel_size is not None else None,
@@ -356,6 +376,11 @@ def _assess(args: argparse.Namespace) -> int:
                           max_pixels=args.max_pixels)
     print(format_assessment(table))
     print(f"json: {args.json}\ncsv: {args.csv}")
+    if args.report:
+        from fcnkit.report import write_assessment_report
+
+        facts = {"sample": str(args.sample), "map": str(args.labels or args.counts)}
+        print(f"report: {write_assessment_report(args.report, table, facts=facts)}")
     return 0
 
 
@@ -376,6 +401,7 @@ def _add_assess(sub: argparse._SubParsersAction) -> None:
                    help="field holding the reference class of each point (default reference)")
     p.add_argument("--json", default="assessment.json", metavar="FILE", help="default assessment.json")
     p.add_argument("--csv", default="assessment.csv", metavar="FILE", help="default assessment.csv")
+    p.add_argument("--report", metavar="FILE", help="also write a self-contained HTML report of the estimates")
     p.add_argument("--max-pixels", type=int, default=SEGMENT_MAX_PIXELS, metavar="N",
                    help=f"refuse maps with more pixels than this (default {SEGMENT_MAX_PIXELS})")
     p.set_defaults(run=_assess)

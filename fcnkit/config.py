@@ -95,6 +95,7 @@ class TrainConfig:
     class_weights: str = _opt("none", choices=("none", "median"))
     dice: float = _opt(0.0, min=0.0)
     val_fraction: float = _opt(0.2, min=0.0, max=0.9)
+    calibrate: bool = _opt(True)  # fit a temperature on the validation split after training (Guo et al. 2017)
     patience: int = _opt(0, min=0)
     augment: bool = _opt(True)
     scale: list[float] = _opt([0.75, 1.25], min=0.1)

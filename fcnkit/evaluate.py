@@ -15,9 +15,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from fcnkit.atomic import write_text_atomic
+from fcnkit.calibration import ReliabilityAccumulator, scaled_softmax
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_mask
+from fcnkit.data.dataset import Sample, find_samples, sample_mask
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
 from fcnkit.errors import ConfigError, DataError
@@ -25,7 +26,7 @@ from fcnkit.export import check_destination
 from fcnkit.inference.engines import make_engine
 from fcnkit.inference.scan import predict_scores
 from fcnkit.inference.tiles import DEFAULT_TILE
-from fcnkit.metrics import confusion_matrix, segmentation_scores
+from fcnkit.metrics import bootstrap_mean_iou, confusion_matrix, segmentation_scores
 from fcnkit.model import Model
 from fcnkit.outputs import normalised_entropy, strided_rgb
 
@@ -48,7 +49,8 @@ class ImageScore:
 
 @dataclass
 class Evaluation:
-    """The result of :func:`evaluate`: scores over every labelled pixel of the folder, and per image."""
+    """The result of :func:`evaluate`: scores over every labelled pixel of the folder, per image (with a
+    bootstrap interval of the mean IoU over images), and the calibration of the model's confidences there."""
 
     model: str
     data_dir: Path
@@ -56,7 +58,26 @@ class Evaluation:
     confusion: np.ndarray
     scores: dict[str, Any]
     images: list[ImageScore]
+    interval: dict[str, Any]  # bootstrap interval of mean IoU over images (fcnkit.metrics.bootstrap_mean_iou)
+    calibration: dict[str, Any]  # reliability of the model's confidences here, with and without its temperature
     paths: dict[str, Path] = field(default_factory=dict)
+    facts: dict[str, str] = field(default_factory=dict)  # for the report's header
+    examples: list[Example] = field(default_factory=list)  # the worst-scoring images, for the report
+    description: dict[str, Any] = field(default_factory=dict)  # the net's geometry and cost (fcnkit.describe)
+    curves: Path | None = None  # the training run's metrics CSV, when known
+    kept_epoch: int | None = None  # the training epoch whose weights the model holds
+
+    def write_report(self, path: str | Path, *, assessment: dict[str, Any] | None = None) -> Path:
+        """The HTML report of this evaluation (fcnkit.report), with an area and accuracy ``assessment`` from a
+        reference sample when given (fcnkit.assessment.assessment_table); written atomically."""
+        from fcnkit.report import write_report
+
+        self.paths["report"] = write_report(
+            path, self.scores, self.confusion, self.classes, facts=self.facts, curves=self.curves,
+            title=f"Evaluation on {self.data_dir.name}", examples=self.examples, description=self.description,
+            images=[asdict(s) for s in self.images], interval=self.interval, calibration=self.calibration,
+            kept_epoch=self.kept_epoch, assessment=assessment)
+        return self.paths["report"]
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-able (undefined scores as null)."""
@@ -66,6 +87,7 @@ class Evaluation:
         return json_safe({
             "model": self.model, "data": str(self.data_dir), "fcnkit_version": __version__,
             "classes": self.classes.names, "ignore": self.classes.ignore, "scores": self.scores,
+            "mean_iou_interval": self.interval, "calibration": self.calibration,
             "confusion_matrix": self.confusion.tolist(), "images": [asdict(s) for s in self.images],
         })
 
@@ -76,11 +98,21 @@ class Evaluation:
         lines = [f"{len(self.images)} images, {total:,} labelled pixels in {self.data_dir}", ""]
         for key, label in SCORE_LABELS:
             lines.append(f"{label:<26}{_num(s[key]):>8}")
-        lines += ["", f"{'class':<18}{'true pixels':>13}{'share':>8}{'accuracy':>10}{'IoU':>8}{'Dice':>8}"]
+        iv = self.interval
+        if len(self.images) > 1:
+            lines.append(f"{'mean IoU, 95 % interval':<26}{_num(iv['low']):>8} – {_num(iv['high'])} "
+                         f"(bootstrap over {iv['images']} images)")
+        cal = self.calibration
+        lines.append(f"{'calibration error (ECE)':<26}{_num(cal['ece']):>8} (temperature {cal['temperature']:.3g}; "
+                     f"{_num(cal['ece_uncalibrated'])} without)")
+        lines += ["", f"{'class':<18}{'true pixels':>13}{'share':>8}{'predicted':>13}{'bias':>8}{'recall':>8}"
+                      f"{'precision':>10}{'IoU':>8}{'Dice':>8}"]
         for i, name in enumerate(self.classes.names):
             share = s["support"][i] / total if total else math.nan
-            lines.append(f"{name[:17]:<18}{s['support'][i]:>13,}{share:>8.1%}{_num(s['accuracy'][i]):>10}"
-                         f"{_num(s['iou'][i]):>8}{_num(s['dice'][i]):>8}")
+            lines.append(f"{name[:17]:<18}{s['support'][i]:>13,}{share:>8.1%}{s['predicted'][i]:>13,}"
+                         f"{_bias(s['predicted'][i], s['support'][i]):>8}{_num(s['recall'][i]):>8}"
+                         f"{_num(s['precision'][i]):>10}{_num(s['iou'][i]):>8}{_num(s['dice'][i]):>8}")
+        lines.append("recall = producer's accuracy, precision = user's accuracy; bias = predicted / true pixels − 1")
         return "\n".join(lines)
 
 
@@ -90,6 +122,10 @@ SCORE_LABELS = (("pixel_accuracy", "pixel accuracy"), ("mean_accuracy", "mean ac
 
 def _num(v: float | None) -> str:
     return "n/a" if v is None or math.isnan(v) else f"{v:.4f}"
+
+
+def _bias(predicted: int, true: int) -> str:
+    return f"{predicted / true - 1:+.1%}" if true else "n/a"
 
 
 def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str, data_dir: Path) -> None:
@@ -104,8 +140,11 @@ def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str
 
 
 def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict[str, Any],
-               max_pixels: int | None, progress: bool,
-               notes: list[str]) -> tuple[np.ndarray, ImageScore, Example]:
+               max_pixels: int | None, progress: bool, notes: list[str],
+               reliability: tuple[ReliabilityAccumulator, ReliabilityAccumulator]) -> tuple[np.ndarray, ImageScore,
+                                                                                          Example]:
+    """One image's confusion matrix, score and example panels; its confidences are added to ``reliability``
+    (with the model's temperature, and without)."""
     from fcnkit.report import PANEL_SIDE, Example
 
     k = classes.num_classes
@@ -114,16 +153,17 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
         h, w, bands = raster.shape
         if bands != model.bands:
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
-        mask = read_mask(sample.mask, classes, max_pixels)
-        if mask.shape != (h, w):
-            raise DataError(f"{sample.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image is {w}x{h}")
-        probs = predict_scores(model, raster, progress=progress, echo=notes.append, **settings)
+        mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
+        raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
+        logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))
         for y0 in range(0, h, 256):
-            pred = probs[:, y0:y0 + 256].argmax(0)
-            cm += confusion_matrix(mask[y0:y0 + 256], pred, k, classes.ignore)
-        small = np.ascontiguousarray(probs[:, ::step, ::step])
+            z, truth = logits[:, y0:y0 + 256], mask[y0:y0 + 256]
+            cm += confusion_matrix(truth, z.argmax(0), k, classes.ignore)
+            for acc, temperature in zip(reliability, (model.temperature, 1.0), strict=True):
+                acc.add(scaled_softmax(z, temperature, axis=0), truth, axis=0, ignore=classes.ignore)
+        small = scaled_softmax(np.ascontiguousarray(logits[:, ::step, ::step]), model.temperature, axis=0)
         image = strided_rgb(raster, step)
     finally:
         raster.close()
@@ -168,27 +208,51 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
     cm = np.zeros((k, k), np.int64)
     scored: list[tuple[ImageScore, Example]] = []
     notes: list[str] = []
+    reliability = (ReliabilityAccumulator(), ReliabilityAccumulator())
+    per_image = []
     for sample in samples:
-        one, score, example = _score_one(model, sample, classes, settings, max_pixels, progress, notes)
+        one, score, example = _score_one(model, sample, classes, settings, max_pixels, progress, notes, reliability)
         cm += one
+        per_image.append(one)
         scored.append((score, example))
     if not cm.sum():
         raise DataError(f"{data_dir / 'masks'}: no labelled pixels (every mask pixel is the ignore value "
                         f"{classes.ignore})")
-    result = Evaluation(name, data_dir, classes, cm, segmentation_scores(cm), [s for s, _ in scored])
+    calibrated, raw = (acc.result() for acc in reliability)
+    calibration = {"temperature": model.temperature, "ece": calibrated.ece, "ece_uncalibrated": raw.ece,
+                   "reliability": calibrated.to_dict(), "reliability_uncalibrated": raw.to_dict(),
+                   "fitted_in_training": model.extra.get("calibration")}
+    worst = sorted((e for _, e in scored if not math.isnan(e.score)), key=lambda e: e.score)[:examples]
+    result = Evaluation(name, data_dir, classes, cm, segmentation_scores(cm), [s for s, _ in scored],
+                        bootstrap_mean_iou(np.stack(per_image)), calibration,
+                        facts=_facts(model, name, data_dir, len(samples), _scan_fact(scan, tile, window, exact, tta,
+                                                                                     notes)),
+                        examples=worst, description=describe(model.net),
+                        curves=Path(curves) if curves else None, kept_epoch=model.extra.get("epoch"))
     if json_path is not None:
         write_text_atomic(json_path, json.dumps(result.to_dict(), indent=1) + "\n")
         result.paths["json"] = Path(json_path)
     if report is not None:
-        from fcnkit.report import write_report
-
-        worst = sorted((e for _, e in scored if not math.isnan(e.score)), key=lambda e: e.score)[:examples]
-        facts = {"model": name, "data": str(data_dir), "images": str(len(samples)),
-                 "scan": _scan_fact(scan, tile, window, exact, tta, notes)}
-        result.paths["report"] = write_report(report, result.scores, cm, classes, facts=facts, curves=curves,
-                                              title=f"Evaluation on {data_dir.name}", examples=worst,
-                                              description=describe(model.net))
+        result.write_report(report)
     return result
+
+
+def _facts(model: Model, name: str, data_dir: Path, images: int, scan: str) -> dict[str, str]:
+    """The report header: what was evaluated, on what, how, and where the model came from."""
+    from fcnkit import __version__
+
+    extra, m = model.extra, model.config.get("model", {})
+    facts = {"model": name, "data": str(data_dir), "images": str(images), "scan": scan}
+    if "trained_on" in extra:
+        facts["trained on"] = str(extra["trained_on"])
+    net = f"{model.kind}" + (f", widths {'-'.join(map(str, m['widths']))}, fusion {m.get('fusion', 'none')}"
+                             if "widths" in m else "")
+    facts["net"] = f"{net}, {model.bands} bands, {model.num_classes} classes"
+    if "epoch" in extra:
+        facts["kept epoch"] = f"{extra['epoch']} (validation mean IoU {_num(extra.get('val_mean_iou'))})"
+    facts["temperature"] = f"{model.temperature:.3g}"
+    facts["fcnkit"] = __version__
+    return facts
 
 
 def _scan_fact(scan: str, tile: int | None, window: str | None, exact: bool, tta: bool, notes: list[str]) -> str:

@@ -12,7 +12,7 @@ class i in the truth:
 Per class we also give IoU and Dice (= F1 = 2 n_ii / (t_i + Σ_j n_ji)).
 
 Classes absent from a score's denominator are undefined, not zero: a class absent from both truth and
-prediction has IoU and Dice NaN, a class absent from the truth has accuracy NaN. The means skip NaN entries
+prediction has IoU and Dice NaN, a class absent from the truth has recall NaN. The means skip NaN entries
 (n_cl counts only the classes where the per-class value is defined), so a validation set that happens to lack
 a class is not penalised for it, while a class predicted but absent from the truth still scores IoU 0.
 
@@ -61,7 +61,9 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
     """Scores of a confusion matrix (see the module docstring).
 
     Returns ``pixel_accuracy``, ``mean_accuracy``, ``mean_iou``, ``fw_iou`` (floats, NaN when undefined) and
-    per-class lists ``accuracy``, ``iou``, ``dice`` (floats, NaN when undefined) and ``support`` (true pixels).
+    per-class lists ``recall`` (the class accuracy of Long et al.; producer's accuracy in remote sensing),
+    ``precision`` (user's accuracy), ``iou``, ``dice`` (floats, NaN when undefined), ``support`` (true pixels)
+    and ``predicted`` (pixels predicted as the class).
     """
     cm = np.asarray(cm, dtype=np.float64)
     if cm.ndim != 2 or cm.shape[0] != cm.shape[1]:
@@ -71,6 +73,7 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
     pred = cm.sum(axis=0)
     total = truth.sum()
     acc = _ratio(hit, truth)
+    precision = _ratio(hit, pred)
     iou = _ratio(hit, truth + pred - hit)
     dice = _ratio(2 * hit, truth + pred)
     fw = float(np.nansum(truth * iou) / total) if total > 0 else float("nan")
@@ -79,10 +82,12 @@ def segmentation_scores(cm: np.ndarray) -> dict[str, Any]:
         "mean_accuracy": _nanmean(acc),
         "mean_iou": _nanmean(iou),
         "fw_iou": fw,
-        "accuracy": acc.tolist(),
+        "recall": acc.tolist(),
+        "precision": precision.tolist(),
         "iou": iou.tolist(),
         "dice": dice.tolist(),
         "support": [int(v) for v in truth],
+        "predicted": [int(v) for v in pred],
     }
 
 

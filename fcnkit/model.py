@@ -240,16 +240,16 @@ class Model(nn.Module):
 
     def fit(self, data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None = None, *,
             out_dir: str | Path | None = None, resume: bool = False, progress: bool = True,
-            max_pixels: int | None = None, **settings: Any) -> Model:
+            max_pixels: int | None = None, note: Callable[[str], None] | None = None, **settings: Any) -> Model:
         """Train on a dataset folder, or on H×W×B image arrays with H×W mask arrays of class ids (255 or the
         class table's ignore value = unlabelled). ``settings`` override the config's [train] table (e.g.
         ``epochs=5``). The run (best model, resume point, metrics.csv) goes to ``out_dir``, or to a temporary
         folder that is removed afterwards. The model ends holding the weights of its best epoch; the run's
-        result is in ``self.last_run``."""
+        result is in ``self.last_run``. ``note`` receives one-line remarks on the data (e.g. nodata met)."""
         from fcnkit.train import train
 
         self.last_run = train(self, data, masks, out_dir=out_dir, resume=resume, progress=progress,
-                              max_pixels=max_pixels, **settings)
+                              max_pixels=max_pixels, note=note, **settings)
         return self
 
     def metadata(self) -> dict[str, Any]:

@@ -1,17 +1,26 @@
-"""What a mapped image leaves behind: class-id map, confidence, uncertainty, overlay preview, class areas.
+"""What a mapped image leaves behind: class-id map, confidence, uncertainty, overlay preview, class areas and,
+on request, class polygons.
 
-From the class probabilities, streamed from tiled inference in bands of rows, one pass derives three 8-bit maps
-and the per-class pixel counts:
+From the class probabilities, streamed from inference in bands of rows, one pass derives three 8-bit maps and
+the per-class pixel counts and areas:
 
-* labels      — the top class id per pixel (palette PNG with the classes' colours, or a palette TIFF);
-* confidence  — the top class's probability × 255;
+* labels      — the top class id per pixel, with the classes' colour table and names;
+* confidence  — the top class's probability × 255 (scale 1/255 turns it back into 0–1);
 * uncertainty — the normalised entropy −Σ p log p / log C × 255 (0 = certain, 255 = all classes equally
-  likely): the map that shows where labelling more pixels would help most.
+  likely; scale 1/255): the map that shows where labelling more pixels would help most.
 
-Then a down-sampled colour overlay for a quick look, and a table of per-class pixel counts, fractions and
-areas in m² (when the pixel size is known) as CSV and JSON. Maps are PNG for small non-TIFF inputs and tiled
-TIFF otherwise; for a GeoTIFF input every raster output carries its georeferencing tags (the preview's pixel
-scale multiplied by its down-sampling step), so the outputs open aligned in GIS software.
+Then a down-sampled colour overlay for a quick look, a table of per-class pixel counts, fractions and areas in
+m² (:mod:`fcnkit.areas`: any projected unit, rotated grids, geodesic areas for degrees) as CSV and JSON, and
+optionally the class polygons (:mod:`fcnkit.polygons`).
+
+One rule picks the raster format: a PNG or JPEG input of at most 50 MP (these carry no georeferencing) gives
+PNG maps; every other input gives GeoTIFFs — Cloud-Optimised with overviews by default — on the input's exact
+grid (CRS, transform, size), the overlay on the same grid down-sampled by its step.
+
+Nodata: pixels the input marks invalid (nodata value, mask, alpha) are nodata in every output — the ignore
+value in labels (also the labels' nodata value), 0 in confidence (never a real value: the top class of C has
+probability ≥ 1/C), uncertainty and overlay, and a per-dataset mask in every GeoTIFF — and are left out of the
+areas, whose table reports how many there were.
 """
 
 from __future__ import annotations
@@ -21,20 +30,54 @@ import io
 import json
 import math
 from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from fcnkit.areas import PixelArea, pixel_area
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import TIFF_SUFFIXES, GeoTags, Raster, RasterSpec, RowStore, write_tiff_streamed
+from fcnkit.data.raster import PILLOW_SUFFIXES, Raster, RowStore
 from fcnkit.errors import ConfigError
 
-PNG_MAX_PIXELS = 50_000_000  # maps of larger images are written as tiled TIFF
+PNG_MAX_PIXELS = 50_000_000  # maps of larger images are written as GeoTIFF
 BAND = 64  # rows per pass over the score store (keeps the temporaries of one pass small)
+POLYGON_FORMATS = {"gpkg": ".gpkg", "geojson": ".geojson"}
 CAUTION = ("Statistical estimates from a model trained on few examples; verify with ground truth and qualified "
            "people before any medical, structural, flood or safety decision.")
+
+
+@dataclass(frozen=True)
+class OutputOptions:
+    """How an image's outputs are written: GeoTIFFs as COGs with overviews (``cog``) or plain tiled GeoTIFFs;
+    class polygons (``polygons``: None, "gpkg" or "geojson") dropping those under ``min_area_m2`` and simplified
+    within ``simplify`` pixels."""
+
+    cog: bool = True
+    polygons: str | None = None
+    min_area_m2: float = 0.0
+    simplify: float = 0.0
+
+    def __post_init__(self) -> None:
+        if self.polygons is not None and self.polygons not in POLYGON_FORMATS:
+            raise ConfigError(f"polygons: {self.polygons!r} is not one of: {', '.join(POLYGON_FORMATS)}")
+        for name in ("min_area_m2", "simplify"):
+            value = getattr(self, name)
+            if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
+                raise ConfigError(f"{name}: {value!r} is not a number >= 0")
+
+
+@dataclass
+class MapOutputs:
+    """The files written for one image (by kind), its per-class area rows, its nodata pixel count and notes
+    worth one line each (nodata met, areas unknown)."""
+
+    paths: dict[str, Path]
+    areas: list[dict[str, Any]]
+    nodata_pixels: int = 0
+    notes: list[str] = field(default_factory=list)
 
 
 def normalised_entropy(probs: np.ndarray, axis: int = -1) -> np.ndarray:
@@ -63,32 +106,46 @@ def overlay(rgb: np.ndarray, labels: np.ndarray, colors: Sequence[tuple[int, int
     return np.rint((1 - alpha) * rgb.astype(np.float32) + alpha * lut[labels]).astype(np.uint8)
 
 
-def area_rows(counts: np.ndarray, classes: ClassTable, pixel_area_m2: float | None) -> list[dict[str, Any]]:
-    """One row per class: id, name, pixels, fraction of the image, area in m² (None when the pixel size is
-    unknown). Area = pixel count × pixel area."""
-    total = int(counts.sum())
+def area_rows(counts: np.ndarray, classes: ClassTable, areas_m2: Sequence[float] | None) -> list[dict[str, Any]]:
+    """One row per class: id, name, pixels, fraction of the valid pixels, area in m² (None when unknown)."""
+    total = int(np.sum(counts))
     return [{"id": c.id, "name": c.name, "pixels": int(counts[c.id]),
              "fraction": float(counts[c.id] / total) if total else 0.0,
-             "area_m2": float(counts[c.id] * pixel_area_m2) if pixel_area_m2 is not None else None}
+             "area_m2": float(areas_m2[c.id]) if areas_m2 is not None else None}
             for c in classes.classes]
 
 
-def areas_csv(rows: list[dict[str, Any]]) -> str:
+def areas_csv(rows: list[dict[str, Any]], nodata: tuple[int, int] | None = None) -> str:
+    """The area table as CSV; ``nodata`` (its value in the label map, pixel count) adds a last row for the
+    nodata pixels, which have no fraction and no area."""
     buf = io.StringIO()
     writer = csv.DictWriter(buf, ["id", "name", "pixels", "fraction", "area_m2"], lineterminator="\n")
     writer.writeheader()
     for r in rows:
         writer.writerow({**r, "fraction": f"{r['fraction']:.6f}",
                          "area_m2": "" if r["area_m2"] is None else f"{r['area_m2']:.4f}"})
+    if nodata is not None:
+        writer.writerow({"id": nodata[0], "name": "nodata", "pixels": nodata[1], "fraction": "", "area_m2": ""})
     return buf.getvalue()
 
 
-def output_names(stem: str, as_tiff: bool, geo: bool) -> dict[str, str]:
+def png_outputs(raster: Raster) -> bool:
+    """The one format rule: PNG maps for a PNG or JPEG input of at most 50 MP, GeoTIFF for everything else."""
+    height, width, _ = raster.shape
+    return (raster.path is not None and raster.path.suffix.lower() in PILLOW_SUFFIXES and raster.geo is None
+            and height * width <= PNG_MAX_PIXELS)
+
+
+def output_names(stem: str, as_tiff: bool, polygons: str | None = None) -> dict[str, str]:
     """File names of one image's outputs, by kind."""
     ext = ".tif" if as_tiff else ".png"
-    return {"labels": f"{stem}.labels{ext}", "confidence": f"{stem}.confidence{ext}",
-            "uncertainty": f"{stem}.uncertainty{ext}", "overlay": f"{stem}.overlay{'.tif' if geo else '.png'}",
-            "areas_csv": f"{stem}.areas.csv", "areas_json": f"{stem}.areas.json"}
+    names = {"labels": f"{stem}.labels{ext}", "confidence": f"{stem}.confidence{ext}",
+             "uncertainty": f"{stem}.uncertainty{ext}", "overlay": f"{stem}.overlay{ext}",
+             "preview": f"{stem}.preview.png",
+             "areas_csv": f"{stem}.areas.csv", "areas_json": f"{stem}.areas.json"}
+    if polygons is not None:
+        names["polygons"] = f"{stem}.polygons{POLYGON_FORMATS[polygons]}"
+    return names
 
 
 def _write_png(path: Path, array: np.ndarray, palette: list[int] | None = None) -> None:
@@ -102,77 +159,183 @@ def _write_png(path: Path, array: np.ndarray, palette: list[int] | None = None) 
         im.save(tmp, format="PNG")
 
 
-def _colormap(classes: ClassTable) -> np.ndarray:
-    """TIFF palette (3×256 uint16) from the class colours."""
-    return (np.array(classes.palette(), np.uint16).reshape(256, 3).T * 257).astype(np.uint16)
+def _map_specs(classes: ClassTable, shape: tuple[int, int], stores: dict[str, RowStore],
+               valid: RowStore | None) -> dict[str, Any]:
+    """The GeoTIFF description of each 8-bit map."""
+    from fcnkit.data.geotiff import RasterSpec, label_spec
+
+    def rows(store: RowStore):
+        return lambda a, b: store.rows(a, b, write=False)
+
+    mask = None if valid is None else (lambda a, b: valid.rows(a, b, write=False) > 0)
+    labels = label_spec(classes, shape, rows(stores["labels"]), mask)
+    labels.tags = {"FCNKIT_PRODUCT": "labels"}
+    return {
+        "labels": labels,
+        "confidence": RasterSpec(shape, np.dtype(np.uint8), rows(stores["confidence"]), mask, scale=1 / 255,
+                                 offset=0.0, descriptions=("confidence: probability of the top class",),
+                                 tags={"FCNKIT_PRODUCT": "confidence"}, resampling="average"),
+        "uncertainty": RasterSpec(shape, np.dtype(np.uint8), rows(stores["uncertainty"]), mask, scale=1 / 255,
+                                  offset=0.0, descriptions=("uncertainty: normalised entropy of the class "
+                                                            "probabilities (0 certain, 1 all classes equally "
+                                                            "likely)",),
+                                  tags={"FCNKIT_PRODUCT": "uncertainty"}, resampling="average"),
+    }
 
 
 def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, classes: ClassTable, folder: Path,
                   stem: str, *, work: Path | None, pixel_size: float | tuple[float, float] | None = None,
-                  preview: int = 1024) -> tuple[dict[str, Path], list[dict[str, Any]]]:
-    """Write every output of one image into ``folder`` (each atomically); return their paths and the area rows.
+                  preview: int = 1024, options: OutputOptions | None = None) -> MapOutputs:
+    """Write every output of one image into ``folder`` (each atomically).
 
-    ``scores`` are the image's class probabilities as (first row, C×h×W) bands from top to bottom, as tiled
-    inference streams them. ``work`` holds the 8-bit maps between passes when the image is large (None: keep
-    them in memory).
+    ``scores`` are the image's class probabilities as (first row, C×h×W) bands from top to bottom, as inference
+    streams them. ``work`` holds the 8-bit maps between passes when the image is large (None: keep them in
+    memory). ``pixel_size`` (metres) overrides the areas of the input's grid.
     """
+    from fcnkit.data.geotiff import RasterSpec, write_geotiff
+
+    options = options or OutputOptions()
     height, width, _ = raster.shape
     geo = raster.geo
-    as_tiff = geo is not None or height * width > PNG_MAX_PIXELS or (
-        raster.path is not None and raster.path.suffix.lower() in TIFF_SUFFIXES)
-    names = output_names(stem, as_tiff, geo is not None)
+    as_tiff = not png_outputs(raster)
+    area = _areas(raster, pixel_size)
+    if options.polygons is not None and options.min_area_m2 > 0 and not area.known:  # before any inference
+        raise ConfigError(f"min_area: needs pixel areas, but {area.reason}")
+    names = output_names(stem, as_tiff, options.polygons)
     maps = {k: RowStore((height, width), np.uint8, work, k) for k in ("labels", "confidence", "uncertainty")}
+    valid_store = RowStore((height, width), np.uint8, work, "valid") if raster.masked else None
     counts = np.zeros(256, np.int64)
+    area_sums = np.zeros(256, np.float64)
+    nodata = 0
     for top, band in scores:
         if band.shape[0] != classes.num_classes:
             raise ConfigError(f"model: gives {band.shape[0]} class scores but its class table has "
                               f"{classes.num_classes} classes")
         for y0 in range(0, band.shape[1], BAND):
             values = class_maps(np.asarray(band[:, y0:y0 + BAND]))
+            a, b = top + y0, top + y0 + values[0].shape[0]
+            valid = raster.valid(a, b, 0, width) if valid_store is not None else None
+            if valid is not None:
+                values[0][~valid] = classes.ignore
+                values[1][~valid] = 0
+                values[2][~valid] = 0
+                nodata += int((~valid).sum())
+                out = valid_store.rows(a, b)
+                out[:] = valid
+                del out
+            elif valid_store is not None:
+                out = valid_store.rows(a, b)
+                out[:] = 1
+                del out
             for kind, v in zip(maps, values, strict=True):
-                out = maps[kind].rows(top + y0, top + y0 + v.shape[0])
+                out = maps[kind].rows(a, b)
                 out[:] = v
                 del out
             counts += np.bincount(values[0].ravel(), minlength=256)
+            if area.kind in ("rows", "pixels"):
+                weights = np.broadcast_to(area.rows(a, b, width), values[0].shape)
+                area_sums += np.bincount(values[0].ravel(), weights=weights.ravel(), minlength=256)
 
     paths = {k: folder / n for k, n in names.items()}
-    tags = geo.extratags() if geo is not None else []
-    for kind, store in maps.items():
-        palette = kind == "labels"
-        if as_tiff:
-            spec = RasterSpec((height, width), np.dtype(np.uint8), lambda a, b, s=store: s.rows(a, b, write=False),
-                              colormap=_colormap(classes) if palette else None, extratags=tags)
-            write_tiff_streamed(paths[kind], spec)
-        else:
-            _write_png(paths[kind], store.whole(), classes.palette() if palette else None)
+    if as_tiff:
+        for kind, spec in _map_specs(classes, (height, width), maps, valid_store if nodata else None).items():
+            write_geotiff(paths[kind], spec, geo, cog=options.cog, work=work)
+    else:
+        for kind, store in maps.items():
+            _write_png(paths[kind], store.whole(), classes.palette() if kind == "labels" else None)
 
     step = max(1, math.ceil(max(height, width) / preview))
-    rgb, small = _preview(raster, maps["labels"], step)
+    rgb, small, small_valid = _preview(raster, maps["labels"], valid_store if nodata else None, step)
     picture = overlay(rgb, small, classes.colors)
-    if geo is not None:
-        write_tiff_streamed(paths["overlay"], RasterSpec(picture.shape, np.dtype(np.uint8),
-                                                         lambda a, b: picture[a:b], extratags=geo.extratags(step)))
+    if small_valid is not None:
+        picture[~small_valid] = 0
+    if as_tiff:
+        spec = RasterSpec(picture.shape, np.dtype(np.uint8), lambda a, b: picture[a:b],
+                          None if small_valid is None else (lambda a, b: small_valid[a:b]), rgb=True,
+                          descriptions=("red", "green", "blue"), resampling="average",
+                          tags={"FCNKIT_PRODUCT": "overlay"})
+        write_geotiff(paths["overlay"], spec, None if geo is None else geo.scaled(step), cog=options.cog,
+                      work=work)
     else:
         _write_png(paths["overlay"], picture)
+    _write_png(paths["preview"], _preview_card(raster, maps["labels"], small, picture, step, classes, counts, stem))
 
-    area = _pixel_area(pixel_size, geo)
-    rows = area_rows(counts[:classes.num_classes], classes, area)
-    write_text_atomic(paths["areas_csv"], areas_csv(rows))
+    k = classes.num_classes
+    if area.kind == "constant":
+        per_class = counts[:k] * area.constant_m2
+    elif area.known:
+        per_class = area_sums[:k]
+    else:
+        per_class = None
+    if options.polygons is not None:
+        from fcnkit.polygons import write_class_polygons
+
+        write_class_polygons(paths["polygons"], maps["labels"], maps["confidence"],
+                             valid_store if nodata else None, classes, geo, area, fmt=options.polygons,
+                             min_area_m2=options.min_area_m2, simplify=options.simplify)
+    rows = area_rows(counts[:k], classes, per_class)
+    write_text_atomic(paths["areas_csv"], areas_csv(rows, (classes.ignore, nodata) if nodata else None))
+    notes = []
+    if nodata:
+        notes.append(f"{nodata:,} nodata pixels ({nodata / (height * width):.1%} of the image) left out of every "
+                     "output and of the areas")
+    if not area.known:
+        notes.append(str(area.reason))
     doc = {"image": str(raster.path) if raster.path else None, "width": width, "height": height,
-           "pixel_area_m2": area, "pixel_area_source": _area_source(pixel_size, area), "classes": rows,
-           "caution": CAUTION}
+           "crs": geo.crs.to_wkt() if geo is not None and geo.crs is not None else None,
+           "transform": list(geo.transform)[:6] if geo is not None else None,
+           "pixel_area_m2": area.constant_m2, "pixel_area_source": area.source if area.known else None,
+           "areal_scale": area.areal_scale, "area_note": area.reason, "nodata_pixels": nodata,
+           "valid_pixels": height * width - nodata, "classes": rows, "caution": CAUTION}
     write_text_atomic(paths["areas_json"], json.dumps(doc, indent=2) + "\n")
-    return paths, rows
+    return MapOutputs(paths, rows, nodata, notes)
 
 
-def display_rgb(image: np.ndarray) -> np.ndarray:
+def _preview_card(raster: Raster, labels: RowStore, small: np.ndarray, picture: np.ndarray, step: int,
+                  classes: ClassTable, counts: np.ndarray, stem: str) -> np.ndarray:
+    """The preview card (fcnkit.preview): the overlay, a full-resolution inset where the map is busiest (when
+    the overview is down-sampled at all), and the legend with each class's share of the mapped pixels."""
+    from fcnkit.preview import INSET, choose_inset, preview_card
+
+    height, width, _ = raster.shape
+    inset = box = None
+    if step > 1:
+        r, c = choose_inset(small, max(1, INSET // step), classes.ignore)
+        y0, x0 = r * step, c * step
+        y1, x1 = min(y0 + INSET, height), min(x0 + INSET, width)
+        valid = raster.valid(y0, y1, 0, width) if getattr(raster, "masked", False) else None
+        region = raster.read(y0, y1, x0, x1)
+        region_valid = None if valid is None else valid[:, x0:x1]
+        inset = overlay(display_rgb(region, region_valid), np.array(labels.rows(y0, y1, write=False)[:, x0:x1]),
+                        classes.colors)
+        if region_valid is not None:
+            inset[~region_valid] = 0
+        box = (c, r, c + -(-(x1 - x0) // step), r + -(-(y1 - y0) // step))
+    k = classes.num_classes
+    mapped = counts[:k].sum()
+    shares = [float(n / mapped) if mapped else 0.0 for n in counts[:k]]
+    scale = f"1:{step} overview" if step > 1 else "full resolution"
+    return preview_card(picture, inset, box, classes.names, classes.colors, shares,
+                        f"{stem}: {width}x{height} px, {scale}")
+
+
+def _areas(raster: Raster, pixel_size: float | tuple[float, float] | None) -> PixelArea:
+    geo = raster.geo
+    height, width, _ = raster.shape
+    if geo is None:
+        return pixel_area(None, None, pixel_size=pixel_size)
+    return pixel_area(geo.crs, geo.transform, pixel_size=pixel_size, size=(height, width))
+
+
+def display_rgb(image: np.ndarray, valid: np.ndarray | None = None) -> np.ndarray:
     """H×W×3 uint8 for display: first three bands (or one, as grey), each stretched between its 2nd and 98th
-    percentile, so 16-bit and float images show as well as 8-bit ones."""
+    percentile over the valid pixels, so 16-bit and float images show as well as 8-bit ones."""
     bands = image[..., :3] if image.shape[-1] >= 3 else np.repeat(image[..., :1], 3, axis=-1)
     out = np.empty(bands.shape, np.uint8)
     for b in range(3):
         v = bands[..., b].astype(np.float32)
-        lo, hi = np.percentile(v, [2, 98]) if v.size else (0.0, 1.0)
+        seen = v if valid is None else v[valid]
+        lo, hi = np.percentile(seen, [2, 98]) if seen.size else (0.0, 1.0)
         out[..., b] = np.clip((v - lo) / max(hi - lo, 1e-6) * 255, 0, 255).astype(np.uint8)
     return out
 
@@ -180,31 +343,36 @@ def display_rgb(image: np.ndarray) -> np.ndarray:
 def strided_rgb(raster: Raster, step: int, offset: int = 0) -> np.ndarray:
     """Every ``step``-th pixel of the image from ``offset``, as display RGB, read a band of rows at a time
     (copies, so each band's full rows are freed at once)."""
+    return _strided(raster, step, offset)[0]
+
+
+def _strided(raster: Raster, step: int, offset: int) -> tuple[np.ndarray, np.ndarray | None]:
     height, width, _ = raster.shape
     band = step * max(1, 512 // step)
-    parts = [raster.read(y0, min(y0 + band, height), 0, width)[offset::step, offset::step].copy()
-             for y0 in range(0, height, band)]
-    return display_rgb(np.concatenate(parts))
+    parts, masks = [], []
+    for y0 in range(0, height, band):
+        y1 = min(y0 + band, height)
+        parts.append(raster.read(y0, y1, 0, width)[offset::step, offset::step].copy())
+        v = raster.valid(y0, y1, 0, width) if getattr(raster, "masked", False) else None
+        masks.append(None if v is None else v[offset::step, offset::step].copy())
+    valid = None
+    if any(m is not None for m in masks):
+        valid = np.concatenate([np.ones(p.shape[:2], bool) if m is None else m for p, m in zip(parts, masks,
+                                                                                               strict=True)])
+    return display_rgb(np.concatenate(parts), valid), valid
 
 
-def _preview(raster: Raster, labels: RowStore, step: int) -> tuple[np.ndarray, np.ndarray]:
-    """Every ``step``-th pixel (from step // 2, so each sample sits mid-cell) of the image, as display RGB, and
-    of the label map."""
+def _preview(raster: Raster, labels: RowStore, valid: RowStore | None, step: int,
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Every ``step``-th pixel (from step // 2, so each sample sits mid-cell) of the image, as display RGB, of
+    the label map, and of the validity (None: all valid)."""
     off = step // 2
     band = step * max(1, 512 // step)
-    lab = [np.array(labels.rows(y0, min(y0 + band, labels.shape[0]), write=False)[off::step, off::step])
-           for y0 in range(0, labels.shape[0], band)]
-    return strided_rgb(raster, step, off), np.concatenate(lab)
 
+    def strided(store: RowStore) -> np.ndarray:
+        return np.concatenate([np.array(store.rows(y0, min(y0 + band, store.shape[0]), write=False)[off::step,
+                                                                                                   off::step])
+                               for y0 in range(0, store.shape[0], band)])
 
-def _pixel_area(pixel_size: float | tuple[float, float] | None, geo: GeoTags | None) -> float | None:
-    """Pixel area in m²: from the option (side, or (width, height)) or else from the GeoTIFF's pixel scale."""
-    if pixel_size is not None:
-        sx, sy = (pixel_size, pixel_size) if isinstance(pixel_size, (int, float)) else pixel_size
-        return float(sx) * float(sy)
-    size = geo.pixel_size_m() if geo is not None else None
-    return size[0] * size[1] if size else None
-
-
-def _area_source(pixel_size: object, area: float | None) -> str | None:
-    return None if area is None else ("pixel-size option" if pixel_size is not None else "GeoTIFF pixel scale")
+    rgb, _ = _strided(raster, step, off)
+    return rgb, strided(labels), None if valid is None else strided(valid) > 0

@@ -59,11 +59,11 @@ def gather(group: Group, value: torch.Tensor) -> list[torch.Tensor]:
     return out
 
 
-def all_sum(group: Group, values: torch.Tensor) -> torch.Tensor:
-    """Element-wise sum over all processes (float64 so pixel counts stay exact)."""
+def all_sum(group: Group, values: torch.Tensor, op: str = "sum") -> torch.Tensor:
+    """Element-wise sum (or ``op="max"``: maximum) over all processes (float64 so pixel counts stay exact)."""
     values = values.detach().to(torch.float64).clone()
     if group.world > 1:
-        dist.all_reduce(values, op=dist.ReduceOp.SUM)
+        dist.all_reduce(values, op=dist.ReduceOp.MAX if op == "max" else dist.ReduceOp.SUM)
     return values
 
 

@@ -37,7 +37,7 @@ from fcnkit.assessment import (
 )
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import SEGMENT_MAX_PIXELS, TIFF_SUFFIXES, ArrayRaster, Raster, open_raster
+from fcnkit.data.raster import SEGMENT_MAX_PIXELS, TIFF_SUFFIXES, Raster, open_raster
 from fcnkit.errors import DataError
 
 SAMPLE_FIELDS = ("point_id", "row", "col", "x", "y", "map_id", "map_class", "reference")
@@ -106,16 +106,8 @@ def _open_labels(path: str | Path, max_pixels: int | None) -> Raster:
     suffix = path.suffix.lower()
     if suffix in (".jpg", ".jpeg"):
         raise DataError(f"{path}: a label map must be lossless (GeoTIFF/TIFF or PNG), not JPEG")
-    if suffix == ".png":  # palette PNGs (as segment writes) hold the ids as indices; keep them, not colours
-        from PIL import Image
-
-        try:
-            with Image.open(path) as im:
-                if im.mode == "P" and (max_pixels is None or im.width * im.height <= max_pixels):
-                    return ArrayRaster(np.asarray(im), path=path)
-        except Exception:  # any other case: the image reader below says what is wrong
-            pass
-    raster = open_raster(path, max_pixels)
+    raster = open_raster(path, max_pixels, indices=True)  # palette maps (as segment writes) keep their ids
+    raster.fill = [IGNORE]  # nodata pixels (the file's nodata value or mask) read as unlabelled, never as a class
     kind = np.dtype(raster.dtype).kind
     if raster.shape[2] != 1 or kind not in "ui":
         raster.close()
@@ -174,7 +166,7 @@ class _Strata:
 
 def _strata(path: Path, counts: np.ndarray, classes: ClassTable | None, nodata: float | None) -> _Strata:
     skip = {int(nodata)} if nodata is not None and float(nodata).is_integer() else set()
-    skip.add(classes.ignore if classes is not None else IGNORE)
+    skip |= {IGNORE, classes.ignore if classes is not None else IGNORE}
     present = [int(v) for v in np.flatnonzero(counts) if int(v) not in skip]
     if classes is None:
         if not present:

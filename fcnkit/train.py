@@ -19,7 +19,7 @@ import signal
 import tempfile
 import threading
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -34,8 +34,8 @@ from tqdm import tqdm
 from fcnkit import parallel, runstate
 from fcnkit.config import TrainConfig, config_from_dict
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, band_stats, find_samples
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, read_image, read_mask
+from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
+from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.patches import PatchDataset
 from fcnkit.errors import ConfigError, DataError
 from fcnkit.losses import median_frequency_weights, pixel_cross_entropy, segmentation_loss
@@ -54,7 +54,7 @@ class TrainResult:
     model_path: Path
     epochs: int  # epochs completed
     best_epoch: int
-    best_miou: float  # NaN when there is no validation split
+    best_mean_iou: float  # NaN when there is no validation split
     stopped_early: bool
     history: list[dict[str, Any]]
 
@@ -65,13 +65,14 @@ class TrainingInterrupted(KeyboardInterrupt):
 
 def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None = None, *,
           out_dir: str | Path | None = None, resume: bool = False, progress: bool = True,
-          max_pixels: int | None = None, **settings: Any) -> TrainResult:
+          max_pixels: int | None = None, note: Callable[[str], None] | None = None, **settings: Any) -> TrainResult:
     """Train ``model`` on a dataset folder ``data``, or on image arrays ``data`` (H×W×B) and ``masks`` (H×W class
     ids), writing the run to ``out_dir`` (a temporary folder, removed afterwards, when None). ``settings``
     override the model config's [train] table. The model's net is built first when the data has to give its
     band and class counts; its normalisation is measured on the training images unless it has one already
     (a loaded model being fine-tuned keeps its own). The model ends holding the weights of its best epoch.
-    Images and masks above ``max_pixels`` pixels are refused (default 2^27)."""
+    Images and masks above ``max_pixels`` pixels are refused (default 2^27). ``note`` receives one-line remarks
+    on the data (nodata pixels met)."""
     t = _settings(model, settings)
     group, threads = parallel.start(), torch.get_num_threads()
     temporary = out_dir is None
@@ -80,11 +81,12 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
         if t.threads:
             torch.set_num_threads(t.threads)
         run = _prepare(model, t, data, masks, run_dir, resume, group,
-                       DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels)
+                       DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels, note)
         with _StopRequest() as stop:
             result = _loop(run, stop, progress)
         model.net.load_state_dict(run.best_state)
         model.eval()
+        _calibrate(run)
         return result
     finally:
         torch.set_num_threads(threads)
@@ -126,15 +128,21 @@ class _Run:
 
 def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarray],
              masks: Sequence[np.ndarray] | None, run_dir: Path, resume: bool, group: parallel.Group,
-             max_pixels: int | None) -> _Run:
+             max_pixels: int | None, note: Callable[[str], None] | None = None) -> _Run:
     torch.manual_seed(t.seed)
     np.random.seed(t.seed)
     random.seed(t.seed)
-    images, labels, classes, keys, data_id = _data(data, masks, model, max_pixels)
+    notes: list[str] = []
+    images, labels, classes, keys, data_id = _data(data, masks, model, max_pixels, notes)
+    if group.main and note is not None:
+        for text in notes:
+            note(text)
     if not model.built:
         model._make_net(images[0].shape[2], classes.num_classes)
     if model.path is not None:  # fine-tuning a model file: the run records where it started
         model.extra = {**model.extra, "init": str(model.path)}
+    trained_on = str(Path(data).resolve()) if isinstance(data, (str, Path)) else f"{len(images)} image arrays"
+    model.extra = {**model.extra, "trained_on": trained_on}
     _check_fits(model, images, classes)
     _check_memory(model, t)
     if group.main:
@@ -166,7 +174,7 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
     else:
         opt = torch.optim.SGD(model.parameters(), lr=t.lr, momentum=t.momentum, weight_decay=t.weight_decay)
     p = {"epoch": 0, "batch": 0, "step": 0, "seconds": 0.0, "epoch_seconds": 0.0, "loss_sum": 0.0,
-         "loss_batches": 0, "pixels": 0, "best_miou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
+         "loss_batches": 0, "pixels": 0, "best_mean_iou": -math.inf, "best_epoch": 0, "bad_epochs": 0,
          "stopped_early": False, "history": []}
     best_state = _copy_state(model)
     if state is not None:
@@ -201,14 +209,15 @@ def split_indices(n: int, val_fraction: float, seed: int) -> tuple[list[int], li
 
 
 def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None, model: Model,
-          max_pixels: int | None) -> tuple[list[np.ndarray], list[np.ndarray], ClassTable, list[str], str]:
+          max_pixels: int | None, notes: list[str]) -> tuple[list[np.ndarray], list[np.ndarray], ClassTable,
+                                                             list[str], str]:
     """Images, masks, class table, each image's name (file stem, or index) and an identity of the data (what a
-    resume point must find again)."""
+    resume point must find again); one-line remarks on the data go to ``notes``."""
     if isinstance(data, (str, Path)):
         if masks is not None:
             raise ConfigError("masks: give them only with image arrays (a dataset folder holds its own masks/)")
         samples, classes = find_samples(data)
-        images, labels = _read(samples, classes, max_pixels, model.bands if model.built else None)
+        images, labels = _read(samples, classes, max_pixels, model.bands if model.built else None, notes)
         ident = ",".join(f"{s.stem}:{s.image.stat().st_size}:{s.mask.stat().st_size}" for s in samples)
         return images, labels, classes, [s.stem for s in samples], f"{Path(data).resolve()}|{ident}"
     if masks is None or len(masks) != len(data) or not len(data):
@@ -279,7 +288,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            px_s=f"{p['pixels'] * g.world / (time.perf_counter() - tic):.3g}")
+                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
@@ -288,7 +297,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
         _end_epoch(run, lr, time.perf_counter() - tic)
         if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
             _interrupt(run)
-    best = p["best_miou"] if p["best_miou"] > -math.inf else math.nan
+    best = p["best_mean_iou"] if p["best_mean_iou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
                        p["stopped_early"], p["history"])
 
@@ -306,16 +315,16 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     loss_sum, batches, pixels, ce, norm = sums.tolist()
     row = {"epoch": p["epoch"] + 1, "seconds": round(p["seconds"] + train_seconds + time.perf_counter() - tic, 2),
            "lr": lr, "train_loss": loss_sum / max(batches, 1), "val_loss": ce / norm if norm > 0 else math.nan,
-           "val_pixel_acc": scores["pixel_accuracy"], "val_mean_acc": scores["mean_accuracy"],
-           "val_miou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
-           "pixels_per_s": round(pixels / max(train_seconds, 1e-9))}
+           "val_pixel_accuracy": scores["pixel_accuracy"], "val_mean_accuracy": scores["mean_accuracy"],
+           "val_mean_iou": scores["mean_iou"], "val_fw_iou": scores["fw_iou"],
+           "pixels_per_second": round(pixels / max(train_seconds, 1e-9))}
     names = [name.replace(" ", "_") for name in model.classes.names]
     row.update({f"iou_{name}": v for name, v in zip(names, scores["iou"], strict=True)})
     miou = scores["mean_iou"] if not math.isnan(scores["mean_iou"]) else -math.inf
     p.update(epoch=p["epoch"] + 1, batch=0, seconds=row["seconds"], epoch_seconds=0.0, loss_sum=0.0,
              loss_batches=0, pixels=0, history=[*p["history"], row])
-    if p["best_epoch"] == 0 or miou > p["best_miou"] or not run.has_val:  # without validation: keep the latest
-        p.update(best_miou=miou, best_epoch=p["epoch"], bad_epochs=0)
+    if p["best_epoch"] == 0 or miou > p["best_mean_iou"] or not run.has_val:  # without validation: keep the latest
+        p.update(best_mean_iou=miou, best_epoch=p["epoch"], bad_epochs=0)
         run.best_state = _copy_state(model)
         model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:
@@ -335,58 +344,136 @@ def _blocks(n: int, block: int, margin: int) -> Iterator[tuple[int, int, int, in
         yield max(start - margin, 0), min(stop + margin, n), start, stop
 
 
-def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
-             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
-             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
-    """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
-    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights).
-
-    Images up to ``block`` × ``block`` pixels go through the model in one piece. Larger ones are cut into
-    blocks, each run with ``margin`` pixels of context on every side and cropped back, so memory stays bounded;
-    with the net's tile margin as ``margin`` the blocks give the whole-image result."""
-    k, ignore = model.num_classes, model.classes.ignore
+def _scored_blocks(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *, margin: int = 0,
+                   block: int = 1024, channels_last: bool = False) -> Iterator[tuple[torch.Tensor, torch.Tensor]]:
+    """(logits 1×C×h×w, labels 1×h×w) of every image, in blocks: images up to ``block`` × ``block`` pixels go
+    through the model in one piece; larger ones are cut into blocks, each run with ``margin`` pixels of context
+    on every side and cropped back, so memory stays bounded. With the net's tile margin as ``margin`` the
+    blocks give the whole-image result."""
     factor = model.plan.factor
     block = max(factor, block // factor * factor)
     margin = -(-margin // factor) * factor  # block and read origins stay on the net's pooling grid
     fmt = torch.channels_last if channels_last else torch.contiguous_format
-    cm = np.zeros((k, k), np.int64)
-    ce = norm = 0.0
     was_training = model.training
     model.eval()
-    with torch.inference_mode():
-        for image, mask in zip(images, masks, strict=True):
-            h, w = mask.shape
-            for y0, y1, ky0, ky1 in _blocks(h, block, margin):
-                for x0, x1, kx0, kx1 in _blocks(w, block, margin):
-                    x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
-                    logits = model(x.unsqueeze(0).contiguous(memory_format=fmt))
-                    logits = logits[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0]
-                    target = torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0)
-                    total, n = pixel_cross_entropy(logits, target, weight, ignore)
-                    ce, norm = ce + total.item(), norm + n.item()
-                    cm += confusion_matrix(target, logits.argmax(1), k, ignore)
-    model.train(was_training)
+    try:
+        with torch.inference_mode():
+            for image, mask in zip(images, masks, strict=True):
+                h, w = mask.shape
+                for y0, y1, ky0, ky1 in _blocks(h, block, margin):
+                    for x0, x1, kx0, kx1 in _blocks(w, block, margin):
+                        x = torch.from_numpy(np.ascontiguousarray(image[y0:y1, x0:x1])).permute(2, 0, 1).float()
+                        logits = model(x.unsqueeze(0).contiguous(memory_format=fmt))
+                        yield (logits[..., ky0 - y0:ky1 - y0, kx0 - x0:kx1 - x0],
+                               torch.from_numpy(mask[ky0:ky1, kx0:kx1].astype(np.int64)).unsqueeze(0))
+    finally:
+        model.train(was_training)
+
+
+def validate(model: Model, images: Sequence[np.ndarray], masks: Sequence[np.ndarray], *,
+             weight: torch.Tensor | None = None, margin: int = 0, block: int = 1024,
+             channels_last: bool = False) -> tuple[np.ndarray, float, float]:
+    """Confusion matrix (rows = truth) of ``model`` over H×W×B images and H×W masks, plus the summed
+    cross-entropy of the labelled pixels and its normaliser (their count, or their summed class weights)."""
+    k, ignore = model.num_classes, model.classes.ignore
+    cm = np.zeros((k, k), np.int64)
+    ce = norm = 0.0
+    for logits, target in _scored_blocks(model, images, masks, margin=margin, block=block,
+                                         channels_last=channels_last):
+        total, n = pixel_cross_entropy(logits, target, weight, ignore)
+        ce, norm = ce + total.item(), norm + n.item()
+        cm += confusion_matrix(target, logits.argmax(1), k, ignore)
     return cm, ce, norm
 
 
+CALIBRATION_PIXELS = 200_000  # labelled validation pixels each process keeps for fitting the temperature
+
+
+def _calibrate(run: _Run) -> None:
+    """Fit the temperature of softmax(logits / T) on the validation split (Guo et al. 2017), once per run:
+    the best model's logits on a seeded sample of labelled validation pixels, pooled over every process. The
+    fit, and the reliability of the confidences before and after, go into the model and its file."""
+    from fcnkit.calibration import fit_temperature, reliability, scaled_softmax
+
+    model, t, p, g = run.model, run.t, run.p, run.group
+    if "calibration" not in p:
+        if not (t.calibrate and run.has_val):
+            reason = "train.calibrate is false" if not t.calibrate else "no validation split"
+            p["calibration"] = {"temperature": 1.0, "fitted": False, "note": f"not calibrated: {reason}"}
+        elif not len((pixels := _validation_pixels(run))[1]):
+            p["calibration"] = {"temperature": 1.0, "fitted": False,
+                                "note": "not calibrated: no labelled validation pixels"}
+        else:
+            logits, labels = pixels
+            fit = fit_temperature(logits, labels, axis=1, ignore=None, max_pixels=len(labels), seed=t.seed)
+            before = reliability(scaled_softmax(logits, 1.0, axis=1), labels, axis=1, ignore=None)
+            after = reliability(scaled_softmax(logits, fit.temperature, axis=1), labels, axis=1, ignore=None)
+            p["calibration"] = {"temperature": fit.temperature, "fitted": True, "pixels": fit.pixels,
+                                "nll_before": fit.nll_before, "nll_after": fit.nll_after, "at_bound": fit.at_bound,
+                                "ece_before": before.ece, "ece_after": after.ece,
+                                "reliability_before": before.to_dict(), "reliability_after": after.to_dict(),
+                                "method": "temperature scaling on the validation split (Guo et al. 2017); "
+                                          "ECE over 15 equal-width confidence bins"}
+        model.temperature = p["calibration"]["temperature"]
+        model.extra = {**model.extra, "calibration": p["calibration"]}
+        if g.main and (run.run_dir / runstate.MODEL_FILE).exists():
+            model.save(run.run_dir / runstate.MODEL_FILE)
+        _save_resume(run)
+    else:  # a finished run resumed: the fit it recorded
+        model.temperature = p["calibration"]["temperature"]
+        model.extra = {**model.extra, "calibration": p["calibration"]}
+
+
+def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
+    """The best model's logits (N×C) and labels (N) at up to CALIBRATION_PIXELS labelled validation pixels per
+    process, a seeded random choice, pooled over every process (ignored pixels labelled −1)."""
+    model, g = run.model, run.group
+    ignore = model.classes.ignore
+    labelled = sum(int((m != ignore).sum()) for m in run.val_masks)
+    keep = min(1.0, CALIBRATION_PIXELS / max(labelled, 1))
+    rng = np.random.default_rng(run.t.seed + g.rank)
+    parts_x, parts_y = [], []
+    for logits, target in _scored_blocks(model, run.val_images, run.val_masks, margin=run.margin):
+        z = logits[0].flatten(1).T.numpy()
+        y = target[0].flatten().numpy()
+        chosen = (y != ignore) & (rng.random(y.shape) < keep)
+        parts_x.append(z[chosen])
+        parts_y.append(y[chosen])
+    k = model.num_classes
+    x = np.concatenate(parts_x) if parts_x else np.zeros((0, k), np.float32)
+    y = np.concatenate(parts_y) if parts_y else np.zeros(0, np.int64)
+    if g.world > 1:  # equal shapes for the exchange: pad with ignored rows, dropped afterwards
+        size = int(parallel.all_sum(g, torch.tensor([float(len(y))]), op="max").item())
+        x = np.concatenate([x, np.zeros((size - len(y), k), np.float32)])
+        y = np.concatenate([y, np.full(size - len(y), -1, np.int64)])
+        x = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(x))])
+        y = np.concatenate([v.numpy() for v in parallel.gather(g, torch.from_numpy(y))])
+        x, y = x[y >= 0], y[y >= 0]
+    return x.astype(np.float32), y
+
+
 def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,
-          bands: int | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
+          bands: int | None = None, notes: list[str] | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Every image and mask of a dataset folder; each image must have ``bands`` bands (the net's, when it is
-    built) and as many as the first."""
+    built) and as many as the first. A line about nodata pixels met goes to ``notes``."""
     images, masks = [], []
+    notes = [] if notes is None else notes
+    nodata = met = 0
     for s in samples:
-        image = read_image(s.image, max_pixels)
+        sample = read_sample(s, classes, max_pixels)  # masks or vector labels; nodata pixels unlabelled
+        image = sample.image
         if bands is not None and image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
         if images and image.shape[2] != images[0].shape[2]:
             raise DataError(f"{s.image}: has {image.shape[2]} bands but {samples[0].image.name} has "
                             f"{images[0].shape[2]} (every image needs the same bands)")
-        mask = read_mask(s.mask, classes, max_pixels)
-        if mask.shape != image.shape[:2]:
-            raise DataError(f"{s.mask}: mask is {mask.shape[1]}x{mask.shape[0]} but its image {s.image.name} is "
-                            f"{image.shape[1]}x{image.shape[0]} (expected the same size)")
         images.append(image)
-        masks.append(mask)
+        masks.append(sample.mask)
+        nodata += sample.nodata_pixels
+        met += sample.nodata_pixels > 0
+    if nodata:
+        notes.append(f"nodata: {nodata:,} pixels in {met} of {len(samples)} images are unlabelled and left out of "
+                     "the band statistics")
     return images, masks
 
 

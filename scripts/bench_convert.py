@@ -133,7 +133,7 @@ def main() -> None:
     tuned = model.net
     print(f"after {args.epochs} epochs of fine-tuning ({time.perf_counter() - t:.0f} s): test-scene mIoU "
           f"{miou(tuned, test_images, test_masks, k, mean, std):.3f} (validation split of the run: "
-          f"{result.best_miou:.3f})")
+          f"{result.best_mean_iou:.3f})")
 
 
 if __name__ == "__main__":

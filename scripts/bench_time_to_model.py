@@ -64,10 +64,10 @@ def main() -> None:
     total = time.perf_counter() - start
     print(f"\n{'epoch':>5}{'seconds':>9}{'val mIoU':>10}{'train loss':>12}{'Mpx/s':>8}")
     for r in rows:
-        print(f"{r['epoch']:>5}{float(r['seconds']) + rendered:>9.1f}{float(r['val_miou']):>10.4f}"
-              f"{float(r['train_loss']):>12.4f}{float(r['pixels_per_s']) / 1e6:>8.3f}")
-    reached = next((float(r["seconds"]) + rendered for r in rows if float(r["val_miou"]) >= 0.85), None)
-    print(f"\nbest val mIoU {result.best_miou:.4f} (epoch {result.best_epoch}); held-out test mIoU "
+        print(f"{r['epoch']:>5}{float(r['seconds']) + rendered:>9.1f}{float(r['val_mean_iou']):>10.4f}"
+              f"{float(r['train_loss']):>12.4f}{float(r['pixels_per_second']) / 1e6:>8.3f}")
+    reached = next((float(r["seconds"]) + rendered for r in rows if float(r["val_mean_iou"]) >= 0.85), None)
+    print(f"\nbest val mIoU {result.best_mean_iou:.4f} (epoch {result.best_epoch}); held-out test mIoU "
           f"{test['mean_iou']:.4f}, pixel accuracy {test['pixel_accuracy']:.4f}")
     print("per-class test IoU: " + ", ".join(f"{n} {v:.3f}" for n, v in zip(classes.names, test["iou"], strict=True)))
     print(f"val mIoU >= 0.85 first reached at {reached:.1f} s" if reached else "val mIoU 0.85 not reached")

@@ -586,8 +586,14 @@ _image_case("image: complex-valued TIFF", lambda d: _replace_image(d, "s0.tif", 
     p, scene(0)[0].astype(np.complex64))), "s0.tif", "pixel type")
 _image_case("image: 16-bit colour PNG", lambda d: _replace_image(d, "s0.png", write_rgb16_png), "s0.png",
            "16-bit colour PNG")
-_image_case("image: 4 bands for a 3-band net", lambda d: write_png(d / "images" / "s0.png", np.dstack(
-    [scene(0)[0], np.full((24, 24), 255, np.uint8)])), "s0.png", "bands")
+_image_case("image: 4 bands for a 3-band net", lambda d: _replace_image(d, "s0.tif", lambda p: write_tiff(
+    p, np.dstack([scene(0)[0], np.full((24, 24), 255, np.uint8)]), photometric="minisblack",
+    planarconfig="contig")), "s0.tif", "bands")
+_image_case("image: CMYK JPEG", lambda d: _replace_image(d, "s0.jpg", write_cmyk_jpeg), "s0.jpg", "CMYK")
+_image_case("image: one band per TIFF page", lambda d: _replace_image(d, "s0.tif", write_pages), "s0.tif",
+            "holds 3 images")
+_data_case("vector labels: a class not in classes.toml", lambda d: _vector_labels(d, "lichen"), "labels.gpkg",
+           "lichen")
 _image_case("image: header claims 100 000 × 100 000 pixels", lambda d: png_bomb_header(
     d / "images" / "s0.png", 100_000, 100_000), "s0.png", "limit")
 _data_case("mask: another size", lambda d: write_png(d / "masks" / "s0.png", scene(0)[1][:20, :22]),
@@ -611,6 +617,33 @@ def _with(array: np.ndarray, value: float) -> np.ndarray:
     array = array.copy()
     array[3, 5, 1] = value
     return array
+
+
+def write_cmyk_jpeg(path: Path) -> Path:
+    from PIL import Image
+
+    Image.fromarray(scene(0)[0]).convert("CMYK").save(path, quality=90)
+    return path
+
+
+def write_pages(path: Path) -> Path:
+    """One image band per TIFF page (three pages)."""
+    for band in np.moveaxis(scene(0)[0], 2, 0):
+        write_tiff(path, band, append=True, photometric="minisblack")
+    return path
+
+
+def _vector_labels(data: Path, name: str) -> None:
+    """Replace masks/ by a GeoPackage whose one feature has class ``name``."""
+    import pyogrio.raw
+    import shapely
+
+    shutil.rmtree(data / "masks")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # pyogrio warns that the layer has no CRS: as meant here
+        pyogrio.raw.write(data / "labels.gpkg", shapely.to_wkb(np.array([shapely.box(0, 0, 10, 10)], dtype=object)),
+                          field_data=[np.array([name], dtype=object)], fields=["class"], geometry_type="Polygon",
+                          driver="GPKG")
 
 
 def write_jpeg(path: Path) -> Path:
@@ -1044,6 +1077,11 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("segment: negative --pixel-size", "segment", "pixel_size", "positive")
 def _(ws: Workspace, folder: Path) -> Call:
     return _segment(ws, folder, extra=("--pixel-size", -0.5))
+
+
+@case("segment: --min-area without known pixel areas", "segment", "min_area", "pixel areas")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _segment(ws, folder, extra=("--polygons", "--min-area", 5))
 
 
 @case("segment: a folder without images", "segment", "empty", "no image")

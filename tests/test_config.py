@@ -137,10 +137,15 @@ def test_replace_section_revalidates() -> None:
         replace_section(cfg, "modl", classes=7)
 
 
-def test_readme_documents_every_model_key() -> None:
-    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+def test_docs_document_every_config_key() -> None:
+    from fcnkit.config import TrainConfig
+
+    config_doc = (ROOT / "docs" / "config.md").read_text(encoding="utf-8")
     for name in ModelConfig.__dataclass_fields__:
-        assert f"`model.{name}`" in readme, name
+        assert f"`model.{name}`" in config_doc, name
+    training_doc = (ROOT / "docs" / "training.md").read_text(encoding="utf-8")
+    for name in TrainConfig.__dataclass_fields__:
+        assert f"`{name}`" in training_doc, name
 
 
 # --- the command line ------------------------------------------------------------------------------------

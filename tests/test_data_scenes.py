@@ -6,7 +6,10 @@ import tracemalloc
 
 import numpy as np
 import pytest
+import rasterio
 import tifffile
+from hypothesis import given
+from hypothesis import strategies as st
 from sklearn.metrics import balanced_accuracy_score
 from sklearn.neighbors import KNeighborsClassifier
 from sklearn.tree import DecisionTreeClassifier
@@ -17,11 +20,14 @@ from fcnkit.data.classes import load_classes
 from fcnkit.data.dataset import check_dataset, find_samples
 from fcnkit.data.imageio import read_image, read_mask
 from fcnkit.data.scenes import (
+    GRID_NAME,
+    GRID_ORIGIN,
     ROOF,
     SCENE_CLASSES,
     TRACK,
     VEGETATION,
     WATER,
+    feather_weights,
     make_scenes,
     render_scene,
     write_mosaic,
@@ -125,30 +131,64 @@ def test_nir_is_bright_on_vegetation_and_dark_on_water():
     assert checked >= 3
 
 
-def test_mosaic_blocks_tiles_and_geotiff_tags(tmp_path):
+def test_mosaic_blocks_tiles_and_georeferencing(tmp_path):
     path, mask = tmp_path / "m.tif", tmp_path / "m_labels.tif"
     write_mosaic(path, (600, 520), 3, block=256, distinct=None, mask_path=mask, pixel_size=0.25)
-    with tifffile.TiffFile(path) as tif:
+    with tifffile.TiffFile(path) as tif:  # tifffile: a reader independent of GDAL, which wrote the file
         page = tif.pages[0]
-        assert tif.is_bigtiff and page.is_tiled and (page.tilelength, page.tilewidth) == (256, 256)
+        assert page.is_tiled and (page.tilelength, page.tilewidth) == (256, 256)
         image = page.asarray()
-        # GeoTIFF tags (numbers from the GeoTIFF 1.0 specification, recalled from memory); tifffile's own GeoTIFF
-        # decoder is the reference that the key directory is well formed.
+        # GeoTIFF tags (numbers from the GeoTIFF 1.0 specification, recalled from memory): pixel scale, then the
+        # tie point of pixel corner (0, 0) at the grid origin; tifffile's GeoTIFF decoder reads the key directory.
         assert page.tags[33550].value == (0.25, 0.25, 0.0)
-        assert page.tags[33922].value[:3] == (0.0, 0.0, 0.0)
-        assert 34735 in page.tags
+        assert page.tags[33922].value == (0.0, 0.0, 0.0, *GRID_ORIGIN, 0.0)
         geo = tif.geotiff_metadata
-        assert int(geo["GTModelTypeGeoKey"]) == 1 and int(geo["ProjLinearUnitsGeoKey"]) == 9001
+        assert geo["GTCitationGeoKey"] == GRID_NAME and int(geo["ProjLinearUnitsGeoKey"]) == 9001
+        assert int(geo["GTRasterTypeGeoKey"]) == 1  # pixel is area
+    with rasterio.open(mask) as ds:  # the label map: class colours and names, on the same grid
+        assert ds.compression.value == "DEFLATE" and ds.transform == rasterio.open(path).transform
+        assert [ds.colormap(1)[i][:3] for i in range(5)] == SCENE_CLASSES.colors
+        assert ds.tags(1)["CLASS_3"] == "roof" and ds.crs.to_wkt().startswith('LOCAL_CS["' + GRID_NAME)
     assert image.shape == (600, 520, 4)
     labels = read_mask(mask, SCENE_CLASSES)
-    with tifffile.TiffFile(mask) as tif:
-        assert tif.pages[0].compression == 8 and tif.pages[0].tags[33550].value == (0.25, 0.25, 0.0)
+    m = 24  # the default feather: scenes rendered m px larger on every side, cross-faded over 2m at seams
     for by, bx in ((0, 0), (1, 1), (2, 2)):  # block (i, j) is the scene of (seed, i, j), edge blocks cropped
         y, x = by * 256, bx * 256
-        img, lab = render_scene((min(256, 600 - y), min(256, 520 - x)), np.random.default_rng([3, by, bx]))
-        np.testing.assert_array_equal(image[y:y + 256, x:x + 256], img)
-        np.testing.assert_array_equal(labels[y:y + 256, x:x + 256], lab)
+        bh, bw = min(256, 600 - y), min(256, 520 - x)
+        img, lab = render_scene((bh + 2 * m, bw + 2 * m), np.random.default_rng([3, by, bx]))
+        inner = (slice(m, bh - m), slice(m, bw - m))  # beyond the feathered seams: the scene itself
+        np.testing.assert_array_equal(image[y:y + bh, x:x + bw][inner], img[m:m + bh, m:m + bw][inner])
+        np.testing.assert_array_equal(labels[y:y + bh, x:x + bw], lab[m:m + bh, m:m + bw])  # hard seamlines
     assert not list(tmp_path.glob(".*partial*"))
+
+
+@given(length=st.integers(48, 400), cut=st.data(), margin=st.integers(0, 20))
+def test_feather_weights_are_a_partition_of_unity(length, cut, margin):
+    """Across any seam, the two blocks' weights sum to 1 (so blending keeps brightness), ramp through 0.5 at the
+    seamline, and stay 1 inside each block and at the image's own borders."""
+    seam = cut.draw(st.integers(max(1, margin), max(1, length - max(margin, 1))))
+    left = np.zeros(length + 2 * margin)
+    right = np.zeros(length + 2 * margin)
+    left[margin:margin + seam + margin] = feather_weights(length, 0, seam, margin)[margin:]
+    right[seam:seam + length - seam + 2 * margin] = feather_weights(length, seam, length, margin)
+    total = (left + right)[margin:margin + length]
+    np.testing.assert_allclose(total, 1.0)
+    if margin:
+        np.testing.assert_allclose(left[margin + seam - 1] + left[margin + seam], 1.0)  # symmetric about it
+
+
+def test_feathered_seams_leave_no_hard_line(tmp_path):
+    """The jump between the columns either side of a seamline is no larger than between neighbouring columns
+    elsewhere in the image, unlike with hard seams (feather 0)."""
+    jumps = {}
+    for feather in (0, 24):
+        write_mosaic(tmp_path / f"f{feather}.tif", (256, 512), 4, block=256, distinct=None, geo=False,
+                     feather=feather)
+        with rasterio.open(tmp_path / f"f{feather}.tif") as ds:
+            a = ds.read().astype(np.float32).mean(axis=0)
+        steps = np.abs(np.diff(a, axis=1)).mean(axis=0)  # mean jump between each pair of neighbouring columns
+        jumps[feather] = steps[255] / np.median(steps)  # at the seam, against a typical pair of columns
+    assert jumps[24] < 2 < jumps[0], jumps
 
 
 def test_mosaic_memory_is_bounded(tmp_path):
@@ -164,9 +204,10 @@ def test_mosaic_memory_is_bounded(tmp_path):
     with tifffile.TiffFile(tmp_path / "big.tif") as tif:
         assert tif.series[0].shape == (side, side, 4) and 33550 not in tif.pages[0].tags
         corner = tif.pages[0].asarray()[:256, :256]
-    pool = [render_scene(256, np.random.default_rng([0, k]))[0] for k in range(4)]
-    variants = [np.rot90(p, t)[:, ::f] for p in pool for t in range(4) for f in (1, -1)]
-    assert any(np.array_equal(corner, v) for v in variants)  # each block is a pooled scene, flipped/turned
+    m = 24  # the default feather; the corner block's inside, away from its two seams, is a pooled scene
+    pool = [render_scene(256 + 2 * m, np.random.default_rng([0, k]))[0] for k in range(4)]
+    variants = [np.rot90(p, t)[:, ::f][m:256, m:256] for p in pool for t in range(4) for f in (1, -1)]
+    assert any(np.array_equal(corner[:256 - m, :256 - m], v[:256 - m, :256 - m]) for v in variants)
 
 
 def test_scribbled_masks_are_sparse_and_agree_with_the_dense_labels(tmp_path):

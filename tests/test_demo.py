@@ -26,6 +26,15 @@ def test_quick_demo_end_to_end(tmp_path):
     assert result.paths["report"].read_text().startswith("<!DOCTYPE html>")
     # the area table covers the whole mosaic
     assert sum(a["pixels"] for a in result.figures["areas"]) == QUICK.mosaic_size ** 2
+    # the GIS round trip: the maps are COGs on the mosaic's grid, the class polygons a GeoPackage on it too
+    import pyogrio
+    import rasterio
+
+    with rasterio.open(result.paths["mosaic"]) as src, rasterio.open(result.paths["map_labels"]) as ds:
+        assert (ds.crs, ds.transform) == (src.crs, src.transform)
+        assert ds.tags(ns="IMAGE_STRUCTURE")["LAYOUT"] == "COG" and ds.tags(1)["CLASS_1"] == "water"
+    info = pyogrio.read_info(result.paths["map_polygons"])
+    assert info["features"] > 0 and "Kessmoor" in info["crs"]
     assert "fcnkit demo finished in" in text and "pixel accuracy" in text
 
 

@@ -9,7 +9,14 @@ import numpy as np
 import pytest
 import torch
 from PIL import Image
-from sklearn.metrics import accuracy_score, balanced_accuracy_score, f1_score, jaccard_score, recall_score
+from sklearn.metrics import (
+    accuracy_score,
+    balanced_accuracy_score,
+    f1_score,
+    jaccard_score,
+    precision_score,
+    recall_score,
+)
 
 from fcnkit import Model, build_model
 from fcnkit.cli import main
@@ -52,20 +59,22 @@ def model_file(tmp_path):
     return path
 
 
-def _predictions(model_path, data_dir):
-    """Labels from the tiled path itself, so the check is on the arithmetic of the scores."""
+def _predictions(model_path, data_dir, with_confidence=False):
+    """Labels (and top-class probabilities) from the tiled path itself, so the check is on the arithmetic of
+    the scores."""
     from fcnkit.data.imageio import read_image, read_mask
 
     loaded = Model.load(model_path)
-    truth, pred = [], []
+    truth, pred, conf = [], [], []
     for i in range(len(SIZES)):
         image = read_image(data_dir / "images" / f"plot_{i}.png")
         probs = predict_scores(loaded, image, tile=64)
         truth.append(read_mask(data_dir / "masks" / f"plot_{i}.png", CLASSES).ravel())
         pred.append(probs.argmax(0).ravel())
-    t, p = np.concatenate(truth), np.concatenate(pred)
+        conf.append(probs.max(0).ravel())
+    t, p, c = np.concatenate(truth), np.concatenate(pred), np.concatenate(conf)
     keep = t != 255
-    return t[keep], p[keep]
+    return (t[keep], p[keep], c[keep]) if with_confidence else (t[keep], p[keep])
 
 
 def test_json_scores_equal_scikit_learn(tmp_path, model_file):
@@ -84,8 +93,18 @@ def test_json_scores_equal_scikit_learn(tmp_path, model_file):
                                                       abs=1e-12)
     assert saved["scores"]["iou"] == pytest.approx(list(jaccard_score(t, p, labels=labels, average=None)))
     assert saved["scores"]["dice"] == pytest.approx(list(f1_score(t, p, labels=labels, average=None)))
-    assert saved["scores"]["accuracy"] == pytest.approx(list(recall_score(t, p, labels=labels, average=None)))
+    assert saved["scores"]["recall"] == pytest.approx(list(recall_score(t, p, labels=labels, average=None)))
+    assert saved["scores"]["precision"] == pytest.approx(list(precision_score(t, p, labels=labels, average=None)))
+    assert saved["scores"]["predicted"] == np.bincount(p, minlength=3).tolist()
     assert np.array_equal(saved["confusion_matrix"], result.confusion)
+    # calibration here: ECE over 15 equal-width confidence bins, written out from Guo et al. 2017, eq. (3)
+    _, _, c = _predictions(model_file, data, with_confidence=True)
+    bins = np.clip(np.ceil(c * 15).astype(int) - 1, 0, 14)
+    ece = sum(abs((t[bins == m] == p[bins == m]).mean() - c[bins == m].mean()) * (bins == m).mean()
+              for m in range(15) if (bins == m).any())
+    assert saved["calibration"]["ece"] == pytest.approx(ece, abs=1e-4)  # float32 softmax in both
+    iv = saved["mean_iou_interval"]
+    assert iv["images"] == 3 and iv["low"] <= saved["scores"]["mean_iou"] <= iv["high"]
     assert sum(im["labelled_pixels"] for im in saved["images"]) == t.size == result.confusion.sum()
 
 
@@ -116,8 +135,9 @@ def test_report_and_cli(tmp_path, model_file, capsys):
         assert phrase in printed
     page = _Images()
     page.feed((tmp_path / "r.html").read_text())
-    # confusion matrix + IoU bars + training curves (metrics.csv beside the model) + 2 examples x 5 panels
-    assert len(page.srcs) == 3 + 2 * 5 and all(s.startswith("data:image/png;base64,") for s in page.srcs)
+    # confusion matrix + IoU bars + reliability diagram + training curves (metrics.csv beside the model)
+    # + 2 examples x 5 panels
+    assert len(page.srcs) == 4 + 2 * 5 and all(s.startswith("data:image/png;base64,") for s in page.srcs)
     assert json.loads(page.json)["scores"] == json.loads((tmp_path / "e.json").read_text())["scores"]
 
 

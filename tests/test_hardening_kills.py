@@ -115,7 +115,7 @@ def _state(run: Path) -> tuple[dict, dict, list]:
     """Last weights and optimiser state (resume point), the best model's tensors, the metric history without
     the wall-clock columns."""
     last = torch.load(run / "resume.pt", map_location="cpu", weights_only=True)
-    history = [{k: v for k, v in row.items() if k not in ("seconds", "pixels_per_s")}
+    history = [{k: v for k, v in row.items() if k not in ("seconds", "pixels_per_second")}
                for row in last["progress"]["history"]]
     return last["model"], load_file(str(run / "model.safetensors")), history
 

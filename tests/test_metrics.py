@@ -59,6 +59,12 @@ def test_against_scikit_learn(case):
     freq = np.bincount(t, minlength=k) / t.size
     assert s["fw_iou"] == pytest.approx(float(np.sum(freq[present] * jac)))
     assert s["support"] == np.bincount(t, minlength=k).tolist()
+    # precision per class (user's accuracy) = precision_score(average=None) on the classes predicted
+    predicted = sorted(set(p.tolist()))
+    np.testing.assert_allclose([s["precision"][c] for c in predicted],
+                               skm.precision_score(t, p, labels=predicted, average=None, zero_division=0))
+    assert all(math.isnan(s["precision"][c]) for c in range(k) if c not in predicted)
+    assert s["predicted"] == np.bincount(p, minlength=k).tolist()
 
 
 def test_hand_worked_example():

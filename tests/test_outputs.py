@@ -5,7 +5,6 @@ import io
 import math
 
 import numpy as np
-import pytest
 from scipy.stats import entropy
 
 from fcnkit.data.classes import ClassInfo, ClassTable
@@ -45,17 +44,16 @@ def test_to_byte_rounds_to_nearest_and_clips():
                                   [0, 0, 127, 255, 255, 0])  # round-half-to-even at 0.5/255 (numpy rint)
 
 
-def test_areas_are_pixel_count_times_pixel_area():
+def test_area_table_rows_and_csv_with_a_nodata_row():
     counts = np.array([300, 0, 700])
-    rows = area_rows(counts, CLASSES, 0.25)
+    rows = area_rows(counts, CLASSES, counts * 0.25)
     assert [r["pixels"] for r in rows] == [300, 0, 700]
-    assert [r["area_m2"] for r in rows] == [300 * 0.25, 0.0, 700 * 0.25]
-    assert sum(r["fraction"] for r in rows) == pytest.approx(1.0)
+    assert [r["fraction"] for r in rows] == [0.3, 0.0, 0.7]  # of the valid pixels
     assert [r["area_m2"] for r in area_rows(counts, CLASSES, None)] == [None, None, None]
-    parsed = list(csv.DictReader(io.StringIO(areas_csv(rows))))  # read back with the standard csv module
-    assert [p["name"] for p in parsed] == CLASSES.names
-    assert [float(p["area_m2"]) for p in parsed] == [75.0, 0.0, 175.0]
-    assert [int(p["pixels"]) for p in parsed] == [300, 0, 700]
+    parsed = list(csv.DictReader(io.StringIO(areas_csv(rows, (255, 42)))))  # read back with the csv module
+    assert [p["name"] for p in parsed] == [*CLASSES.names, "nodata"]
+    assert [p["area_m2"] for p in parsed] == ["75.0000", "0.0000", "175.0000", ""]
+    assert [int(p["pixels"]) for p in parsed] == [300, 0, 700, 42] and parsed[-1]["id"] == "255"
 
 
 def test_overlay_is_alpha_blend_of_class_colours():
@@ -75,15 +73,15 @@ def test_preview_keeps_only_its_samples_in_memory():
     from fcnkit.outputs import _preview
 
     class Fresh:  # a raster whose reads allocate, like a TIFF decoder
-        shape, path, geo = (8192, 1024, 4), None, None
+        shape, path, geo, masked = (8192, 1024, 4), None, None, False
 
         def read(self, y0, y1, x0, x1):
             return np.ones((y1 - y0, x1 - x0, 4), np.uint8)
 
     labels = RowStore((8192, 1024), np.uint8)
     tracemalloc.start()
-    rgb, small = _preview(Fresh(), labels, 4)
+    rgb, small, valid = _preview(Fresh(), labels, None, 4)
     peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
-    assert rgb.shape == (2048, 256, 3) and small.shape == (2048, 256)
+    assert rgb.shape == (2048, 256, 3) and small.shape == (2048, 256) and valid is None
     assert peak < 20 * 2**20, peak  # one band (2 MB), the samples and display temporaries, not the 32 MB image

@@ -170,8 +170,8 @@ def test_bands_bound_memory_and_do_not_change_the_sample(tmp_path, monkeypatch):
     reads: list[int] = []
     real_open = sampling.open_raster
 
-    def spy(path, max_pixels):
-        raster = real_open(path, max_pixels)
+    def spy(path, max_pixels, **options):
+        raster = real_open(path, max_pixels, **options)
         read = raster.read
 
         def recorded(y0, y1, x0, x1):

@@ -58,9 +58,12 @@ def test_sample_fill_assess(mosaic, tmp_path, capsys):
     assert len(list((tmp_path / "chips").glob("*.png"))) == len(points) > 0
     fill_csv(tmp_path / "s.csv", tmp_path / "filled.csv", truth)
     code = main(["assess", str(tmp_path / "filled.csv"), "--labels", str(d / "labels.tif"), "--classes",
-                 str(d / "classes.toml"), "--json", str(tmp_path / "a.json"), "--csv", str(tmp_path / "a.csv")])
+                 str(d / "classes.toml"), "--json", str(tmp_path / "a.json"), "--csv", str(tmp_path / "a.csv"),
+                 "--report", str(tmp_path / "a.html")])
     out = capsys.readouterr().out
     assert code == 0 and "overall accuracy" in out and "qualified people" in out
+    page = (tmp_path / "a.html").read_text(encoding="utf-8")
+    assert "error-adjusted area" in page and "open ground" in page and 'id="fcnkit-metrics"' in page
     doc = json.loads((tmp_path / "a.json").read_text())
     api = assess_sample(tmp_path / "filled.csv", labels=d / "labels.tif", classes=SCENE_CLASSES)
     assert doc["classes"] == json.loads(json.dumps(api["classes"]))

@@ -11,8 +11,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-import tifffile
+import rasterio
 import torch
+from affine import Affine
 from PIL import Image
 from safetensors.torch import save_file
 
@@ -20,12 +21,13 @@ from fcnkit import Model, build_model, segment_image, segment_images
 from fcnkit.cli import main
 from fcnkit.config import config_from_dict, config_to_dict
 from fcnkit.data.classes import ClassInfo, ClassTable
-from fcnkit.data.raster import PIXEL_SCALE, TiffRaster, read_geotags
-from fcnkit.data.scenes import geotiff_tags
+from fcnkit.data.imageio import write_tiff
+from fcnkit.data.raster import open_raster
+from fcnkit.data.scenes import kessmoor_grid
 from fcnkit.errors import DataError
 from fcnkit.inference.scan import predict_scores
 from fcnkit.inference.segment import find_images, shard
-from fcnkit.outputs import to_byte
+from fcnkit.outputs import OutputOptions, to_byte
 
 CLASSES = ClassTable((ClassInfo(0, "open ground", (200, 180, 120)), ClassInfo(1, "water", (40, 100, 200)),
                       ClassInfo(2, "roof", (210, 60, 50))))
@@ -44,59 +46,76 @@ def _model_file(folder: Path, bands: int = 4) -> Path:
 
 def _geotiff(path: Path, h: int = 150, w: int = 170, pixel: float = 0.5) -> np.ndarray:
     img = np.random.default_rng(0).normal(650, 150, (h, w, 4)).clip(0, 65535).astype(np.uint16)
-    tifffile.imwrite(path, img, tile=(32, 32), compression="zlib", photometric="minisblack", planarconfig="contig",
-                     extratags=geotiff_tags(pixel))
+    grid = kessmoor_grid(pixel)
+    with rasterio.open(path, "w", driver="GTiff", width=w, height=h, count=4, dtype="uint16", crs=grid.crs,
+                       transform=grid.transform, tiled=True, blockxsize=32, blockysize=32, compress="zstd",
+                       photometric="minisblack") as ds:
+        ds.write(np.moveaxis(img, 2, 0))
     return img
-
-
-def _tags(path: Path) -> dict:
-    with tifffile.TiffFile(path) as tif:
-        geo = read_geotags(tif.pages.first)
-    return {code: value for code, _, _, value in geo.tags}
 
 
 def _visible(folder: Path) -> list[str]:
     return sorted(p.name for p in folder.iterdir() if not p.name.startswith("."))
 
 
-def test_geotiff_outputs_carry_the_input_tags_and_areas(tmp_path):
+def test_geotiff_outputs_are_cogs_on_the_input_grid_with_class_metadata(tmp_path):
     model = _model_file(tmp_path)
     img = _geotiff(tmp_path / "field.tif")
     res = segment_image(model, tmp_path / "field.tif", tmp_path / "out", tile=64, preview=64, progress=False)
-    assert set(res.paths) == {"labels", "confidence", "uncertainty", "overlay", "areas_csv", "areas_json"}
+    assert set(res.paths) == {"labels", "confidence", "uncertainty", "overlay", "preview", "areas_csv",
+                              "areas_json"}
     assert _visible(tmp_path / "out") == sorted(p.name for p in res.paths.values())
     assert list((tmp_path / "out").iterdir()) == [p for p in (tmp_path / "out").iterdir() if p.name[0] != "."]
 
-    # every raster output carries the input's georeferencing tags (GeoTIFF 1.0 tags read back with tifffile);
-    # the overlay is down-sampled by `step`, so its pixel scale is `step` times larger
-    want = _tags(tmp_path / "field.tif")
+    # every raster output is a COG (GDAL's IMAGE_STRUCTURE metadata says LAYOUT=COG) on the input's exact grid,
+    # read back with rasterio; the overlay's grid is the input's down-sampled by `step`
+    with rasterio.open(tmp_path / "field.tif") as src:
+        crs, transform = src.crs, src.transform
     for kind in ("labels", "confidence", "uncertainty"):
-        assert _tags(res.paths[kind]) == want, kind
+        with rasterio.open(res.paths[kind]) as ds:
+            assert (ds.crs, ds.transform, ds.shape) == (crs, transform, (150, 170)), kind
+            assert ds.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG", kind
     step = math.ceil(170 / 64)
-    over = _tags(res.paths["overlay"])
-    assert over[PIXEL_SCALE] == (0.5 * step, 0.5 * step, 0.0)
-    assert {k: v for k, v in over.items() if k != PIXEL_SCALE} == {k: v for k, v in want.items() if k != PIXEL_SCALE}
-    with tifffile.TiffFile(res.paths["overlay"]) as tif:
-        assert tif.pages.first.shape == (math.ceil(150 / step - 0.5), math.ceil(170 / step - 0.5), 3)
+    with rasterio.open(res.paths["overlay"]) as ds:
+        assert ds.crs == crs and ds.transform == transform @ Affine.scale(step) and ds.count == 3
+        assert ds.shape == (math.ceil(150 / step - 0.5), math.ceil(170 / step - 0.5))
 
-    # the maps are those of the API's probabilities
-
+    # the maps are those of the API's probabilities; GIS metadata: colour table, class names, scale/offset
     probs = predict_scores(Model.load(model), img, tile=64)
-    labels = tifffile.imread(res.paths["labels"])
+    with rasterio.open(res.paths["labels"]) as ds:
+        labels = ds.read(1)
+        assert [ds.colormap(1)[i][:3] for i in range(3)] == CLASSES.colors
+        assert [ds.tags(1)[f"CLASS_{i}"] for i in range(3)] == CLASSES.names and ds.nodata == CLASSES.ignore
     np.testing.assert_array_equal(labels, probs.argmax(0))
-    np.testing.assert_array_equal(tifffile.imread(res.paths["confidence"]), to_byte(probs.max(0)))
-    with tifffile.TiffFile(res.paths["labels"]) as tif:
-        cmap = tif.pages.first.colormap
-    np.testing.assert_array_equal(cmap[:, :3].T // 257, np.array(CLASSES.colors))
+    with rasterio.open(res.paths["confidence"]) as ds:
+        np.testing.assert_array_equal(ds.read(1), to_byte(probs.max(0)))
+        assert ds.scales == (1 / 255,) and ds.offsets == (0.0,) and "confidence" in ds.descriptions[0]
+    with rasterio.open(res.paths["uncertainty"]) as ds:
+        assert ds.scales == (1 / 255,) and "entropy" in ds.descriptions[0]
+    assert not list((tmp_path / "out").glob("*.aux.xml")) and not list((tmp_path / "out").glob("*.msk"))
 
-    # areas = pixel count × pixel area (0.5 m × 0.5 m from the GeoTIFF pixel scale)
+    # areas = pixel count × pixel area (0.5 m × 0.5 m on the grid)
     counts = np.bincount(labels.ravel(), minlength=3)
     doc = json.loads(res.paths["areas_json"].read_text())
-    assert doc["pixel_area_m2"] == 0.25 and doc["pixel_area_source"] == "GeoTIFF pixel scale"
+    assert doc["pixel_area_m2"] == 0.25 and doc["nodata_pixels"] == 0
     assert [r["pixels"] for r in doc["classes"]] == counts.tolist()
     assert [r["area_m2"] for r in doc["classes"]] == (counts * 0.25).tolist()
     assert doc["classes"] == res.areas
-    assert res.size == (150, 170)
+    assert res.size == (150, 170) and res.notes == []
+
+
+def test_plain_tiffs_on_request_and_no_georeferencing_for_a_plain_input(tmp_path):
+    model = _model_file(tmp_path)
+    img = _geotiff(tmp_path / "field.tif", 40, 50)
+    write_tiff(tmp_path / "plain.tif", img)
+    res = segment_image(model, tmp_path / "plain.tif", tmp_path / "out", progress=False,
+                        outputs=OutputOptions(cog=False))
+    with rasterio.open(res.paths["labels"]) as ds:
+        assert ds.crs is None and ds.transform.is_identity and ds.shape == (40, 50)
+        assert ds.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") != "COG"
+    doc = json.loads(res.paths["areas_json"].read_text())
+    assert doc["classes"][0]["area_m2"] is None and "--pixel-size" in doc["area_note"]
+    assert res.notes == [doc["area_note"]]
 
 
 def test_png_input_gives_palette_png_and_pixel_size_option(tmp_path):
@@ -118,8 +137,13 @@ def test_cli_segment_prints_one_line_per_image(tmp_path, capsys):
     Image.fromarray(np.zeros((40, 40, 3), np.uint8)).save(tmp_path / "a.png")
     assert main(["segment", str(model), str(tmp_path / "a.png"), "--out", str(tmp_path / "o"), "--quiet",
                  "--tile", "32"]) == 0
-    out = capsys.readouterr().out.strip().splitlines()
-    assert len(out) == 1 and "a.png: 40x40 mapped" in out[0]
+    printed = capsys.readouterr()
+    out, err = printed.out.strip().splitlines(), printed.err.strip().splitlines()
+    assert len(out) == 1 and "a.png: 40x40 mapped" in out[0]  # results on stdout, one line per image
+    notes = [line for line in err if "georeferencing" in line]  # remarks on stderr, said once, in one line
+    assert len(notes) == 1 and notes[0].startswith("fcnkit: note: ") and notes[0].endswith(
+        "a.png: no georeferencing: areas left empty; give the pixel side in metres with --pixel-size "
+        "(pixel_size=) to get areas")
 
 
 def _bad(tmp_path: Path, case: str) -> tuple[list[str], str]:
@@ -212,4 +236,4 @@ def test_killed_run_leaves_no_file_under_a_final_name(tmp_path):
         if proc.poll() is None:
             proc.kill()
     assert _visible(out) == []
-    assert TiffRaster(tmp_path / "big.tif", None).shape == (600, 600, 4)  # the input is untouched
+    assert open_raster(tmp_path / "big.tif", None).shape == (600, 600, 4)  # the input is untouched

@@ -48,7 +48,7 @@ def test_run_folder_model_and_metrics(scenes, tmp_path):
     assert sorted(p.name for p in run.iterdir()) == ["metrics.csv", "model.safetensors", "resume.pt"]
     rows = list(csv.DictReader((run / "metrics.csv").open()))
     assert [int(r["epoch"]) for r in rows] == [1, 2]
-    for key in ("seconds", "lr", "train_loss", "val_loss", "val_pixel_acc", "val_miou", "pixels_per_s",
+    for key in ("seconds", "lr", "train_loss", "val_loss", "val_pixel_accuracy", "val_mean_iou", "pixels_per_second",
                 "iou_water"):
         assert all(math.isfinite(float(r[key])) for r in rows if key != "iou_water") and key in rows[0]
     assert float(rows[1]["seconds"]) > float(rows[0]["seconds"]) > 0
@@ -66,8 +66,8 @@ def test_run_folder_model_and_metrics(scenes, tmp_path):
     masks = [read_mask(s.mask, classes) for s in val]
     cm, _, _ = validate(loaded, images, masks)
     best_row = rows[result.best_epoch - 1]
-    assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best_row["val_miou"]), rel=1e-4)
-    assert result.best_miou == pytest.approx(max(float(r["val_miou"]) for r in rows), rel=1e-6)
+    assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best_row["val_mean_iou"]), rel=1e-4)
+    assert result.best_mean_iou == pytest.approx(max(float(r["val_mean_iou"]) for r in rows), rel=1e-6)
 
     # a second fresh run into the same folder is refused; so is resuming with another config
     with pytest.raises(ModelFileError, match="already holds a run"):
@@ -85,7 +85,7 @@ def test_sgd_poly_bf16_nchw_and_no_validation(scenes, tmp_path):
     t = {"optimizer": "sgd", "schedule": "poly", "bf16": True, "channels_last": False, "val_fraction": 0.0,
          "class_weights": "none", "dice": 0.0, "epochs": 1}
     result = fit(config_from_dict(tiny(train=t)), scenes, tmp_path / "run", progress=False)
-    assert math.isnan(result.best_miou) and result.best_epoch == 1
+    assert math.isnan(result.best_mean_iou) and result.best_epoch == 1
     assert Model.load(tmp_path / "run" / "model.safetensors").extra["epoch"] == 1
 
 
@@ -146,8 +146,9 @@ def test_early_stopping_keeps_the_best_epoch(scenes, tmp_path, monkeypatch):
     cfg = config_from_dict(tiny(train={"epochs": 6, "patience": 2}))
     result = fit(cfg, scenes, tmp_path / "run", progress=False)
     # epochs 3 and 4 do not beat epoch 2: patience 2 stops the run there
-    assert (result.epochs, result.best_epoch, result.best_miou, result.stopped_early) == (4, 2, 0.6, True)
-    assert Model.load(result.model_path).extra == {"epoch": 2, "val_mean_iou": 0.6}
+    assert (result.epochs, result.best_epoch, result.best_mean_iou, result.stopped_early) == (4, 2, 0.6, True)
+    extra = Model.load(result.model_path).extra
+    assert (extra["epoch"], extra["val_mean_iou"]) == (2, 0.6)
     again = fit(cfg, scenes, tmp_path / "run", resume=True, progress=False)  # a stopped run stays stopped
     assert again.epochs == 4
 

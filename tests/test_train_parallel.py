@@ -37,4 +37,4 @@ def test_two_processes_train_and_reduce_metrics(tmp_path):
     assert len(val) == 2
     cm, _, _ = validate(loaded, [read_image(s.image) for s in val], [read_mask(s.mask, classes) for s in val])
     best = rows[loaded.extra["epoch"] - 1]
-    assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best["val_miou"]), rel=1e-4)
+    assert segmentation_scores(cm)["mean_iou"] == pytest.approx(float(best["val_mean_iou"]), rel=1e-4)

@@ -94,6 +94,6 @@ def test_interrupted_and_resumed_run_is_bit_identical(tmp_path):
     (last, best, history), (ref_last, ref_best, ref_history) = _weights(out), _weights(reference)
     for a, b in ((last, ref_last), (best, ref_best)):
         assert a.keys() == b.keys() and all(torch.equal(a[k], b[k]) for k in a)
-    drop = ("seconds", "pixels_per_s")  # wall-clock figures differ, every score must not (repr: NaN == NaN)
+    drop = ("seconds", "pixels_per_second")  # wall-clock figures differ, every score must not (repr: NaN == NaN)
     assert [{k: repr(v) for k, v in r.items() if k not in drop} for r in history] == \
         [{k: repr(v) for k, v in r.items() if k not in drop} for r in ref_history]

@@ -11,7 +11,8 @@ A dataset folder describes its classes in ``classes.toml``::
     color = "#b59c70"            # or [181, 156, 112]
 
 Ids run 0..K-1; ids, names and colours are unique. The same table travels in model-file metadata as a
-JSON-able dict (``to_dict`` / ``from_dict``).
+JSON-able dict (``to_dict`` / ``from_dict``). An optional ``[vector_labels]`` table says where a dataset's labels
+drawn as polygons, lines or points are (read by :mod:`fcnkit.data.vectors`).
 """
 
 from __future__ import annotations
@@ -151,8 +152,8 @@ def _parse(d: Any, problems: list[str]) -> _RawTable | None:
     if not isinstance(d, dict):
         problems.append(f"expected a table, got {type(d).__name__}")
         return None
-    for key in sorted(set(d) - {"ignore", "ignore_color", "classes"}):
-        problems.append(f"unknown key {key!r} (expected ignore, ignore_color, classes)")
+    for key in sorted(set(d) - {"ignore", "ignore_color", "classes", "vector_labels"}):
+        problems.append(f"unknown key {key!r} (expected ignore, ignore_color, classes, vector_labels)")
     ignore = d.get("ignore", 255)
     if not _is_int(ignore):
         problems.append(f"ignore = {ignore!r} (expected an integer 0..255)")

@@ -1,9 +1,11 @@
-"""Dataset folders: ``images/`` and ``masks/`` paired by file stem, plus ``classes.toml``.
+"""Dataset folders: ``images/`` and ``masks/`` paired by file stem, plus ``classes.toml`` — or ``images/``
+and one vector label file (polygons, lines, points; see :mod:`fcnkit.data.vectors`) in place of ``masks/``.
 
-``find_samples`` returns the pairs for training and stops at the first problem; ``check_dataset`` reads every
-file and lists every problem (missing pair, size mismatch, unknown ids or colours, unreadable or truncated
-file, inconsistent band counts, a bad class table) with the file's name. ``band_stats`` gives the per-band
-mean and standard deviation used to normalise inputs.
+``find_samples`` returns the samples for training and stops at the first problem; ``read_sample`` reads one
+sample's image and mask as training, ``check`` and evaluation all see them (nodata pixels of the image are
+unlabelled); ``check_dataset`` reads every file and lists every problem (missing pair, size mismatch, unknown
+ids or colours, unreadable or truncated file, inconsistent band counts, a bad class table, bad vector labels)
+with the file's name. ``band_stats`` gives the per-band mean and standard deviation used to normalise inputs.
 """
 
 from __future__ import annotations
@@ -16,17 +18,38 @@ from pathlib import Path
 import numpy as np
 
 from fcnkit.data.classes import ClassTable, read_classes_toml
-from fcnkit.data.imageio import DEFAULT_MAX_PIXELS, IMAGE_SUFFIXES, MASK_SUFFIXES, read_image, read_mask
+from fcnkit.data.imageio import (
+    DEFAULT_MAX_PIXELS,
+    IMAGE_SUFFIXES,
+    MASK_SUFFIXES,
+    read_image_geo,
+    read_image_valid,
+    read_mask,
+)
+from fcnkit.data.raster import GeoRef, Raster
+from fcnkit.data.vectors import VectorSettings, load_vector_labels, rasterise, vector_settings
 from fcnkit.errors import DataError
 
 
 @dataclass(frozen=True)
 class Sample:
-    """One image and its mask, paired by file stem."""
+    """One image and its labels: a mask paired by file stem, or (``vector`` set) the dataset's vector label
+    file, then also ``mask``."""
 
     stem: str
     image: Path
     mask: Path
+    vector: VectorSettings | None = None
+
+
+@dataclass
+class LabelledImage:
+    """An image (H×W×B; nodata pixels hold their band's mean), its mask (H×W uint8 ids; nodata pixels are
+    the ignore value) and how many of its pixels are nodata."""
+
+    image: np.ndarray
+    mask: np.ndarray
+    nodata_pixels: int = 0
 
 
 @dataclass(frozen=True)
@@ -48,6 +71,9 @@ class CheckReport:
     class_pixels: list[int] = field(default_factory=list)
     ignore_pixels: int = 0
     problems: list[str] = field(default_factory=list)
+    nodata_pixels: int = 0
+    nodata_images: int = 0
+    vector_labels: str | None = None  # what the vector label file holds, when the dataset has one
 
     @property
     def ok(self) -> bool:
@@ -61,13 +87,19 @@ class CheckReport:
 
 
 def _scan(data_dir: Path) -> tuple[list[Sample], list[str]]:
-    """Pair images/ and masks/ by stem; list unpaired, duplicate and unsupported files."""
-    problems: list[str] = []
+    """Pair images/ and masks/ by stem (or give every image the vector labels); list unpaired, duplicate and
+    unsupported files."""
+    vector, problems = vector_settings(data_dir)
+    if problems:
+        return [], problems
     found: dict[str, dict[str, Path]] = {}
     for sub, suffixes in (("images", IMAGE_SUFFIXES), ("masks", MASK_SUFFIXES)):
+        if sub == "masks" and vector is not None:
+            continue
         folder = data_dir / sub
         if not folder.is_dir():
-            problems.append(f"{folder}: missing folder (a dataset holds images/, masks/ and classes.toml)")
+            what = "images/ and masks/ (or a vector label file)" if sub == "masks" else "images/"
+            problems.append(f"{folder}: missing folder (a dataset holds {what} and classes.toml)")
             continue
         files: dict[str, Path] = {}
         for p in sorted(folder.iterdir()):
@@ -80,17 +112,65 @@ def _scan(data_dir: Path) -> tuple[list[Sample], list[str]]:
             else:
                 files[p.stem] = p
         found[sub] = files
-    if len(found) < 2:
+    if "images" not in found:
         return [], problems
-    images, masks = found["images"], found["masks"]
-    for stem in sorted(images.keys() - masks.keys()):
-        problems.append(f"{images[stem]}: no mask with stem {stem!r} in {data_dir / 'masks'}")
-    for stem in sorted(masks.keys() - images.keys()):
-        problems.append(f"{masks[stem]}: no image with stem {stem!r} in {data_dir / 'images'}")
-    samples = [Sample(s, images[s], masks[s]) for s in sorted(images.keys() & masks.keys())]
+    images = found["images"]
+    if vector is not None:
+        samples = [Sample(s, images[s], vector.file, vector) for s in sorted(images)]
+    else:
+        if "masks" not in found:
+            return [], problems
+        masks = found["masks"]
+        for stem in sorted(images.keys() - masks.keys()):
+            problems.append(f"{images[stem]}: no mask with stem {stem!r} in {data_dir / 'masks'}")
+        for stem in sorted(masks.keys() - images.keys()):
+            problems.append(f"{masks[stem]}: no image with stem {stem!r} in {data_dir / 'images'}")
+        samples = [Sample(s, images[s], masks[s]) for s in sorted(images.keys() & masks.keys())]
     if not samples and not problems:
         problems.append(f"{data_dir / 'images'}: no images (expected image/mask pairs with matching stems)")
     return samples, problems
+
+
+def read_sample(sample: Sample, classes: ClassTable, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+                ) -> LabelledImage:
+    """A sample's image and mask as training sees them: the mask from its file, or rasterised from the vector
+    labels onto the image's grid; the image's nodata pixels unlabelled. DataError when the two disagree."""
+    image, valid, geo = read_image_geo(sample.image, max_pixels)
+    mask = _mask(sample, classes, image.shape[:2], geo, max_pixels)
+    return LabelledImage(image, *_unlabel_nodata(mask, valid, classes))
+
+
+def sample_mask(sample: Sample, classes: ClassTable, raster: Raster, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+                ) -> np.ndarray:
+    """The mask of a sample whose image is open as ``raster`` (for evaluation, which maps the image by region
+    reads): its file's or its vector labels', with the image's nodata pixels unlabelled."""
+    height, width, _ = raster.shape
+    mask = _mask(sample, classes, (height, width), raster.geo, max_pixels)
+    if raster.masked:
+        for y0 in range(0, height, 1024):
+            valid = raster.valid(y0, min(y0 + 1024, height), 0, width)
+            if valid is not None:
+                mask[y0:y0 + 1024][~valid] = classes.ignore
+    return mask
+
+
+def _mask(sample: Sample, classes: ClassTable, size: tuple[int, int], geo: GeoRef | None,
+          max_pixels: int | None) -> np.ndarray:
+    """The sample's mask for an image of ``size`` on grid ``geo``."""
+    if sample.vector is not None:
+        return rasterise(load_vector_labels(sample.vector, classes), geo, size, classes, sample.image)
+    mask = read_mask(sample.mask, classes, max_pixels)
+    if mask.shape != size:
+        raise DataError(f"{sample.mask}: {mask.shape[1]}x{mask.shape[0]} pixels but its image {sample.image.name} "
+                        f"is {size[1]}x{size[0]} (expected the same size)")
+    return mask
+
+
+def _unlabel_nodata(mask: np.ndarray, valid: np.ndarray | None, classes: ClassTable) -> tuple[np.ndarray, int]:
+    if valid is None:
+        return mask, 0
+    mask[~valid] = classes.ignore
+    return mask, int((~valid).sum())
 
 
 def find_samples(data_dir: str | Path) -> tuple[list[Sample], ClassTable]:
@@ -118,35 +198,41 @@ def check_dataset(data_dir: str | Path, max_pixels: int | None = DEFAULT_MAX_PIX
     samples, scan_problems = _scan(data_dir)
     report.problems += scan_problems
     counts = np.zeros(256, dtype=np.int64)
+    if classes is not None and samples and samples[0].vector is not None:
+        try:
+            report.vector_labels = load_vector_labels(samples[0].vector, classes).describe()
+        except DataError as e:
+            report.problems.append(str(e))
+            classes = None  # the masks cannot be made; the images are still checked
     for s in samples:
-        size = None
+        image = valid = geo = None
         try:
-            image = read_image(s.image, max_pixels)
-            size = image.shape[:2]
+            image, valid, geo = read_image_geo(s.image, max_pixels)
             report.images.append(ImageInfo(s.stem, *image.shape, str(image.dtype)))
-            del image
         except DataError as e:
             report.problems.append(str(e))
-        if classes is None:
+        if classes is None or (image is None and s.vector is not None):
             continue
+        size = image.shape[:2] if image is not None else None
+        del image
         try:
-            mask = read_mask(s.mask, classes, max_pixels)
+            mask = _mask(s, classes, size, geo, max_pixels) if size is not None else read_mask(s.mask, classes,
+                                                                                                max_pixels)
         except DataError as e:
             report.problems.append(str(e))
             continue
-        if size is not None and mask.shape != size:
-            report.problems.append(f"{s.mask}: {mask.shape[0]}×{mask.shape[1]} pixels but {s.image.name} is "
-                                   f"{size[0]}×{size[1]}")
-            continue
+        mask, nodata = _unlabel_nodata(mask, valid, classes)
+        report.nodata_pixels += nodata
+        report.nodata_images += nodata > 0
         counts += np.bincount(mask.ravel(), minlength=256)
     if report.images:
         usual = Counter(i.bands for i in report.images).most_common(1)[0][0]
         for i in report.images:
             if i.bands != usual:
                 report.problems.append(f"{_image_path(samples, i.stem)}: {i.bands} bands but most images have {usual}")
-    if classes is not None:
-        report.class_pixels = [int(n) for n in counts[:classes.num_classes]]
-        report.ignore_pixels = int(counts[classes.ignore])
+    if report.classes is not None:
+        report.class_pixels = [int(n) for n in counts[:report.classes.num_classes]]
+        report.ignore_pixels = int(counts[report.classes.ignore])
     return report
 
 
@@ -159,6 +245,8 @@ def format_check(report: CheckReport) -> str:
     lines = [f"dataset {report.data_dir}"]
     if report.classes is not None:
         lines.append(f"classes: {report.classes.num_classes}, ignore value {report.classes.ignore}")
+    if report.vector_labels is not None:
+        lines.append(f"vector labels: {report.vector_labels}")
     groups: dict[tuple[int, int, int, str], list[str]] = {}
     for i in report.images:
         groups.setdefault((i.height, i.width, i.bands, i.dtype), []).append(i.stem)
@@ -179,6 +267,9 @@ def format_check(report: CheckReport) -> str:
         absent = [c.name for c, n in zip(report.classes.classes, report.class_pixels, strict=True) if n == 0]
         if absent:
             lines.append(f"note: no labelled pixels of {', '.join(absent)}")
+        if report.nodata_pixels:
+            lines.append(f"note: {report.nodata_pixels} nodata pixels in {report.nodata_images} image"
+                         f"{'s' if report.nodata_images > 1 else ''} (unlabelled in training, counted as ignore)")
     if report.problems:
         lines.append(f"problems ({len(report.problems)}):")
         lines += [f"  {p}" for p in report.problems]
@@ -192,15 +283,21 @@ def format_check(report: CheckReport) -> str:
 
 
 def band_stats(images: Iterable[str | Path | np.ndarray], max_pixels: int | None = DEFAULT_MAX_PIXELS,
-               ) -> tuple[list[float], list[float]]:
-    """Per-band mean and standard deviation over every pixel of ``images`` (paths or H×W×B arrays), raw units.
+               valid: Iterable[np.ndarray | None] | None = None) -> tuple[list[float], list[float]]:
+    """Per-band mean and standard deviation over the valid pixels of ``images`` (paths or H×W×B arrays), raw
+    units. A path's nodata pixels are left out; for arrays, ``valid`` gives one H×W bool mask (or None: all
+    valid) per image.
 
     Each image is reduced in row blocks and the blocks are merged with the pairwise formula of Chan, Golub &
     LeVeque (1979), so memory stays small and large uint16 sums keep their precision.
     """
     n, mean, m2, bands = 0, None, None, None
+    masks = iter(valid) if valid is not None else None
     for item in images:
-        arr = read_image(item, max_pixels) if isinstance(item, (str, Path)) else np.asarray(item)
+        if isinstance(item, (str, Path)):
+            arr, ok = read_image_valid(item, max_pixels)
+        else:
+            arr, ok = np.asarray(item), next(masks) if masks is not None else None
         arr = arr[..., None] if arr.ndim == 2 else arr
         if bands is None:
             bands = arr.shape[2]
@@ -210,6 +307,10 @@ def band_stats(images: Iterable[str | Path | np.ndarray], max_pixels: int | None
         rows = max(1, (1 << 22) // max(1, arr.shape[1] * bands))
         for r in range(0, arr.shape[0], rows):
             block = arr[r:r + rows].reshape(-1, bands).astype(np.float64)
+            if ok is not None:
+                block = block[np.asarray(ok[r:r + rows]).ravel()]
+            if not block.shape[0]:
+                continue
             nb, mb = block.shape[0], block.mean(axis=0)
             m2b = ((block - mb) ** 2).sum(axis=0)
             if mean is None:
@@ -221,5 +322,5 @@ def band_stats(images: Iterable[str | Path | np.ndarray], max_pixels: int | None
                 m2 = m2 + m2b + delta**2 * n * nb / total
                 n = total
     if mean is None or n == 0:
-        raise DataError("band_stats: no images (expected at least one image)")
+        raise DataError("band_stats: no images (expected at least one image with valid pixels)")
     return [float(v) for v in mean], [float(v) for v in np.sqrt(m2 / n)]

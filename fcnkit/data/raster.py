@@ -1,312 +1,122 @@
-"""Large rasters: lazy region readers, streaming TIFF writers and GeoTIFF tag copying.
+"""Images as region readers: one front for every format, so mapping, ``check`` and training read alike.
 
-Tiled inference reads an image one tile at a time, so a reader here returns any rectangle of pixels as an
-H×W×B array in the file's dtype without decoding the rest where the format allows it:
+``open_raster(path, max_pixels)`` picks the reader by format and returns a :class:`Raster`: an image of
+``shape`` (H, W, B) and ``dtype`` read one rectangle at a time, with its georeferencing and validity.
 
-* TIFF / BigTIFF (tifffile): uncompressed contiguous data is memory-mapped; tiled or striped data, 8/16-bit or
-  float, chunky or planar, is read one tile or strip at a time (the file's own segments), with a small cache
-  of decoded segments shared by neighbouring tiles.
-* PNG / JPEG (Pillow, via :func:`fcnkit.data.imageio.read_image`): these formats cannot be decoded in parts,
-  so the whole image is decoded once, after its pixel count is checked against an explicit limit (Pillow's
-  decompression-bomb guard stays on).
+* GDAL formats (TIFF, BigTIFF, COG, VRT) — :mod:`fcnkit.data.gdalraster`, through rasterio: every compression
+  and layout GDAL reads, windowed reads (only the tiles or strips a region needs), nodata values, per-dataset
+  masks and alpha bands.
+* Pillow formats (PNG, JPEG) — :mod:`fcnkit.data.pillowraster`: these cannot be decoded in parts, so the
+  whole image is decoded once, on the first read, after its pixel count is checked.
 
-Writers stream a large raster to a tiled, deflate-compressed (Big)TIFF block by block through
-:mod:`fcnkit.atomic`, optionally carrying a source GeoTIFF's georeferencing tags.
+What every reader agrees on:
+
+* **Bands** are the data bands. An alpha band (GDAL colour interpretation "alpha", or a PNG's alpha channel)
+  is not data: it is read as the validity mask. Beware: GDAL marks band 4 of a 4-band 8-bit GeoTIFF written
+  with PHOTOMETRIC=RGB (rasterio's default for 4 uint8 bands) as alpha, so an R, G, B, NIR image written that
+  way reads as 3 bands with NIR as a mask; write such images with ``photometric="minisblack"``.
+* **Pixel types**: uint8 and uint16 stay; every other numeric type becomes float32.
+* **Validity**: ``valid(y0, y1, x0, x1)`` is a boolean mask (True = data) or None when every pixel is valid;
+  ``read`` puts ``fill`` (one value per band, default 0) into invalid pixels, so a nodata value of −9999 or NaN
+  never reaches a net. A pixel is valid when any band is (GDAL's rule for per-band nodata).
+* **Errors**: a one-line DataError naming the file: unreadable, truncated, above the pixel limit, several
+  images in one file (one-band-per-page TIFFs: stack the pages as bands), NaN or infinite values in valid
+  pixels.
 """
 
 from __future__ import annotations
 
-import math
-import os
-from collections import OrderedDict
-from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Iterator
 from pathlib import Path
-from typing import Any, Protocol
 
 import numpy as np
-import tifffile
 
-from fcnkit.atomic import atomic_output
-from fcnkit.data.imageio import quiet_tifffile
+from fcnkit.data.rasterbase import (  # noqa: F401 - the front also offers what every reader shares
+    ArrayRaster,
+    GeoRef,
+    Raster,
+    check_finite,
+    check_pixel_limit,
+    fill_invalid,
+    supported_dtype,
+)
 from fcnkit.errors import DataError
 
 TIFF_SUFFIXES = (".tif", ".tiff")
+GDAL_SUFFIXES = TIFF_SUFFIXES + (".vrt",)
 PILLOW_SUFFIXES = (".png", ".jpg", ".jpeg")
-RASTER_SUFFIXES = TIFF_SUFFIXES + PILLOW_SUFFIXES
+RASTER_SUFFIXES = GDAL_SUFFIXES + PILLOW_SUFFIXES
 SEGMENT_MAX_PIXELS = 2**31  # 2.1 gigapixels; the decoded-pixel guard for segment (raise it for larger files)
-
-# GeoTIFF tags (GeoTIFF 1.0 specification, section 2.4): pixel scale, tie points, transformation matrix,
-# GeoKey directory and its double and ASCII parameters.
-PIXEL_SCALE, TIEPOINT, TRANSFORMATION, GEOKEYS, GEO_DOUBLES, GEO_ASCII = 33550, 33922, 34264, 34735, 34736, 34737
-GEO_TAGS = (PIXEL_SCALE, TIEPOINT, TRANSFORMATION, GEOKEYS, GEO_DOUBLES, GEO_ASCII)
-# GeoKeys read for areas (GeoTIFF 1.0, 6.3.1.1 and 6.3.1.3): model type 1 = projected, 2 = geographic;
-# linear unit 9001 = metre (EPSG unit code).
-_MODEL_TYPE_KEY, _LINEAR_UNITS_KEY, _PROJECTED, _METRE = 1024, 3076, 1, 9001
+_TIFF_MAGIC = (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+")
 
 
-@dataclass(frozen=True)
-class GeoTags:
-    """The georeferencing tags of a GeoTIFF, as (code, datatype, count, value), ready to write again."""
+def open_raster(path: str | Path, max_pixels: int | None, *, indices: bool = False) -> Raster:
+    """A region reader for an image file (GDAL: TIFF/BigTIFF/COG/VRT; Pillow: PNG/JPEG), chosen by content for
+    TIFF and by suffix otherwise; a DataError naming the file if it cannot be read.
 
-    tags: tuple[tuple[int, int, int, Any], ...]
-
-    def value(self, code: int) -> Any:
-        return next((v for c, _, _, v in self.tags if c == code), None)
-
-    def extratags(self, scale: int = 1) -> list[tuple[int, int, int, Any, bool]]:
-        """tifffile ``extratags`` for an output at the same grid, or one down-sampled by ``scale``
-        (pixel scale and the transformation's pixel-to-model columns multiplied by it)."""
-        out = []
-        for code, dtype, count, value in self.tags:
-            if scale != 1 and code == PIXEL_SCALE:
-                value = (value[0] * scale, value[1] * scale, *value[2:])
-            elif scale != 1 and code == TRANSFORMATION:
-                value = tuple(v * scale if i % 4 in (0, 1) and i < 12 else v for i, v in enumerate(value))
-            out.append((code, dtype, 0 if dtype == 2 else count, value, True))
-        return out
-
-    def pixel_size_m(self) -> tuple[float, float] | None:
-        """Pixel width and height in metres, when the grid is projected in metres and not rotated."""
-        keys = _geokeys(self.value(GEOKEYS))
-        if keys.get(_MODEL_TYPE_KEY, _PROJECTED) != _PROJECTED or keys.get(_LINEAR_UNITS_KEY, _METRE) != _METRE:
-            return None
-        scale = self.value(PIXEL_SCALE)
-        if scale is not None and scale[0] > 0 and scale[1] > 0:
-            return float(scale[0]), float(scale[1])
-        m = self.value(TRANSFORMATION)
-        if m is not None and m[1] == 0 and m[4] == 0:
-            return abs(float(m[0])), abs(float(m[5]))
-        return None
-
-
-def _geokeys(directory: Sequence[int] | None) -> dict[int, int]:
-    """Short (inline) GeoKey values from a GeoKeyDirectory: header of 4, then (key, location, count, value)."""
-    if not directory or len(directory) < 4:
-        return {}
-    keys = {}
-    for i in range(4, 4 + 4 * int(directory[3]), 4):
-        key, location, _count, value = directory[i:i + 4]
-        if location == 0:
-            keys[int(key)] = int(value)
-    return keys
-
-
-def read_geotags(page: tifffile.TiffPage) -> GeoTags | None:
-    found = tuple((code, int(page.tags[code].dtype), page.tags[code].count, page.tags[code].value)
-                  for code in GEO_TAGS if code in page.tags)
-    return GeoTags(found) if any(c in (PIXEL_SCALE, TIEPOINT, TRANSFORMATION) for c, *_ in found) else None
-
-
-class Raster(Protocol):
-    """Anything tiled inference can read: an image of ``shape`` (H, W, B) read one rectangle at a time."""
-
-    path: Path | None
-    shape: tuple[int, int, int]
-    dtype: np.dtype
-    geo: GeoTags | None
-
-    def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray: ...
-
-    def close(self) -> None: ...
-
-
-@dataclass
-class ArrayRaster:
-    """An in-memory (or memory-mapped) H×W or H×W×B array seen as a :class:`Raster`."""
-
-    array: np.ndarray
-    geo: GeoTags | None = None
-    path: Path | None = None
-
-    def __post_init__(self) -> None:
-        if self.array.ndim == 2:
-            self.array = self.array[:, :, None]
-        if self.array.ndim != 3:
-            raise DataError(f"{self.path or 'image'}: expected an H×W×bands array, got shape {self.array.shape}")
-
-    @property
-    def shape(self) -> tuple[int, int, int]:
-        return tuple(self.array.shape)  # type: ignore[return-value]
-
-    @property
-    def dtype(self) -> np.dtype:
-        return self.array.dtype
-
-    def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        return self.array[y0:y1, x0:x1]
-
-    def close(self) -> None:
-        pass
-
-
-class TiffRaster:
-    """Region reader for a TIFF or BigTIFF (first image), decoding only the tiles or strips a region needs."""
-
-    def __init__(self, path: str | Path, max_pixels: int | None, cache_bytes: int = 64 << 20) -> None:
-        self.path = Path(path)
-        try:
-            with quiet_tifffile():
-                self._tif = tifffile.TiffFile(self.path)
-        except Exception as e:  # tifffile raises TiffFileError, ValueError, TypeError, struct.error… on damage
-            raise DataError(f"{self.path}: not a readable TIFF ({_one_line(e)})") from None
-        try:
-            if not len(self._tif.pages):
-                raise DataError(f"{self.path}: not a readable TIFF (it holds no image)")
-            self._open(self._tif.pages.first, max_pixels)
-        except BaseException:
-            self._tif.close()
-            raise
-        self._cache: OrderedDict[int, np.ndarray] = OrderedDict()
-        self._cache_bytes, self._cached = cache_bytes, 0
-
-    def _open(self, page: tifffile.TiffPage, max_pixels: int | None) -> None:
-        sep, depth, height, width, contig = page.shaped
-        if depth != 1 or page.dtype is None:
-            raise DataError(f"{self.path}: unsupported TIFF layout (depth {depth}, dtype {page.dtype})")
-        if np.dtype(page.dtype).kind not in "buif":
-            raise DataError(f"{self.path}: pixel type {page.dtype} (expected integers or real floats)")
-        if not height * width * sep * contig:
-            raise DataError(f"{self.path}: image has no pixels ({height}x{width}, {sep * contig} bands; expected "
-                            "at least one pixel and one band)")
-        if max_pixels is not None and height * width > max_pixels:
-            raise DataError(f"{self.path}: {width}x{height} = {height * width:,} pixels is above the limit of "
-                            f"{max_pixels:,}; raise the pixel limit if the file is trusted")
-        self.page, self.shape, self.dtype = page, (height, width, sep * contig), np.dtype(page.dtype)
-        self.geo = read_geotags(page)
-        size = os.path.getsize(self.path)
-        if len(page.dataoffsets) != len(page.databytecounts):
-            raise DataError(f"{self.path}: corrupt TIFF ({len(page.dataoffsets)} segment offsets but "
-                            f"{len(page.databytecounts)} segment sizes)")
-        ends = [o + n for o, n in zip(page.dataoffsets, page.databytecounts, strict=True)]
-        if not ends or max(ends) > size or 0 in page.databytecounts:
-            raise DataError(f"{self.path}: truncated TIFF (image data ends at byte {max(ends, default=0):,}, "
-                            f"file has {size:,})")
-        # uncompressed chunky data: map just the rows a read needs (keeps resident memory to one tile's rows)
-        self._contiguous = page.is_memmappable and (page.planarconfig == 1 or self.shape[2] == 1)
-        if page.is_tiled:
-            self._seg_h, self._seg_w = page.tilelength, page.tilewidth
-        else:
-            self._seg_h, self._seg_w = min(page.rowsperstrip, height), width
-        self._rows, self._cols = math.ceil(height / self._seg_h), math.ceil(width / self._seg_w)
-        expected = sep * self._rows * self._cols
-        if len(page.dataoffsets) < expected:
-            raise DataError(f"{self.path}: corrupt TIFF ({len(page.dataoffsets)} data segments, expected {expected} "
-                            f"for {width}x{height} pixels in {self._seg_w}x{self._seg_h} segments)")
-
-    def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        out = self._read(y0, y1, x0, x1)
-        if out.dtype.kind == "f" and not np.isfinite(out).all():  # NaN scores would pass silently into a map
-            raise DataError(f"{self.path}: {int((~np.isfinite(out)).sum())} NaN or infinite pixel values in rows "
-                            f"{y0}..{y1 - 1} (expected finite numbers; fill no-data pixels before mapping)")
-        return out
-
-    def _read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
-        if self._contiguous:
-            _, width, bands = self.shape
-            dtype = self.dtype.newbyteorder(self._tif.byteorder)
-            rows = np.memmap(self.path, dtype, "r", offset=self.page.dataoffsets[0] + y0 * width * bands
-                             * dtype.itemsize, shape=(y1 - y0, width, bands))
-            out = rows[:, x0:x1].astype(self.dtype)
-            del rows
-            return out
-        out = np.empty((y1 - y0, x1 - x0, self.shape[2]), self.dtype)
-        planes = self.page.shaped[0]
-        for r in range(y0 // self._seg_h, (y1 - 1) // self._seg_h + 1):
-            for c in range(x0 // self._seg_w, (x1 - 1) // self._seg_w + 1):
-                sy, sx = r * self._seg_h, c * self._seg_w
-                a0, a1 = max(y0, sy), min(y1, sy + self._seg_h)
-                b0, b1 = max(x0, sx), min(x1, sx + self._seg_w)
-                for p in range(planes):
-                    seg = self._segment((p * self._rows + r) * self._cols + c)
-                    bands = slice(p, p + 1) if planes > 1 else slice(None)
-                    out[a0 - y0:a1 - y0, b0 - x0:b1 - x0, bands] = seg[a0 - sy:a1 - sy, b0 - sx:b1 - sx]
-        return out
-
-    def _segment(self, index: int) -> np.ndarray:
-        """One decoded tile or strip as rows×cols×samples (cached, least recently used dropped first)."""
-        if index in self._cache:
-            self._cache.move_to_end(index)
-            return self._cache[index]
-        page, fh = self.page, self._tif.filehandle
-        with fh.lock:
-            fh.seek(page.dataoffsets[index])
-            data = fh.read(page.databytecounts[index])
-        try:
-            seg, _, shape = page.decode(data, index, jpegtables=page.jpegtables, jpegheader=page.jpegheader)
-        except Exception as e:  # codecs raise many types; all mean a damaged or unsupported segment
-            raise DataError(f"{self.path}: cannot decode TIFF segment {index} ({_one_line(e)})") from None
-        if seg is None:
-            raise DataError(f"{self.path}: TIFF segment {index} is empty")
-        seg = seg.reshape(shape)[0]
-        self._cache[index] = seg
-        self._cached += seg.nbytes
-        while self._cached > self._cache_bytes and len(self._cache) > 1:
-            self._cached -= self._cache.popitem(last=False)[1].nbytes
-        return seg
-
-    def close(self) -> None:
-        self._cache.clear()
-        self._tif.close()
-
-
-def _one_line(e: BaseException) -> str:
-    return " ".join(str(e).split()) or type(e).__name__
-
-
-def open_raster(path: str | Path, max_pixels: int | None) -> Raster:
-    """A region reader for a TIFF/BigTIFF, PNG or JPEG file; DataError naming the file if it cannot be read."""
+    ``indices`` keeps a palette image's indices as one band (for masks; the reader's ``palette`` then holds
+    the colours) instead of expanding them to colours.
+    """
     path = Path(path)
     if not path.is_file():
         raise DataError(f"{path}: no such image file")
+    if path.stat().st_size == 0:
+        raise DataError(f"{path}: empty file (0 bytes)")
     suffix = path.suffix.lower()
-    if suffix in TIFF_SUFFIXES:
-        return TiffRaster(path, max_pixels)
-    if suffix in PILLOW_SUFFIXES:
-        from fcnkit.data.imageio import read_image
+    if suffix in GDAL_SUFFIXES or _is_tiff(path):
+        from fcnkit.data.gdalraster import GdalRaster
 
-        return ArrayRaster(read_image(path, max_pixels=max_pixels), path=path)
+        return GdalRaster(path, max_pixels, indices=indices)
+    if suffix in PILLOW_SUFFIXES:
+        from fcnkit.data.pillowraster import PillowRaster
+
+        return PillowRaster(path, max_pixels, indices=indices)
     raise DataError(f"{path}: unsupported image type {suffix or '(none)'}; expected one of: "
                     + ", ".join(RASTER_SUFFIXES))
 
 
-# --- writers --------------------------------------------------------------------------------------------
+def alpha_hint(raster: Raster) -> str:
+    """A clause for band-count errors when the file has alpha bands, which readers take as masks, not data."""
+    alpha = getattr(raster, "alpha_bands", [])
+    if not alpha:
+        return ""
+    which = ", ".join(str(b) for b in alpha)
+    return (f" (its band {which} is marked as alpha and read as a validity mask, not data; an R, G, B, NIR image "
+            "written with PHOTOMETRIC=RGB gets its NIR band marked so: rewrite it with PHOTOMETRIC=MINISBLACK)")
 
 
-@dataclass
-class RasterSpec:
-    """How to write one output raster: its pixels come from ``rows(y0, y1)`` (an array of rows y0..y1)."""
-
-    shape: tuple[int, ...]
-    dtype: np.dtype
-    rows: Callable[[int, int], np.ndarray]
-    colormap: np.ndarray | None = None  # 3×256 uint16 palette for a class-id map
-    extratags: list[tuple[int, int, int, Any, bool]] = field(default_factory=list)
+def _is_tiff(path: Path) -> bool:
+    try:
+        with open(path, "rb") as f:
+            return f.read(4) in _TIFF_MAGIC
+    except OSError as e:
+        raise DataError(f"{path}: cannot read ({e.strerror or e})") from None
 
 
-def write_tiff_streamed(path: str | Path, spec: RasterSpec, *, tile: int = 256) -> None:
-    """Write a tiled, deflate-compressed TIFF (BigTIFF above 2 GiB raw) one row of tiles at a time, atomically."""
-    height, width = spec.shape[:2]
-    bands = spec.shape[2] if len(spec.shape) == 3 else 1
-    tile = min(tile, 16 * math.ceil(max(height, width) / 16))
-    tile = max(16, tile // 16 * 16)
+def read_whole(raster: Raster, rows: int = 1024) -> tuple[np.ndarray, np.ndarray | None]:
+    """The whole image and its validity (None: every pixel valid), read a band of rows at a time into one
+    array, after checking that it fits in the memory available."""
+    from fcnkit.memory import available_memory
 
-    def tiles() -> Iterator[np.ndarray]:
-        for y0 in range(0, height, tile):
-            block = np.asarray(spec.rows(y0, min(y0 + tile, height))).reshape(-1, width, bands)
-            for x0 in range(0, width, tile):
-                t = np.zeros((tile, tile, bands), spec.dtype)
-                part = block[:, x0:x0 + tile]
-                t[:part.shape[0], :part.shape[1]] = part
-                yield t if bands > 1 else t[..., 0]
+    h, w, b = raster.shape
+    need, free = h * w * b * raster.dtype.itemsize, available_memory()
+    if need > free:
+        raise DataError(f"{raster.path}: decoding it needs {need / 2**30:.1f} GiB but {free / 2**30:.1f} GiB of "
+                        f"memory is available ({h}x{w} px, {b} bands)")
+    out = np.empty((h, w, b), raster.dtype)
+    valid: np.ndarray | None = None
+    for y0 in range(0, h, rows):
+        y1 = min(y0 + rows, h)
+        out[y0:y1] = raster.read(y0, y1, 0, w)
+        v = raster.valid(y0, y1, 0, w)
+        if v is not None and not v.all():
+            if valid is None:
+                valid = np.ones((h, w), bool)
+            valid[y0:y1] = v
+    return out, valid
 
-    big = height * width * bands * np.dtype(spec.dtype).itemsize > 2**31 - 2**25
-    photometric = "palette" if spec.colormap is not None else ("rgb" if bands == 3 else "minisblack")
-    with atomic_output(path) as tmp, tifffile.TiffWriter(tmp, bigtiff=big) as tif:
-        tif.write(tiles(), shape=spec.shape, dtype=spec.dtype, tile=(tile, tile), compression="zlib",
-                  compressionargs={"level": 1},  # 8x faster than the default level 6, files ~8 % larger
-                  photometric=photometric, colormap=spec.colormap, extratags=spec.extratags,
-                  planarconfig="contig" if bands > 1 else None, metadata=None)
+
+# --- the row store ------------------------------------------------------------------------------------------
 
 
 class RowStore:

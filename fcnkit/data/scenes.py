@@ -19,16 +19,17 @@ Every scene is a pure function of its random generator, so a seed reproduces a d
 from __future__ import annotations
 
 import zlib
-from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
-import tifffile
+from affine import Affine
 from scipy import ndimage, special
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
-from fcnkit.data.imageio import TIFF_TILE, tiff_layout_args, write_label_png, write_tiff
+from fcnkit.data.imageio import write_label_png, write_tiff
+from fcnkit.data.raster import GeoRef
 from fcnkit.errors import ConfigError, DataError
 
 SCENE_CLASSES = ClassTable((
@@ -42,6 +43,9 @@ GROUND, WATER, VEGETATION, ROOF, TRACK = range(5)
 
 GRID_NAME = "Kessmoor local grid (fictional)"
 GRID_ORIGIN = (40000.0, 90000.0)  # easting, northing of the mosaic's top-left corner, metres (invented)
+KESSMOOR_CRS = (f'LOCAL_CS["{GRID_NAME}",LOCAL_DATUM["Kessmoor datum (fictional)",0],UNIT["metre",1],'
+                'AXIS["Easting",EAST],AXIS["Northing",NORTH]]')
+TIFF_TILE = 256
 
 _AREA = 256.0 * 256.0  # object counts below are per 256×256 pixels
 
@@ -334,99 +338,137 @@ def make_scenes(out_dir: str | Path, count: int, size: int, seed: int, nir: bool
     return out
 
 
-def geotiff_tags(pixel_size: float, origin: tuple[float, float] = GRID_ORIGIN,
-                 citation: str = GRID_NAME) -> list[tuple]:
-    """GeoTIFF tags (tifffile extratags) placing pixel (0, 0)'s corner at ``origin`` on a user-defined metric grid.
+def kessmoor_grid(pixel_size: float, origin: tuple[float, float] = GRID_ORIGIN) -> GeoRef:
+    """The fictional Kessmoor local grid (a local engineering CRS in metres, with no place on Earth) with pixel
+    (0, 0)'s corner at ``origin`` and square pixels of ``pixel_size`` metres, north up."""
+    from rasterio.crs import CRS
 
-    Tag and key numbers from the GeoTIFF 1.0 specification (recalled from memory; OGC GeoTIFF 1.1 keeps them):
-    ModelPixelScaleTag 33550, ModelTiepointTag 33922, GeoKeyDirectoryTag 34735, GeoAsciiParamsTag 34737;
-    keys GTModelType 1024 = 1 (projected), GTRasterType 1025 = 1 (pixel is area), GTCitation 1026,
-    ProjectedCSType 3072 = 32767 (user-defined), ProjLinearUnits 3076 = 9001 (metre).
-    """
-    ascii_params = citation + "|"
-    keys = [(1024, 0, 1, 1), (1025, 0, 1, 1), (1026, 34737, len(ascii_params), 0), (3072, 0, 1, 32767),
-            (3076, 0, 1, 9001)]
-    directory = [1, 1, 0, len(keys)] + [v for key in keys for v in key]
-    return [
-        (33550, 12, 3, (pixel_size, pixel_size, 0.0), True),
-        (33922, 12, 6, (0.0, 0.0, 0.0, origin[0], origin[1], 0.0), True),
-        (34735, 3, len(directory), tuple(directory), True),
-        (34737, 2, len(ascii_params) + 1, ascii_params, True),
-    ]
+    return GeoRef(CRS.from_wkt(KESSMOOR_CRS), Affine(pixel_size, 0.0, origin[0], 0.0, -pixel_size, origin[1]))
+
+
+def feather_weights(length: int, start: int, stop: int, margin: int) -> np.ndarray:
+    """Weights along one axis of a block spanning start..stop of an image ``length`` long, over its extended
+    range start − margin .. stop + margin: 1 inside, a linear ramp through 0.5 at each edge shared with a
+    neighbour, none beyond the image. Neighbouring blocks' weights sum to 1 everywhere (a partition of unity)."""
+    x = np.arange(start - margin, stop + margin) + 0.5
+    w = np.ones(x.size)
+    if margin and start > 0:
+        w = np.minimum(w, np.clip((x - (start - margin)) / (2 * margin), 0, 1))
+    if margin and stop < length:
+        w = np.minimum(w, np.clip(((stop + margin) - x) / (2 * margin), 0, 1))
+    w[(x < 0) | (x > length)] = 0
+    return w
 
 
 def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, nir: bool = True,
                  pixel_size: float = 0.5, geo: bool = True, mask_path: str | Path | None = None,
-                 block: int = 1024, distinct: int | None = 16, progress: bool = False) -> Path:
-    """Write a large synthetic image as a tiled BigTIFF, block by block, with bounded memory.
+                 block: int = 1024, distinct: int | None = 16, feather: int = 24,
+                 progress: bool = False) -> Path:
+    """Write a large synthetic image as a tiled GeoTIFF (BigTIFF when large), block by block, with bounded memory.
 
-    The mosaic is a grid of ``block``-sized scenes, like the seamlines of an orthomosaic. Rendering costs
-    about half a second per megapixel, so by default only ``distinct`` scenes are rendered and each block
-    shows one of them under a random flip and quarter turn (``distinct=None`` renders every block afresh).
-    Memory holds the rendered scenes, one row of blocks (``block`` × width × bands bytes) and the label tiles
-    compressed with Deflate — never the whole image. ``mask_path`` also writes the labels (Deflate-compressed
-    tiled TIFF with the class palette). ``geo`` adds GeoTIFF tags for a fictional metric grid at ``pixel_size``
-    metres per pixel. Everything depends only on ``seed``.
+    The mosaic is a grid of ``block``-sized scenes, like the seamlines of an orthomosaic, and, as orthomosaics
+    do, it feathers its seams: each scene is rendered ``feather`` pixels larger on every side and cross-faded
+    with its neighbours over 2 × ``feather`` pixels around each seamline, so no hard line runs through the
+    image (one would look like a fault of the map). The labels keep the seamline itself: each pixel's class is
+    that of the scene whose block holds it. Rendering costs about half a second per megapixel, so by default
+    only ``distinct`` scenes are rendered and each block shows one of them under a random flip and quarter turn
+    (``distinct=None`` renders every block afresh). Memory holds the rendered scenes, one row of blocks (as
+    float32) and the labels compressed with Deflate — never the whole image. ``mask_path`` also writes the
+    labels (a tiled GeoTIFF with the class colour table and names). ``geo`` places both on the fictional
+    Kessmoor grid at ``pixel_size`` metres per pixel. Everything depends only on ``seed``.
     """
-    h, w = (size, size) if isinstance(size, int) else size
-    if h < 8 or w < 8 or block < TIFF_TILE or block % TIFF_TILE or (distinct is not None and distinct < 1):
-        raise ConfigError(f"size = {size}, block = {block}, distinct = {distinct} (expected sides ≥ 8, block a "
-                          f"multiple of {TIFF_TILE}, distinct ≥ 1 or None)")
-    bands = 4 if nir else 3
-    tags = geotiff_tags(pixel_size) if geo else []
-    pool: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    from fcnkit.data.geotiff import RasterSpec, label_spec, write_geotiff
 
-    def scene(by: int, bx: int, bh: int, bw: int) -> tuple[np.ndarray, np.ndarray]:
+    h, w = (size, size) if isinstance(size, int) else size
+    if h < 8 or w < 8 or block < TIFF_TILE or block % TIFF_TILE or (distinct is not None and distinct < 1) \
+            or not 0 <= feather <= block // 4:
+        raise ConfigError(f"size = {size}, block = {block}, distinct = {distinct}, feather = {feather} (expected "
+                          f"sides ≥ 8, block a multiple of {TIFF_TILE}, distinct ≥ 1 or None, feather 0..block/4)")
+    bands = 4 if nir else 3
+    grid = kessmoor_grid(pixel_size) if geo else None
+    pool: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    m = feather
+
+    def scene(by: int, bx: int) -> tuple[np.ndarray, np.ndarray]:
+        """Block (by, bx) rendered ``m`` pixels larger on every side (image, labels)."""
+        bh, bw = min(block, h - by * block), min(block, w - bx * block)
         rng = np.random.default_rng([seed, by, bx])
         if distinct is None:
-            return render_scene((bh, bw), rng, nir)
+            return render_scene((bh + 2 * m, bw + 2 * m), rng, nir)
         k = int(rng.integers(distinct))
         if k not in pool:
-            pool[k] = render_scene(block, np.random.default_rng([seed, k]), nir)
+            pool[k] = render_scene(block + 2 * m, np.random.default_rng([seed, k]), nir)
         turns, flip = int(rng.integers(4)), bool(rng.integers(2))
         img, lab = (np.rot90(a, turns) for a in pool[k])
         if flip:
             img, lab = img[:, ::-1], lab[:, ::-1]
-        return img[:bh, :bw], lab[:bh, :bw]
+        return img[:bh + 2 * m, :bw + 2 * m], lab[:bh + 2 * m, :bw + 2 * m]
 
-    mask_tiles: list[bytes] = []
-    rows = range(0, h, block)
+    stripe: dict[str, Any] = {"top": -1}
+    label_rows: list[bytes] = []  # each row of blocks' labels, Deflate-compressed
+    rows_of_blocks, cols_of_blocks = -(-h // block), -(-w // block)
+    bar = None
     if progress:
         from tqdm import tqdm
 
-        rows = tqdm(rows, desc="mosaic", unit="block row")
+        bar = tqdm(total=rows_of_blocks, desc="mosaic", unit="block row")
 
-    def image_tiles() -> Iterator[np.ndarray]:
-        for by in rows:
-            bh = min(block, h - by)
-            stripe = np.empty((bh, w, bands), np.uint8)
-            labels = np.empty((bh, w), np.uint8)
-            for bx in range(0, w, block):
-                stripe[:, bx:bx + block], labels[:, bx:bx + block] = scene(by // block, bx // block, bh,
-                                                                            min(block, w - bx))
-            for ty in range(0, bh, TIFF_TILE):
-                for tx in range(0, w, TIFF_TILE):
-                    if mask_path is not None:  # before the yield: the writer stops pulling after the last tile
-                        mask_tiles.append(zlib.compress(_full_tile(labels[ty:ty + TIFF_TILE, tx:tx + TIFF_TILE])))
-                    yield _full_tile(stripe[ty:ty + TIFF_TILE, tx:tx + TIFF_TILE])
+    def blend(top: int, bh: int) -> tuple[np.ndarray, np.ndarray]:
+        """Rows top..top+bh, one block column at a time: every block that reaches them, weighted (image), and
+        the labels of the blocks that hold them."""
+        out = np.empty((bh, w, bands), np.uint8)
+        lab = np.empty((bh, w), np.uint8)
+        own = top // block
+        for cx in range(cols_of_blocks):
+            X0, X1 = cx * block, min(cx * block + block, w)
+            acc = np.zeros((bh, X1 - X0, bands), np.float32)
+            for by in range(max(0, own - 1), min(rows_of_blocks, own + 2)):
+                y0, y1 = by * block, min(by * block + block, h)
+                a0, a1 = max(y0 - m, top), min(y1 + m, top + bh)  # stripe rows this block reaches
+                if a1 <= a0:
+                    continue
+                wy = feather_weights(h, y0, y1, m)[a0 - (y0 - m):a1 - (y0 - m)]
+                for bx in range(max(0, cx - 1), min(cols_of_blocks, cx + 2)):
+                    x0, x1 = bx * block, min(bx * block + block, w)
+                    c0, c1 = max(x0 - m, X0), min(x1 + m, X1)  # this block column's pixels it reaches
+                    if c1 <= c0:
+                        continue
+                    img, blk = scene(by, bx)
+                    wx = feather_weights(w, x0, x1, m)[c0 - (x0 - m):c1 - (x0 - m)]
+                    weight = np.outer(wy, wx).astype(np.float32)[..., None]
+                    acc[a0 - top:a1 - top, c0 - X0:c1 - X0] += img[a0 - (y0 - m):a1 - (y0 - m),
+                                                                   c0 - (x0 - m):c1 - (x0 - m)] * weight
+                    if by == own and bx == cx:
+                        lab[:, X0:X1] = blk[m:m + bh, m:m + X1 - X0]
+            out[:, X0:X1] = np.clip(np.rint(acc), 0, 255)
+        return out, lab
+
+    def image_rows(y0: int, y1: int) -> np.ndarray:
+        top = y0 // block * block
+        if stripe["top"] != top:
+            img, lab = blend(top, min(block, h - top))
+            stripe.update(top=top, image=img)
+            if mask_path is not None:
+                label_rows.append(zlib.compress(lab.tobytes(), 1))
+            if bar is not None:
+                bar.update()
+        return stripe["image"][y0 - top:y1 - top]
+
+    def mask_rows(y0: int, y1: int) -> np.ndarray:
+        top = y0 // block * block
+        if stripe.get("mask_top") != top:
+            bh = min(block, h - top)
+            stripe.update(mask_top=top, mask=np.frombuffer(zlib.decompress(label_rows[top // block]),
+                                                           np.uint8).reshape(bh, w))
+        return stripe["mask"][y0 - top:y1 - top]
 
     path = Path(path)
-    layout = tiff_layout_args((h, w, bands), np.uint8) | {"tile": (TIFF_TILE, TIFF_TILE)}
-    with atomic_output(path) as tmp:
-        tifffile.imwrite(tmp, image_tiles(), shape=(h, w, bands), dtype=np.uint8, bigtiff=True, extratags=tags,
-                         **layout)
+    try:
+        write_geotiff(path, RasterSpec((h, w, bands), np.dtype(np.uint8), image_rows), grid, cog=False,
+                      compress=None, block=TIFF_TILE)
+    finally:
+        if bar is not None:
+            bar.close()
     if mask_path is not None:
-        colormap = np.array(SCENE_CLASSES.palette(), np.uint16).reshape(256, 3).T * 257
-        with atomic_output(mask_path) as tmp:
-            tifffile.imwrite(tmp, iter(mask_tiles), shape=(h, w), dtype=np.uint8, bigtiff=True, extratags=tags,
-                             tile=(TIFF_TILE, TIFF_TILE), compression="zlib", photometric="palette",
-                             colormap=colormap)
+        write_geotiff(mask_path, label_spec(SCENE_CLASSES, (h, w), mask_rows), grid, cog=False, block=TIFF_TILE)
     return path
-
-
-def _full_tile(a: np.ndarray) -> np.ndarray:
-    """A TIFF tile must be full-sized: pad the right and bottom edges with zeros."""
-    if a.shape[0] == TIFF_TILE and a.shape[1] == TIFF_TILE:
-        return np.ascontiguousarray(a)
-    pad = [(0, TIFF_TILE - a.shape[0]), (0, TIFF_TILE - a.shape[1])] + [(0, 0)] * (a.ndim - 2)
-    return np.pad(a, pad)

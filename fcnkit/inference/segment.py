@@ -6,8 +6,9 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -17,6 +18,9 @@ from fcnkit.errors import ConfigError
 from fcnkit.inference.engines import Engine, make_engine
 from fcnkit.inference.scan import stream_scores
 from fcnkit.model import Model
+
+if TYPE_CHECKING:
+    from fcnkit.outputs import OutputOptions
 
 IN_MEMORY_PIXELS = 4_000_000  # segment keeps the 8-bit maps of smaller images in memory, of larger ones on disk
 
@@ -34,6 +38,8 @@ class SegmentResult:
     paths: dict[str, Path]
     areas: list[dict]
     size: tuple[int, int] = (0, 0)  # height, width
+    nodata_pixels: int = 0  # pixels the input marks as nodata, left out of every output and of the areas
+    notes: list[str] = field(default_factory=list)  # one line each: nodata met, areas unknown
 
 
 def _prepare_folder(out_dir: Path) -> None:
@@ -52,13 +58,15 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
                   window: str | None = None, exact: bool = False,
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
                   max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
-                  engine: Engine | str = "torch", preview: int = 1024,
+                  engine: Engine | str = "torch", preview: int = 1024, outputs: OutputOptions | None = None,
                   note: Callable[[str], None] | None = None) -> SegmentResult:
-    """Map one image file (PNG, JPEG, TIFF/BigTIFF of any size) into ``out_dir``.
+    """Map one image file (PNG, JPEG, or any GeoTIFF GDAL reads, of any size) into ``out_dir``.
 
     ``model_or_path`` is a :class:`~fcnkit.model.Model` or a model file. Writes
-    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG, or TIFF for TIFF inputs and large images),
-    ``STEM.overlay`` and ``STEM.areas.csv``/``.json``. Class scores stream from the tiles straight into the
+    ``STEM.labels``, ``STEM.confidence``, ``STEM.uncertainty`` (PNG for PNG/JPEG inputs up to 50 MP, else
+    GeoTIFF on the input's grid; see :mod:`fcnkit.outputs`), ``STEM.overlay`` and ``STEM.areas.csv``/``.json``
+    (and ``STEM.polygons`` when ``outputs`` asks for them; see :class:`fcnkit.outputs.OutputOptions`). Class
+    scores stream from the scan straight into the
     8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
     there and only then moved to its final name, so a run that is stopped leaves no output at all for the image
     rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan).
@@ -66,7 +74,8 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     import shutil
     import tempfile
 
-    from fcnkit.data.raster import open_raster
+    from fcnkit.data.raster import alpha_hint, open_raster
+    from fcnkit.errors import DataError
     from fcnkit.outputs import write_outputs
 
     if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
@@ -77,7 +86,10 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     raster = open_raster(image_path, max_pixels)
     work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
     try:
-        height, width, _ = raster.shape
+        height, width, bands = raster.shape
+        if bands != model.bands:
+            raise DataError(f"{image_path}: has {bands} bands but the model expects {model.bands}" + alpha_hint(raster))
+        raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean: neutral inputs
         scores = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
                                exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
                                desc=image_path.name, echo=note)
@@ -85,13 +97,13 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
         classes = model.classes or ClassTable.generic(model.num_classes)
-        paths, areas = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, classes,
-                                     done, image_path.stem, work=work if large else None, pixel_size=pixel_size,
-                                     preview=preview)
-        final = {k: out_dir / p.name for k, p in paths.items()}
-        for k, p in paths.items():  # renames within one file system: each is atomic, all follow at once
+        written = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, classes, done,
+                                image_path.stem, work=work if large else None, pixel_size=pixel_size,
+                                preview=preview, options=outputs)
+        final = {k: out_dir / p.name for k, p in written.paths.items()}
+        for k, p in written.paths.items():  # renames within one file system: each is atomic, all follow at once
             p.replace(final[k])
-        return SegmentResult(final, areas, (height, width))
+        return SegmentResult(final, written.areas, (height, width), written.nodata_pixels, written.notes)
     finally:
         raster.close()
         shutil.rmtree(work, ignore_errors=True)
@@ -160,6 +172,9 @@ def segment_images(model_or_path: Model | str | Path, inputs: Sequence[str | Pat
         if echo is not None:
             h, w = res.size
             echo(f"{path}: {w}x{h} mapped in {time.perf_counter() - start:.1f} s -> {res.paths['labels']}")
+        for text in res.notes:
+            if note is not None:
+                note(f"{path}: {text}")
         results.append(res)
     return results
 
