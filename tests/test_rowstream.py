@@ -85,6 +85,28 @@ def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
     assert sum(b.shape[1] for _, b in stream) + first.shape[1] == 4000
 
 
+def test_streaming_survives_torch_fx_tracing_in_another_thread():
+    # Bug fix: torch.fx patches every module call of the process while it traces; worker threads that called
+    # point-wise modules (batch norm, activations) then failed with "module is not installed as a submodule"
+    # when the caller traced a net (e.g. to read a model's geometry) between two bands.
+    from torch import fx
+
+    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8, "norm": "batch"}})
+    net = as_model(randomise_statistics(build_model(cfg), 0))
+    other = nn.Sequential(*[nn.Sequential(nn.Conv2d(2, 2, 1), nn.ReLU()) for _ in range(20)])
+    img = np.random.default_rng(0).random((600, 32, 1)).astype(np.float32)
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)  # two workers
+    try:
+        bands = []
+        for _, band in RowStreamer(net).stream(ArrayRaster(img), logits=True, rows=8):
+            fx.symbolic_trace(other)
+            bands.append(band.numpy())
+    finally:
+        torch.set_num_threads(before)
+    np.testing.assert_allclose(np.concatenate(bands, axis=1), whole_image(net, img), atol=1e-4, rtol=0)
+
+
 def test_auto_scan_streams_when_it_can_and_says_when_it_does_not():
     net = as_model(build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4],
                                                            "min_size": 8}})))
@@ -178,6 +200,31 @@ def test_concatenation_convolution_equals_torch(parts, relu, seed):
         got = concat_conv(xs, list(torch.split(w, parts, dim=1)), b, (1, 1), (0, 1), (1, 1), relu)
         # the parts' sums are added in another order than one convolution adds them: a few float32 ulps
         torch.testing.assert_close(got, ref, rtol=1e-5, atol=1e-5)
+
+
+@settings(max_examples=60, deadline=None)
+@given(cin=st.integers(1, 4), cout=st.integers(1, 4), s=st.tuples(st.integers(1, 4), st.integers(1, 4)),
+       extra=st.tuples(st.integers(0, 5), st.integers(0, 5)), h=st.integers(1, 6), w=st.integers(1, 6),
+       bias=st.booleans(), channels_last=st.booleans(), crop=st.tuples(*[st.floats(0, 1)] * 4),
+       seed=st.integers(0, 100))
+def test_transposed_convolution_by_phases_equals_torch(cin, cout, s, extra, h, w, bias, channels_last, crop, seed):
+    # Reference: F.conv_transpose2d of torch (no padding), cropped to any window of rows and columns; kernels
+    # from the stride up to stride + 5 (FCN up-sampling uses kernel 2 x stride), any strides per axis.
+    from fcnkit.inference.rowstream import ONEDNN, phase_weight, transposed_by_phases
+
+    if not ONEDNN:
+        pytest.skip("this torch build has no fused oneDNN convolution")
+    k = (s[0] + extra[0], s[1] + extra[1])
+    g = torch.Generator().manual_seed(seed)
+    weight, b = torch.randn(cin, cout, *k, generator=g), torch.randn(cout, generator=g) if bias else None
+    x = torch.randn(1, cin, h, w, generator=g).contiguous(memory_format=torch.channels_last)
+    ref = F.conv_transpose2d(x, weight, b, s)
+    (r0, r1), (c0, c1) = [(min(ends), max(ends) + 1) for ends in
+                          [[int(f * (n - 1)) for f in pair] for pair, n in zip((crop[:2], crop[2:]), ref.shape[2:],
+                                                                               strict=True)]]
+    got = transposed_by_phases(x, phase_weight(weight, s, channels_last), b, s, k, (r0, r1), (c0, c1),
+                               channels_last)
+    torch.testing.assert_close(got, ref[:, :, r0:r1, c0:c1], rtol=0, atol=1e-5)
 
 
 def test_prepared_nets_are_rebuilt_when_the_weights_change():

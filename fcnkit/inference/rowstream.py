@@ -223,21 +223,82 @@ class _Window(_Local):
         return self.fn(xs)
 
 
+def phase_weight(weight: torch.Tensor, stride: tuple[int, int], channels_last: bool) -> torch.Tensor:
+    """The convolution weight that computes a transposed convolution (weight C_in×C_out×kh×kw, stride sh×sw, no
+    groups) one output phase per channel: with J = ⌈k/s⌉ taps, output row s·q + r is Σ_j x[q − j]·w[s·j + r]
+    (j < J, w zero past k), a correlation over rows q − J + 1 … q. Channels are ordered (c, rh, rw) for NCHW
+    output, (rh, rw, c) for channels-last output, so :func:`transposed_by_phases` moves whole runs of memory."""
+    cin, cout, kh, kw = weight.shape
+    (sh, sw), jh, jw = stride, -(-kh // stride[0]), -(-kw // stride[1])
+    w = weight.new_zeros(cin, cout, jh * sh, jw * sw)
+    w[:, :, :kh, :kw] = weight
+    w = w.view(cin, cout, jh, sh, jw, sw).flip(2, 4)  # ci, co, uh, rh, uw, rw (u: tap of the correlation)
+    order = (3, 5, 1, 0, 2, 4) if channels_last else (1, 3, 5, 0, 2, 4)
+    return w.permute(order).reshape(cout * sh * sw, cin, jh, jw).contiguous()
+
+
+def transposed_by_phases(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int],
+                         kernel: tuple[int, int], rows: tuple[int, int], cols: tuple[int, int],
+                         channels_last: bool) -> torch.Tensor:
+    """Rows ``rows`` and columns ``cols`` of ``F.conv_transpose2d(x, w, bias, stride)`` (no padding: crop for
+    it) from ``weight`` = :func:`phase_weight` of w: one convolution at the input's resolution, every output
+    phase a channel, then the phases interleaved into rows and columns (sub-pixel convolution). Equal to the
+    transposed convolution up to the order of float32 sums, and 1.3–2.4× faster than torch's on channels-last
+    FCN up-sampling (measured for kernel 2s, stride 2 to 32, 3–5 classes). Output NCHW or channels-last."""
+    (sh, sw), (kh, kw) = stride, kernel
+    jh, jw = -(-kh // sh), -(-kw // sw)
+    n, _, h, w = x.shape
+    c = weight.shape[0] // (sh * sw)
+    q0, q1 = rows[0] // sh, -(-rows[1] // sh)  # correlation rows covering the output rows asked for
+    p0, p1 = cols[0] // sw, -(-cols[1] // sw)
+    # input rows q0 − J + 1 … q1 − 1, zero outside the input: the correlation's padding
+    pad = [max(0, jh - 1 - q0), max(0, q1 - h)]
+    x = x[:, :, max(0, q0 - jh + 1):min(h, q1)]
+    if any(pad):
+        x = F.pad(x, (0, 0, *pad)).contiguous(memory_format=torch.channels_last)
+    bias = None if bias is None else bias.repeat(sh * sw) if channels_last else bias.repeat_interleave(sh * sw)
+    y = onednn_conv(x, weight, bias, (1, 1), (0, jw - 1), (1, 1), 1, False)
+    y = y[:, :, :, p0:p1].permute(0, 2, 3, 1)  # n, q, p, phases (a view of channels-last memory)
+    qn, pn = q1 - q0, p1 - p0
+    if channels_last:
+        out = torch.empty(n, qn, sh, pn, sw, c, dtype=y.dtype)
+        out.copy_(y.reshape(n, qn, pn, sh, sw, c).permute(0, 1, 3, 2, 4, 5))
+        out = out.view(n, qn * sh, pn * sw, c).permute(0, 3, 1, 2)
+    else:
+        out = torch.empty(n, c, qn, sh, pn, sw, dtype=y.dtype)
+        out.copy_(y.reshape(n, qn, pn, c, sh, sw).permute(0, 3, 1, 4, 2, 5))
+        out = out.view(n, c, qn * sh, pn * sw)
+    r, k = rows[0] - q0 * sh, cols[0] - p0 * sw
+    return out[:, :, r:r + rows[1] - rows[0], k:k + cols[1] - cols[0]]
+
+
 class _Transposed(_Local):
-    """Transposed convolution (kernel k ≥ stride s, padding p along rows), computed in float32: output row o
-    receives input rows ⌈(o + p − k + 1)/s⌉ … ⌊(o + p)/s⌋."""
+    """Transposed convolution (kernel k ≥ stride s, padding p along rows), computed in float32 by phases
+    (:func:`transposed_by_phases`): output row o receives input rows ⌈(o + p − k + 1)/s⌉ … ⌊(o + p)/s⌋. Its
+    output is NCHW when it is the net's last layer (``nchw``: what the class scores leave in), else
+    channels-last."""
 
     MIN_ROWS = 1 << 62  # one call per band: up-sampling inputs are narrow score maps, cheap to copy
 
-    def __init__(self, m: nn.ConvTranspose2d) -> None:
+    def __init__(self, m: nn.ConvTranspose2d, nchw: bool = False) -> None:
         super().__init__()
-        (self.k, _), (self.s, _), (self.p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.padding)
+        (self.k, kw), (self.s, sw), (self.p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.padding)
         (self.extra, opw), (d, dw) = _pair(m.output_padding), _pair(m.dilation)
         if d != 1 or dw != 1 or self.k < self.s or self.extra > self.p:
             raise NotStreamable("a transposed convolution with dilation, kernel < stride or output padding > "
                                 "padding cannot be streamed")
-        self.fn = lambda x: F.conv_transpose2d(x, m.weight, m.bias, (self.s, m.stride[1]), (0, pw), (0, opw),
-                                               m.groups)
+        if m.groups == 1 and opw <= pw and ONEDNN:
+            weight = phase_weight(m.weight.detach().float(), (self.s, sw), channels_last=not nchw)
+            bias = None if m.bias is None else m.bias.detach().float()
+
+            def fn(x: torch.Tensor, r0: int, r1: int) -> torch.Tensor:
+                cols = (pw, (x.shape[3] - 1) * sw - pw + kw + opw)
+                return transposed_by_phases(x, weight, bias, (self.s, sw), (self.k, kw), (r0, r1), cols, not nchw)
+        else:
+            def fn(x: torch.Tensor, r0: int, r1: int) -> torch.Tensor:
+                y = F.conv_transpose2d(x, m.weight, m.bias, (self.s, sw), (0, pw), (0, opw), m.groups)[:, :, r0:r1]
+                return y.contiguous() if nchw else y
+        self.fn = fn
 
     def stop(self, end, last):
         return (end - 1) * self.s - 2 * self.p + self.k + self.extra if last else end * self.s - self.p
@@ -250,10 +311,9 @@ class _Transposed(_Local):
         return o0, self.stop(b, last and b == end)
 
     def compute(self, xs, a, o0, o1):
+        base = a * self.s - self.p  # output row of the first row of the unpadded transposed convolution
         with torch.autocast("cpu", enabled=False):  # bf16 transposed convolutions are slow on CPUs
-            y = self.fn(xs[0].float())
-        base = a * self.s - self.p
-        return y[:, :, o0 - base:o1 - base]
+            return self.fn(xs[0].float(), o0 - base, o1 - base)
 
 
 class _Interpolate(_Local):
@@ -309,6 +369,18 @@ _POINTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.GELU, nn.SiLU, nn.Sigmoid, nn.
               nn.Dropout, nn.Dropout2d, nn.Identity, nn.BatchNorm2d)
 
 
+def _pointwise(m: nn.Module) -> Callable[[torch.Tensor], torch.Tensor]:
+    """A point-wise module's function in inference, reading nothing from the module when it runs: worker
+    threads must not call modules, since torch.fx, tracing any net in another thread meanwhile, patches every
+    module call and attribute lookup of the process."""
+    if isinstance(m, nn.BatchNorm2d):
+        mean, var, weight, bias, eps = m.running_mean, m.running_var, m.weight, m.bias, m.eps
+        return lambda x: F.batch_norm(x, mean, var, weight, bias, False, 0.0, eps)
+    if isinstance(m, (nn.Dropout, nn.Dropout2d, nn.Identity)):
+        return lambda x: x
+    return type(m).forward.__get__(m)  # activations: their settings are plain attributes, found without lookups
+
+
 ONEDNN = hasattr(torch.ops.mkldnn, "_convolution_pointwise") and torch.backends.mkldnn.is_available()
 
 
@@ -355,9 +427,10 @@ def block_max(x: torch.Tensor, k: int) -> torch.Tensor:
     return out
 
 
-def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: bool = False) -> _Op:
+def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: bool = False,
+               last: bool = False) -> _Op:
     """The op of one module; ``relu``: a Conv2d also applies the ReLU that follows it (by oneDNN); ``onednn``:
-    convolutions run by oneDNN (:func:`onednn_conv`)."""
+    convolutions run by oneDNN (:func:`onednn_conv`); ``last``: its output is the net's."""
     if isinstance(m, nn.Conv2d):
         if m.padding_mode != "zeros" or isinstance(m.padding, str):
             raise NotStreamable(f"{name}: convolution padding {m.padding!r} ({m.padding_mode}) cannot be streamed")
@@ -375,13 +448,15 @@ def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: 
             return _Window(lambda xs: block_max(xs[0], k), k, s, d, p, -math.inf)
         return _Window(lambda xs: F.max_pool2d(xs[0], (k, kw), (s, sw), (0, pw), (d, dw)), k, s, d, p, -math.inf)
     if isinstance(m, nn.ConvTranspose2d):
-        return _Transposed(m)
+        return _Transposed(m, nchw=last)
     if isinstance(m, nn.Upsample) and m.mode == "bilinear" and not m.align_corners and m.scale_factor is not None:
         f = m.scale_factor
         if isinstance(f, (int, float)) and float(f).is_integer():
             return _Interpolate(int(f))
+    if isinstance(m, nn.BatchNorm2d) and m.running_mean is None:
+        raise NotStreamable(f"{name}: batch norm without running statistics normalises by the whole image")
     if isinstance(m, _POINTWISE):
-        return _Pointwise(m, copy)
+        return _Pointwise(_pointwise(m), copy)
     raise NotStreamable(f"{name}: layer type {type(m).__name__} cannot be streamed in rows")
 
 
@@ -458,7 +533,7 @@ class RowStreamer:
                     op = self._concat_conv(modules[str(node.target)], ins, relu=node in fused)
                 elif node.op == "call_module":
                     op = _module_op(modules[str(node.target)], str(node.target), copy, relu=node in fused,
-                                    onednn=self._onednn)
+                                    onednn=self._onednn, last=all(u.op == "output" for u in node.users))
                 elif node.op == "call_function":
                     op = _function_op(node, len(ins), copy)
                 else:
@@ -533,6 +608,9 @@ class RowStreamer:
         rows = rows or self.band_rows(width)
         left, right, bottom = p.before, p.after(width), p.after(height)
         mean, std = self._normalisation()
+        # one value per band of a row: a row vector the width of the image, so numpy's loops run over whole
+        # rows (broadcasting over the last axis of B values runs about 14x slower)
+        mean, std = np.tile(mean, width), np.tile(std, width)
         starts = list(range(0, height, rows))
 
         def load(_: list, b: int) -> Rows:
@@ -540,8 +618,9 @@ class RowStreamer:
             bottom padding after the last). Done with numpy: torch would start another team of threads here."""
             y0, y1 = starts[b], min(starts[b] + rows, height)
             a = raster.read(y0, y1, 0, width).astype(np.float32)  # a copy: the reader's array is not ours
-            np.subtract(a, mean, out=a)
-            np.divide(a, std, out=a)
+            flat = a.reshape(y1 - y0, width * bands)
+            np.subtract(flat, mean, out=flat)
+            np.divide(flat, std, out=flat)
             top = p.before if y0 == 0 else 0
             if left or right or top or (y1 == height and bottom):
                 a = np.pad(a, ((top, bottom if y1 == height else 0), (left, right), (0, 0)), mode="edge")
@@ -555,7 +634,7 @@ class RowStreamer:
             """The band's finished output rows, cropped to the image, as probabilities or logits."""
             if not args[0]:
                 return None
-            y = torch.cat(args[0], dim=2).float()
+            y = (args[0][0] if len(args[0]) == 1 else torch.cat(args[0], dim=2)).float()
             cut = min(state["skip"], y.shape[2])
             y, state["skip"] = y[:, :, cut:], state["skip"] - cut
             y = y[:, :, :height - state["done"], p.crop:p.crop + width].contiguous()
