@@ -426,6 +426,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from fcnkit.allocator import reuse_freed_memory
+
+    reuse_freed_memory()  # before any thread allocates (see fcnkit.allocator)
     args = build_parser().parse_args(argv)
     try:
         return int(args.run(args) or 0)
