@@ -21,12 +21,11 @@ import math
 import operator
 import time
 from collections.abc import Callable, Iterator, Sequence
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
 from torch import fx, nn
-from torch.fx.passes.shape_prop import ShapeProp, TensorMetadata
 from torch.nn import functional as F
 
 from fcnkit.data.raster import Raster
@@ -481,6 +480,17 @@ def _function_op(node: fx.Node, inputs: int, copy: bool) -> _Op:
     raise NotStreamable(f"{node.name}: operation {getattr(t, '__name__', t)} cannot be streamed in rows")
 
 
+class _Shapes(fx.Interpreter):
+    """Runs a graph once, noting each node's output shape (torch.fx's ShapeProp does the same but imports the
+    symbolic-shape machinery and sympy on first use: a second of start-up)."""
+
+    def run_node(self, n: fx.Node) -> object:
+        out = super().run_node(n)
+        if isinstance(out, torch.Tensor):
+            n.meta["shape"] = tuple(out.shape)
+        return out
+
+
 class RowStreamer:
     """Runs a model's net over an image in full-width bands of rows (see module notes), fed by the model's own
     normalisation and padding plan.
@@ -505,15 +515,14 @@ class RowStreamer:
         example = torch.zeros(1, model.bands, side, side).contiguous(memory_format=torch.channels_last)
         try:
             with torch.inference_mode():
-                ShapeProp(gm).propagate(example)  # every node's output shape, in node.meta
+                _Shapes(gm).run(example)  # every node's output shape, in node.meta["shape"]
         except Exception as e:  # a layer the tracer accepted but that fails on a small input
             raise NotStreamable(f"model: cannot run its graph on a {side}x{side} input ({' '.join(str(e).split())})"
                                 ) from None
         self._build()  # fail now, not on the first image, if a layer cannot be streamed
         self._bytes_per_pixel = 4 * max(
-            math.prod(node.meta["tensor_meta"].shape[1:]) / (side * side) for node in self._graph.graph.nodes
-            if node.op in ("call_module", "call_function") and node not in self._concats
-            and isinstance(node.meta.get("tensor_meta"), TensorMetadata))
+            math.prod(node.meta["shape"][1:]) / (side * side) for node in self._graph.graph.nodes
+            if node.op in ("call_module", "call_function") and node not in self._concats and "shape" in node.meta)
 
     def _build(self) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
         """Fresh ops (empty row buffers) for every node of the graph, in execution order."""
@@ -584,7 +593,7 @@ class RowStreamer:
     def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool) -> _Window:
         """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`)."""
         (k, _), (s, sw), (d, dw), (p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.dilation), _pair(m.padding)
-        widths = [int(part.meta["tensor_meta"].shape[1]) for part in parts]
+        widths = [int(part.meta["shape"][1]) for part in parts]
         weights = [w.contiguous() for w in torch.split(m.weight.detach(), widths, dim=1)]
         return _Window(lambda xs: concat_conv(xs, weights, m.bias, (s, sw), (0, pw), (d, dw), relu), k, s, d, p, 0.0,
                        inputs=len(parts))
@@ -603,9 +612,10 @@ class RowStreamer:
                 self.model.std.flatten().numpy().astype(np.float32))
 
     def stream(self, raster: Raster, *, logits: bool = False, rows: int | None = None, progress: bool = False,
-               desc: str = "rows") -> Iterator[tuple[int, torch.Tensor]]:
+               desc: str = "rows", post: Callable[[torch.Tensor], Any] | None = None) -> Iterator[tuple[int, Any]]:
         """Class probabilities (the model's, calibrated) or ``logits`` of ``raster``, top to bottom, as (first
-        row, C×h×W float32). The graph's steps run on :func:`workers` threads (:mod:`fcnkit.inference.bandflow`)."""
+        row, C×h×W float32), or as (first row, ``post`` of them) when ``post`` is given: a band's last step, run
+        by the workers too. The graph's steps run on :func:`workers` threads (:mod:`fcnkit.inference.bandflow`)."""
         from tqdm import tqdm
 
         height, width, bands = raster.shape
@@ -635,8 +645,9 @@ class RowStreamer:
 
         state = {"skip": p.crop, "done": 0}  # output rows still to drop before the crop; rows handed on
 
-        def emit(args: list, b: int) -> tuple[int, torch.Tensor] | None:
-            """The band's finished output rows, cropped to the image, as probabilities or logits."""
+        def emit(args: list, b: int) -> tuple[int, int, Any] | None:
+            """The band's finished output rows, cropped to the image, as probabilities or logits (or ``post`` of
+            them): (first row, rows, value)."""
             if not args[0]:
                 return None
             y = (args[0][0] if len(args[0]) == 1 else torch.cat(args[0], dim=2)).float()
@@ -647,7 +658,7 @@ class RowStreamer:
                 return None
             y = y if logits else self.model.probabilities(y)
             state["done"] += y.shape[2]
-            return state["done"] - y.shape[2], y[0]
+            return state["done"] - y.shape[2], y.shape[2], y[0] if post is None else post(y[0])
 
         nodes = self._build()
         index = {self._input: 0} | {node: j + 1 for j, (node, _, _) in enumerate(nodes)}
@@ -677,8 +688,8 @@ class RowStreamer:
             for out in run_bands(steps, deps, len(starts), workers=n, window=BANDS_IN_FLIGHT, setup=setup):
                 if out is None:
                     continue
-                yield out
-                bar.update(out[1].shape[1])
+                yield out[0], out[2]
+                bar.update(out[1])
                 bar.set_postfix_str(f"{state['done'] * width / 1e6 / (time.perf_counter() - t0):.2f} MP/s")
         if state["done"] != height:
             raise RuntimeError(f"row streaming produced {state['done']} of {height} rows")

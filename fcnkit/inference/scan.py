@@ -19,7 +19,7 @@ import tempfile
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -36,6 +36,7 @@ if TYPE_CHECKING:
 SCANS = ("auto", "rows", "whole", "tiles")
 SCORES_IN_MEMORY_BYTES = 256 << 20  # predict_scores returns larger results as a memory map on a file
 WHOLE_BAND = 256  # rows per band handed on by the whole-image scan
+POST_ROWS = 64  # rows per call of a band post-processing step outside row streaming
 
 
 @dataclass(frozen=True)
@@ -110,11 +111,14 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
                   overlap: int | None = None, batch: int | None = None, window: str | None = None,
                   exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
                   engine: str | Engine = "torch", progress: bool = False, desc: str = "mapping",
-                  echo: Callable[[str], None] | None = None) -> Iterator[tuple[int, torch.Tensor]]:
+                  echo: Callable[[str], None] | None = None, post: Callable[[torch.Tensor], Any] | None = None
+                  ) -> Iterator[tuple[int, Any]]:
     """Choose the scan (:func:`choose_scan`) and stream the class probabilities (the model's calibrated ones,
     or ``logits``) of ``raster`` as (first row, C×h×W float32) bands from top to bottom. The checks run at once,
     before the first band is asked for; ``echo`` receives the one-line note of an automatic choice. Tile
     settings left as None take their defaults (512 px tiles, Hann window, a batch of about a quarter megapixel).
+    ``post``, when given, turns each band into what is streamed instead (first row, ``post(band)``): in the row
+    streaming workers, in parallel, or here on bands of at most POST_ROWS rows.
     """
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
@@ -135,11 +139,11 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     if choice.scan == "rows":
         streamer = _streamer(model, bf16)
         check_forward_memory(graph, streamer.band_rows(width), width, 1, bands, factor=factor)  # type: ignore[arg-type]
-        return streamer.stream(raster, logits=logits, progress=progress, desc=desc)
+        return streamer.stream(raster, logits=logits, progress=progress, desc=desc, post=post)
     run = engine if callable(engine) else make_engine(engine, model, bf16)
     if choice.scan == "whole":
         _say(echo, choice)
-        return _whole(run, raster, model, logits)
+        return _posted(_whole(run, raster, model, logits), post)
     plan = plan_tiles(model.geometry, height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
                       window=window or "hann", exact=exact)
     batch = batch or auto_batch(plan)
@@ -147,8 +151,17 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     check_forward_memory(graph, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,  # type: ignore[arg-type]
                          factor=factor)
     _say(echo, choice)
-    return stream_tiles(run, raster, plan, batch=batch, tta=tta, probabilities=None if logits else model.probabilities,
-                        progress=progress, desc=desc)
+    return _posted(stream_tiles(run, raster, plan, batch=batch, tta=tta,
+                                probabilities=None if logits else model.probabilities, progress=progress, desc=desc),
+                   post)
+
+
+def _posted(bands: Iterator[tuple[int, torch.Tensor]], post: Callable[[torch.Tensor], Any] | None
+            ) -> Iterator[tuple[int, Any]]:
+    """``post`` of each band, in bands of at most POST_ROWS rows (its temporaries stay small), or the bands."""
+    if post is None:
+        return bands
+    return ((y0 + k, post(band[:, k:k + POST_ROWS])) for y0, band in bands for k in range(0, band.shape[1], POST_ROWS))
 
 
 def _say(echo: Callable[[str], None] | None, choice: ScanChoice) -> None:
