@@ -30,6 +30,7 @@ import io
 import json
 import math
 from collections.abc import Iterable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -252,28 +253,36 @@ def write_outputs(maps: Iterable[tuple[int, Maps]], raster: Raster, classes: Cla
             area_sums += np.bincount(values[0].ravel(), weights=weights.ravel(), minlength=256)
 
     paths = {k: folder / n for k, n in names.items()}
-    if as_tiff:
-        for kind, spec in _map_specs(classes, (height, width), stores, valid_store if nodata else None).items():
-            write_geotiff(paths[kind], spec, geo, cog=options.cog, work=work)
-    else:
-        for kind, store in stores.items():
-            _write_png(paths[kind], store.whole(), classes.palette() if kind == "labels" else None)
+    # The files are written side by side: GDAL and Pillow compress without holding Python's lock, and the
+    # inference threads are done. The preview is read and drawn meanwhile.
+    with ThreadPoolExecutor(max_workers=max(1, torch.get_num_threads())) as pool:
+        jobs = []
+        if as_tiff:
+            for kind, spec in _map_specs(classes, (height, width), stores, valid_store if nodata else None).items():
+                jobs.append(pool.submit(write_geotiff, paths[kind], spec, geo, cog=options.cog, work=work))
+        else:
+            for kind, store in stores.items():
+                jobs.append(pool.submit(_write_png, paths[kind], store.whole(),
+                                        classes.palette() if kind == "labels" else None))
 
-    step = max(1, math.ceil(max(height, width) / preview))
-    rgb, small, small_valid = _preview(raster, stores["labels"], valid_store if nodata else None, step)
-    picture = overlay(rgb, small, classes.colors)
-    if small_valid is not None:
-        picture[~small_valid] = 0
-    if as_tiff:
-        spec = RasterSpec(picture.shape, np.dtype(np.uint8), lambda a, b: picture[a:b],
-                          None if small_valid is None else (lambda a, b: small_valid[a:b]), rgb=True,
-                          descriptions=("red", "green", "blue"), resampling="average",
-                          tags={"FCNKIT_PRODUCT": "overlay"})
-        write_geotiff(paths["overlay"], spec, None if geo is None else geo.scaled(step), cog=options.cog,
-                      work=work)
-    else:
-        _write_png(paths["overlay"], picture)
-    _write_png(paths["preview"], _preview_card(raster, stores["labels"], small, picture, step, classes, counts, stem))
+        step = max(1, math.ceil(max(height, width) / preview))
+        rgb, small, small_valid = _preview(raster, stores["labels"], valid_store if nodata else None, step)
+        picture = overlay(rgb, small, classes.colors)
+        if small_valid is not None:
+            picture[~small_valid] = 0
+        if as_tiff:
+            spec = RasterSpec(picture.shape, np.dtype(np.uint8), lambda a, b: picture[a:b],
+                              None if small_valid is None else (lambda a, b: small_valid[a:b]), rgb=True,
+                              descriptions=("red", "green", "blue"), resampling="average",
+                              tags={"FCNKIT_PRODUCT": "overlay"})
+            jobs.append(pool.submit(write_geotiff, paths["overlay"], spec, None if geo is None else geo.scaled(step),
+                                    cog=options.cog, work=work))
+        else:
+            jobs.append(pool.submit(_write_png, paths["overlay"], picture))
+        _write_png(paths["preview"], _preview_card(raster, stores["labels"], small, picture, step, classes, counts,
+                                                   stem))
+        for job in jobs:
+            job.result()  # re-raises a writer's error
 
     k = classes.num_classes
     if area.kind == "constant":
