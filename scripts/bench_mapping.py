@@ -15,30 +15,41 @@ Every figure is a ratio of two timings taken in the same round (>1: fcnkit faste
 median and the spread (min–max) over the rounds. Exactness: fcnkit's logits against the float32 whole-image
 forward pass of the unfolded net (max |difference|, share of identical labels).
 
+The process sets the C allocator as ``fcnkit``'s command line does, first thing (:mod:`fcnkit.allocator`).
+
     .venv/bin/python scripts/bench_mapping.py [--side 2048] [--rounds 5] [--threads 2] [--configs demo fcn8s]
 """
 
 from __future__ import annotations
 
-import argparse
-import io
-import statistics
-import time
-import warnings
-from collections.abc import Callable
+import sys
 from pathlib import Path
 
-import numpy as np
-import torch
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # the fcnkit of this checkout
 
-from fcnkit import Model
-from fcnkit.data.raster import ArrayRaster
-from fcnkit.export import write_onnx
-from fcnkit.inference.engines import TorchEngine
-from fcnkit.inference.scan import stream_scores
+from fcnkit.allocator import reuse_freed_memory  # noqa: E402
+
+reuse_freed_memory()  # as the command line does, before any thread allocates
+
+import argparse  # noqa: E402
+import io  # noqa: E402
+import statistics  # noqa: E402
+import time  # noqa: E402
+import warnings  # noqa: E402
+from collections.abc import Callable  # noqa: E402
+
+import numpy as np  # noqa: E402
+import torch  # noqa: E402
+
+from fcnkit import Model  # noqa: E402
+from fcnkit.config import shipped_configs  # noqa: E402
+from fcnkit.data.raster import ArrayRaster  # noqa: E402
+from fcnkit.export import write_onnx  # noqa: E402
+from fcnkit.inference.engines import TorchEngine  # noqa: E402
+from fcnkit.inference.scan import stream_scores  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
-CONFIGS = ("tiny", "demo", "fcn8s", "fcn32s", "unet")
+CONFIGS = tuple(shipped_configs())  # every config that comes with fcnkit
 
 
 def random_model(name: str) -> Model:

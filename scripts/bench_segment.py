@@ -66,7 +66,8 @@ for side, path in zip(sys.argv[3::2], sys.argv[4::2]):
 def run(cmd: list[str]) -> tuple[float, float]:
     """A child process's wall time (s) and peak resident set (GB); raises if it fails."""
     t = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT)
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}  # the fcnkit of this checkout, in both processes
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, cwd=ROOT, env=env)
     _, status, usage = os.wait4(proc.pid, 0)
     seconds = time.perf_counter() - t
     err = proc.stderr.read().decode() if proc.stderr else ""
