@@ -12,11 +12,13 @@ import difflib
 import tomllib
 import types
 import typing
+from collections.abc import Callable
 from dataclasses import MISSING, asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
 from fcnkit.errors import ConfigError
+from fcnkit.inputfiles import require_regular
 
 
 def _opt(default: Any, **rules: Any) -> Any:
@@ -31,7 +33,7 @@ class ModelConfig:
     """The net: encoder stages, 1×1-convolution head, up-sampling and skip fusion."""
 
     bands: int | None = _opt(None, min=1, max=1024)  # None: from the training data
-    classes: int | None = _opt(None, min=2, max=255)  # None: from the training data
+    num_classes: int | None = _opt(None, min=2, max=255)  # None: from the training data
     widths: list[int] = _opt([16, 32, 64, 128], min=1, max=4096)
     blocks: list[int] | None = _opt(None, min=1, max=32)
     strides: list[int] | None = _opt(None, choices=(1, 2, 3, 4))
@@ -125,11 +127,13 @@ def shipped_configs() -> list[str]:
     return sorted(p.stem for p in SHIPPED.glob("*.toml"))
 
 
-def load_config(path: str | Path) -> Config:
-    """Read and validate a TOML config file, or a shipped config by name (e.g. ``demo``)."""
+def load_config(path: str | Path, note: Callable[[str], None] | None = None) -> Config:
+    """Read and validate a TOML config file, or a shipped config by name (e.g. ``demo``). ``note`` receives a
+    one-line remark when the file uses an older spelling of a key."""
     path = Path(path)
     if not path.exists() and path.suffix == "" and len(path.parts) == 1 and (SHIPPED / f"{path}.toml").is_file():
         path = SHIPPED / f"{path}.toml"
+    require_regular(path, ConfigError)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
@@ -145,16 +149,24 @@ def load_config(path: str | Path) -> Config:
     except tomllib.TOMLDecodeError as e:
         detail = " ".join(str(e).split())
         raise ConfigError(f"{path}: not valid TOML ({detail}); expected a TOML config file") from None
+    except RecursionError:
+        raise ConfigError(f"{path}: arrays or tables nested too deeply to read; expected a TOML config file") from None
     try:
-        return config_from_dict(table)
+        return config_from_dict(table, note=(lambda text: note(f"{path}: {text}")) if note else None)
     except ConfigError as e:
         raise ConfigError(f"{path}: {e}") from None
 
 
-def config_from_dict(table: dict[str, Any]) -> Config:
-    """Validate a plain nested dict (as read from TOML or model-file metadata) into a Config."""
+RENAMED = {("model", "classes"): "num_classes"}
+"""Keys renamed since earlier versions, still read: ``model.classes`` was a count beside ``--classes`` files."""
+
+
+def config_from_dict(table: dict[str, Any], note: Callable[[str], None] | None = None) -> Config:
+    """Validate a plain nested dict (as read from TOML or model-file metadata) into a Config; keys of
+    :data:`RENAMED` are read under their new name, with a one-line ``note`` when given."""
     if not isinstance(table, dict):
         raise ConfigError(f"config: expected a table, got {type(table).__name__}")
+    table = _renamed(table, note)
     _reject_unknown(table, _SECTIONS, "")
     sections = {}
     for name, cls in _SECTIONS.items():
@@ -182,6 +194,20 @@ def replace_section(cfg: Config, section: str, **changes: Any) -> Config:
 
 
 # --- validation -------------------------------------------------------------------------------------
+
+
+def _renamed(table: dict[str, Any], note: Callable[[str], None] | None) -> dict[str, Any]:
+    table = dict(table)
+    for (section, old), new in RENAMED.items():
+        sub = table.get(section)
+        if not isinstance(sub, dict) or old not in sub:
+            continue
+        if new in sub:
+            raise ConfigError(f"{section}.{old}: give only {section}.{new} (the new name of the same key)")
+        table[section] = {(new if k == old else k): v for k, v in sub.items()}
+        if note:
+            note(f"{section}.{old} is now spelled {section}.{new}; read as such")
+    return table
 
 
 def _show(v: Any) -> str:

@@ -19,25 +19,28 @@ The ``quick`` plan runs the same steps at toy sizes in seconds (the test suite r
 
 from __future__ import annotations
 
+import json
 import shutil
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import torch
 
+from fcnkit.atomic import write_text_atomic
 from fcnkit.config import Config, load_config, replace_section
 from fcnkit.errors import DataError
+from fcnkit.units import pixel_rate
 
 CONFIG = "demo"  # the shipped config (fcnkit/configs/demo.toml)
 MARKER = ".fcnkit-demo"
 MIN_POLYGON_M2 = 25.0  # class polygons smaller than this (100 pixels of 0.5 m) are left out of the demo's layer
 PARTS = ("scenes", "run", "map", "evaluation.json", "report.html", "mosaic.tif", "mosaic_truth.tif",
          "sample.gpkg", "sample_filled.csv", "assessment.json", "assessment.csv",
-         "mosaic_scores.json")
+         "mosaic_scores.json", "figures.json")
 
 
 @dataclass(frozen=True)
@@ -70,14 +73,18 @@ class DemoResult:
     cpu_seconds: dict[str, float]
 
 
-def prepare(out: Path) -> None:
-    """Create ``out``, or clear the demo's own outputs from an earlier run; refuse any other non-empty folder."""
+def prepare(out: Path, overwrite: bool = False) -> None:
+    """Create ``out``, or with ``overwrite`` clear the demo's own outputs from an earlier run; refuse any other
+    non-empty folder."""
     if out.exists() and not out.is_dir():
         raise DataError(f"{out}: exists and is not a folder (choose another demo output folder)")
     if out.is_dir() and any(out.iterdir()):
         if not (out / MARKER).is_file():
             raise DataError(f"{out}: not empty and not an earlier demo output (choose another folder; "
                             "nothing was changed)")
+        if not overwrite:
+            raise DataError(f"{out}: holds an earlier demo run; refusing to replace it (--overwrite, or "
+                            "overwrite=True in Python, replaces it)")
         for name in PARTS:
             p = out / name
             if p.is_dir():
@@ -85,7 +92,7 @@ def prepare(out: Path) -> None:
             elif p.exists():
                 p.unlink()
     out.mkdir(parents=True, exist_ok=True)
-    (out / MARKER).write_text("made by `fcnkit demo`; the demo clears its own outputs here when re-run\n")
+    (out / MARKER).write_text("made by `fcnkit demo`; `fcnkit demo --overwrite` replaces its outputs here\n")
 
 
 def demo_config(plan: DemoPlan) -> Config:
@@ -171,7 +178,7 @@ def _area_table(areas: list[dict[str, Any]]) -> str:
     head = f"      {'class':<14}{'pixels':>14}{'share':>8}" + (f"{'area m²':>14}{'hectares':>10}" if has_m2 else "")
     lines = [head]
     for a in areas:
-        line = f"      {a['name']:<14}{a['pixels']:>14,}{a['fraction']:>8.1%}"
+        line = f"      {a['name']:<14}{a['pixels']:>14,}{a['share']:>8.1%}"
         if has_m2:
             line += f"{a['area_m2']:>14,.0f}{a['area_m2'] / 1e4:>10.2f}"
         lines.append(line)
@@ -179,19 +186,20 @@ def _area_table(areas: list[dict[str, Any]]) -> str:
 
 
 def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progress: bool = True,
-             echo: Callable[[str], None] = print) -> DemoResult:
+             echo: Callable[[str], None] = print, overwrite: bool = False) -> DemoResult:
     """Run every demo step into ``out_dir`` and print what happened and where each output is."""
     from fcnkit.data.scenes import SCENE_CLASSES, make_scenes, write_mosaic
     from fcnkit.evaluate import evaluate
     from fcnkit.inference.segment import segment_image
     from fcnkit.model import Model
     from fcnkit.outputs import OutputOptions
+    from fcnkit.report import json_safe
     from fcnkit.sampling import assess_sample, draw_sample
 
     plan = QUICK if quick else FULL
     out = Path(out_dir)
     cfg = demo_config(plan)
-    prepare(out)
+    prepare(out, overwrite)
     paths: dict[str, Path] = {}
     figures: dict[str, Any] = {}
     seconds: dict[str, float] = {}
@@ -226,6 +234,8 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
                   progress=progress)
     paths["evaluation"] = ev.paths["json"]
     figures["test"] = {k: ev.scores[k] for k in ("pixel_accuracy", "mean_accuracy", "mean_iou", "fw_iou")}
+    figures["test"]["mean_iou_interval"] = ev.interval
+    figures["test"]["calibration"] = {k: ev.calibration[k] for k in ("temperature", "ece", "ece_uncalibrated")}
     step("evaluate", "\n".join("      " + line for line in ev.table().splitlines()))
 
     side = plan.mosaic_size
@@ -243,8 +253,9 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     label_path = seg.paths["labels"]
     mosaic_scores = _score_map(label_path, paths["mosaic_truth"], SCENE_CLASSES.num_classes, SCENE_CLASSES.ignore)
     figures["mosaic"] = {k: mosaic_scores[k] for k in ("pixel_accuracy", "mean_iou")}
-    figures["mp_per_s"] = side * side / 1e6 / (time.perf_counter() - start - sum(seconds.values()))
-    step("map", f"      {figures['mp_per_s']:.2f} MP/s including writing the outputs; against the mosaic's "
+    map_seconds = time.perf_counter() - start - sum(seconds.values())
+    figures["pixels_per_second"] = side * side / map_seconds
+    step("map", f"      {pixel_rate(side * side, map_seconds)} including writing the outputs; against the mosaic's "
          f"true labels: pixel accuracy {mosaic_scores['pixel_accuracy']:.4f}, mean IoU "
          f"{mosaic_scores['mean_iou']:.4f}\n      class areas:\n{_area_table(seg.areas)}")
     figures["areas"] = seg.areas
@@ -260,9 +271,14 @@ def run_demo(out_dir: str | Path = "fcnkit-demo", *, quick: bool = False, progre
     paths["assessment"], paths["assessment_csv"] = out / "assessment.json", out / "assessment.csv"
     paths["report"] = ev.write_report(out / "report.html", assessment=table)
     figures["assessment"] = table
-    step("assess", _assessment_lines(table, _true_pixels(paths["mosaic_truth"], SCENE_CLASSES.num_classes)))
+    true_pixels = _true_pixels(paths["mosaic_truth"], SCENE_CLASSES.num_classes)
+    figures["true_pixels"] = true_pixels.tolist()
+    step("assess", _assessment_lines(table, true_pixels))
 
     total = sum(seconds.values())
+    figures.update(plan=asdict(plan), epochs=cfg.train.epochs, seconds=seconds, threads=torch.get_num_threads())
+    paths["figures"] = out / "figures.json"  # what scripts/readme_figures.py turns into the README's figures
+    write_text_atomic(paths["figures"], json.dumps(json_safe(figures), indent=1) + "\n")
     echo("")
     echo(f"fcnkit demo finished in {total // 60:.0f} min {total % 60:.0f} s "
          f"({', '.join(f'{k} {v:.0f} s' for k, v in seconds.items())}; CPU time {sum(cpu.values()):.0f} s "

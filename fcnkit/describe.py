@@ -14,6 +14,7 @@ from torch import nn
 from fcnkit import geometry
 from fcnkit.config import Config, ModelConfig
 from fcnkit.geometry import Layer
+from fcnkit.units import si
 
 # What a config that leaves bands and classes to the data is described with.
 DEFAULT_BANDS, DEFAULT_CLASSES = 3, 2
@@ -87,17 +88,11 @@ def describe(cfg: Config | ModelConfig | nn.Module) -> dict[str, Any]:
 
     if isinstance(cfg, (Config, ModelConfig)):
         m = cfg.model if isinstance(cfg, Config) else cfg
-        assumed = {k: v for k, v in (("bands", DEFAULT_BANDS), ("classes", DEFAULT_CLASSES)) if getattr(m, k) is None}
+        defaults = (("bands", DEFAULT_BANDS), ("num_classes", DEFAULT_CLASSES))
+        assumed = {k: v for k, v in defaults if getattr(m, k) is None}
         d = describe_graph(layer_graph(build_model(dataclasses.replace(m, **assumed))))
         return {**d, "assumed": {f"model.{k}": v for k, v in assumed.items()}} if assumed else d
     return describe_graph(layer_graph(cfg))
-
-
-def _si(n: float) -> str:
-    for unit, div in (("G", 1e9), ("M", 1e6), ("k", 1e3)):
-        if abs(n) >= div:
-            return f"{n / div:.2f} {unit}"
-    return f"{n:.0f}"
 
 
 def _global_summary(d: dict[str, Any]) -> str:
@@ -115,7 +110,7 @@ def format_description(d: dict[str, Any]) -> str:
         f"receptive field                {field_text(d['receptive_field'])}",
         f"tile margin for exact tiling   {field_text(d['tile_margin'])}",
         f"parameters                     {d['params']:,}",
-        f"MACs per megapixel             {_si(d['macs_per_megapixel'])}",
+        f"MACs per megapixel             {si(d['macs_per_megapixel'])}",
         f"exact tiling possible          {'yes' if d['exact_tiling'] else 'no: ' + _global_summary(d)}",
     ]
     if d.get("assumed"):
@@ -126,5 +121,5 @@ def format_description(d: dict[str, Any]) -> str:
         for r in d["stages"]:
             rf = "-" if r["receptive_field"] is None else str(r["receptive_field"])
             lines.append(f"{r['part']:<22}{r['stride']:>7}{r['channels']:>10}{rf:>8}{r['params']:>12,}"
-                         f"{_si(r['macs_per_megapixel']):>12}")
+                         f"{si(r['macs_per_megapixel']):>12}")
     return "\n".join(lines)

@@ -6,26 +6,29 @@ report (fcnkit.report).
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from fcnkit.atomic import write_text_atomic
+from fcnkit.atomic import ESCAPES, atomic_output
 from fcnkit.calibration import ReliabilityAccumulator, scaled_softmax
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.dataset import Sample, find_samples, sample_mask
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.raster import open_raster
 from fcnkit.describe import describe
+from fcnkit.destinations import check_outputs, dataset_files
 from fcnkit.errors import ConfigError, DataError
-from fcnkit.export import check_destination
 from fcnkit.inference.engines import make_engine
 from fcnkit.inference.scan import predict_scores
 from fcnkit.inference.tiles import DEFAULT_TILE
+from fcnkit.inputfiles import require_regular
 from fcnkit.metrics import bootstrap_mean_iou, confusion_matrix, segmentation_scores
 from fcnkit.model import Model
 from fcnkit.outputs import normalised_entropy, strided_rgb
@@ -140,7 +143,7 @@ def same_classes(model_classes: ClassTable, data_classes: ClassTable, model: str
 
 
 def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict[str, Any],
-               max_pixels: int | None, progress: bool, notes: list[str],
+               max_pixels: int | None, progress: bool, notes: list[str], note: Callable[[str], None] | None,
                reliability: tuple[ReliabilityAccumulator, ReliabilityAccumulator]) -> tuple[np.ndarray, ImageScore,
                                                                                           Example]:
     """One image's confusion matrix, score and example panels; its confidences are added to ``reliability``
@@ -155,7 +158,8 @@ def _score_one(model: Model, sample: Sample, classes: ClassTable, settings: dict
             raise DataError(f"{sample.image}: has {bands} bands but the model expects {model.bands}")
         mask = sample_mask(sample, classes, raster, max_pixels)  # masks or vector labels; nodata unlabelled
         raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean (unscored)
-        logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, **settings)
+        logits = predict_scores(model, raster, logits=True, progress=progress, echo=notes.append, note=note,
+                                desc=Path(sample.image).name, **settings)
         cm = np.zeros((k, k), np.int64)
         step = max(1, math.ceil(max(h, w) / PANEL_SIDE))
         for y0 in range(0, h, 256):
@@ -178,26 +182,35 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
              report: str | Path | None = None, curves: str | Path | None = None, examples: int = 3,
              scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
              window: str | None = None, exact: bool = False, tta: bool = False, engine: str = "torch",
-             max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True) -> Evaluation:
+             max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True,
+             note: Callable[[str], None] | None = None, overwrite: bool = False) -> Evaluation:
     """Score a model on every image/mask pair of a labelled folder, by the same row streaming or tiled inference
     as ``segment`` (the same ``scan`` and tile settings).
 
-    Writes the scores as JSON to ``json_path`` and an HTML report to ``report`` when given. ``curves`` is a
-    training metrics CSV for the report (default: ``metrics.csv`` beside the model file, when present);
-    ``examples`` the number of worst-scoring images shown side by side.
+    Writes the scores as JSON to ``json_path`` and an HTML report to ``report`` when given (both or neither:
+    they get their final names together, after the work). ``curves`` is a training metrics CSV for the report
+    (default: ``metrics.csv`` beside the model file, when present), read before the work; ``examples`` the number
+    of worst-scoring images shown side by side. ``note`` receives one-line notes, such as images outside the
+    model's training range (default: warnings).
     """
+    from fcnkit.report import read_curves
+
     data_dir = Path(data_dir)
     if examples < 0:
         raise ConfigError(f"examples: {examples} must be >= 0")
-    for out in (json_path, report):
-        if out is not None:
-            check_destination(out, DataError)
+    if curves is not None:
+        require_regular(curves, DataError)
     if curves is not None and not Path(curves).is_file():
         raise DataError(f"{curves}: no such training metrics CSV")
+    path = Path(model) if not isinstance(model, Model) else model.path
     name = str(model) if not isinstance(model, Model) else "model"
+    if curves is None and path is not None and (path.parent / "metrics.csv").is_file():
+        curves = path.parent / "metrics.csv"
+    outputs = [p for p in (json_path, report) if p is not None]
+    check_outputs(outputs, inputs=[path, curves, *dataset_files(data_dir)], overwrite=overwrite, error=DataError)
+    if curves is not None and report is not None:
+        read_curves(curves)  # unreadable: refused now, not after the whole evaluation
     if not isinstance(model, Model):
-        if curves is None and (Path(model).parent / "metrics.csv").is_file():
-            curves = Path(model).parent / "metrics.csv"
         model = Model.load(model)
     samples, classes = find_samples(data_dir)
     same_classes(model.classes, classes, name, data_dir)
@@ -211,7 +224,8 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
     reliability = (ReliabilityAccumulator(), ReliabilityAccumulator())
     per_image = []
     for sample in samples:
-        one, score, example = _score_one(model, sample, classes, settings, max_pixels, progress, notes, reliability)
+        one, score, example = _score_one(model, sample, classes, settings, max_pixels, progress, notes, note,
+                                         reliability)
         cm += one
         per_image.append(one)
         scored.append((score, example))
@@ -229,11 +243,16 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
                                                                                      notes)),
                         examples=worst, description=describe(model.net),
                         curves=Path(curves) if curves else None, kept_epoch=model.extra.get("epoch"))
+    with contextlib.ExitStack() as stack:  # both files complete before either gets its final name
+        if json_path is not None:
+            tmp = stack.enter_context(atomic_output(json_path))
+            tmp.write_bytes((json.dumps(result.to_dict(), indent=1) + "\n").encode("utf-8", ESCAPES))
+        if report is not None:
+            result.write_report(stack.enter_context(atomic_output(report)))
     if json_path is not None:
-        write_text_atomic(json_path, json.dumps(result.to_dict(), indent=1) + "\n")
         result.paths["json"] = Path(json_path)
     if report is not None:
-        result.write_report(report)
+        result.paths["report"] = Path(report)
     return result
 
 

@@ -22,7 +22,8 @@ import numpy as np
 import torch
 from torch import nn
 
-from fcnkit.atomic import atomic_output, partial_path
+from fcnkit.atomic import atomic_output
+from fcnkit.destinations import check_outputs
 from fcnkit.errors import FcnkitError, ModelFileError
 
 if TYPE_CHECKING:
@@ -124,29 +125,15 @@ def _runner(fmt: str, path: Path) -> tuple[Callable[[torch.Tensor], np.ndarray],
     return (lambda x: loaded(x).detach().numpy()), f"torch.jit {torch.__version__}"
 
 
-def check_destination(out: str | Path, error: type[FcnkitError] = ModelFileError) -> None:
-    """Refuse, before any work, an output path whose folder is missing or not writable, or that is a folder."""
-    out = Path(out)
-    folder = out.parent
-    if not folder.is_dir():
-        raise error(f"{out}: cannot write here, folder {folder} does not exist")
-    if out.is_dir():
-        raise error(f"{out}: cannot write here, it is a folder")
-    probe = partial_path(out)
-    try:  # a real file, not os.access: modes do not stop root, read-only file systems stop everyone
-        open(probe, "xb").close()
-    except OSError as e:
-        raise error(f"{out}: cannot write here, folder {folder} is not writable ({e.strerror or e})") from None
-    probe.unlink()
-
-
-def export_model(model: Model, out: str | Path, format: str = "onnx", *, tolerance: float = TOLERANCE) -> ExportCheck:
+def export_model(model: Model, out: str | Path, format: str = "onnx", *, tolerance: float = TOLERANCE,
+                 overwrite: bool = False) -> ExportCheck:
     """Export ``model`` to ``out`` as ONNX or TorchScript, checked against its own forward pass; ModelFileError,
-    leaving nothing at ``out``, when the written file does not match."""
+    leaving nothing at ``out``, when the written file does not match. An existing ``out`` is replaced only
+    with ``overwrite``."""
     if format not in FORMATS:
         raise ModelFileError(f"export format {format!r} is not one of: {', '.join(FORMATS)}")
     out = Path(out)
-    check_destination(out)
+    check_outputs([out], inputs=[model.path], overwrite=overwrite, error=ModelFileError)
     model = model.eval()
     values = model.metadata()
     mean, std, bands = values["mean"], values["std"], model.bands

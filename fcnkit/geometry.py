@@ -308,14 +308,15 @@ class PadPlan:
     The net's coarse outputs sit on a grid of ``factor`` pixels, ``offset`` pixels off the input's origin (0 for
     config-built nets; a converted classifier's window of w pixels at stride s has offset w − s). The input is
     padded (edge pixels repeated) by ``before`` pixels at the top and left, so each coarse output lands on the
-    centre of what it saw, and at the bottom and right to a whole number of cells (at least one); the output
-    is then cropped back to the input's size from ``crop`` on. A padded side is always ``offset`` more than a
-    multiple of ``factor``, so tiles or bands starting on multiples of ``factor`` see the same grid as the
-    whole image.
+    centre of what it saw, and at the bottom and right to a whole number of cells (at least ``cells``: one,
+    unless a layer without padding reads more input than one cell gives); the output is then cropped back to
+    the input's size from ``crop`` on. A padded side is always ``offset`` more than a multiple of ``factor``, so
+    tiles or bands starting on multiples of ``factor`` see the same grid as the whole image.
     """
 
     factor: int = 1
     offset: int = 0
+    cells: int = 1
 
     @property
     def before(self) -> int:
@@ -331,7 +332,7 @@ class PadPlan:
         d, s = self.offset, self.factor
         need = self.before + n  # the input itself,
         need = need + at_least_zero(self.crop + n + d - need)  # an output covering the crop,
-        need = need + at_least_zero(d + s - need)  # at least one whole cell,
+        need = need + at_least_zero(d + self.cells * s - need)  # at least the fewest whole cells the net takes,
         return need + (d - need) % s - n - self.before  # rounded up to the offset plus whole cells
 
     def padded(self, n: int) -> int:
@@ -339,4 +340,5 @@ class PadPlan:
         return self.before + n + self.after(n)
 
     def to_dict(self) -> dict[str, int]:
-        return {"factor": self.factor, "offset": self.offset}
+        """What a model file stores (``cells`` only when more than one)."""
+        return {"factor": self.factor, "offset": self.offset, **({"cells": self.cells} if self.cells > 1 else {})}

@@ -30,6 +30,7 @@ from fcnkit.convert import DENSE_KIND, GROWN_KIND, Conversion, default_normalisa
 from fcnkit.data.classes import ClassTable, load_classes
 from fcnkit.errors import ConfigError, FcnkitError, ModelFileError
 from fcnkit.geometry import PadPlan
+from fcnkit.inputrange import check_stats
 from fcnkit.modelfile import read_model_file, write_model_file
 from fcnkit.nets import PaddedNet, build_model
 from fcnkit.nets.graph import NetGeometry, net_geometry
@@ -88,7 +89,7 @@ class Model(nn.Module):
     def __init__(self, net: PaddedNet | None, *, classes: ClassTable | None, mean: Sequence[float] | None = None,
                  std: Sequence[float] | None = None, kind: str = ENCODER_DECODER,
                  config: dict[str, Any] | None = None, extra: dict[str, Any] | None = None,
-                 temperature: float = 1.0) -> None:
+                 temperature: float = 1.0, input_stats: dict[str, Any] | None = None) -> None:
         super().__init__()
         self.net = net
         self.classes = classes
@@ -96,6 +97,7 @@ class Model(nn.Module):
         self.config = dict(config or {})
         self.extra = dict(extra or {})
         self.temperature = float(temperature)
+        self.input_stats = input_stats  # per-band pixel statistics of the training data (fcnkit.inputrange)
         self.register_buffer("mean", None, persistent=False)
         self.register_buffer("std", None, persistent=False)
         if mean is not None and std is not None:
@@ -114,21 +116,21 @@ class Model(nn.Module):
         cfg = _as_config(config)
         m = cfg.model
         table = resolve_classes(classes) if classes is not None else None
-        for key, value in (("bands", bands), ("classes", table.num_classes if table else None)):
+        for key, value in (("bands", bands), ("num_classes", table.num_classes if table else None)):
             set_in_config = getattr(m, key)
             if value is not None and set_in_config is not None and value != set_in_config:
                 raise ConfigError(f"model.{key}: the config says {set_in_config} but {value} were given")
-        m = dataclasses.replace(m, bands=bands or m.bands, classes=table.num_classes if table else m.classes)
+        m = dataclasses.replace(m, bands=bands or m.bands, num_classes=table.num_classes if table else m.num_classes)
         cfg = dataclasses.replace(cfg, model=m)
         model = cls(None, classes=table, config=config_to_dict(cfg))
-        if m.bands is not None and m.classes is not None:
-            model._make_net(m.bands, m.classes)
+        if m.bands is not None and m.num_classes is not None:
+            model._make_net(m.bands, m.num_classes)
         return model
 
     def _make_net(self, bands: int, classes: int) -> None:
         """Build the net of this (encoder–decoder) model once its band and class counts are known."""
         cfg = config_from_dict(self.config)
-        m = dataclasses.replace(cfg.model, bands=bands, classes=classes)
+        m = dataclasses.replace(cfg.model, bands=bands, num_classes=classes)
         self.config = config_to_dict(dataclasses.replace(cfg, model=m))
         with torch.random.fork_rng():  # initial weights from the config's seed: the same config, the same net
             torch.manual_seed(cfg.train.seed)
@@ -157,7 +159,7 @@ class Model(nn.Module):
         if conversion.certificate is not None:
             extra["certificate"] = conversion.certificate.to_dict()
         return cls(net, classes=table, mean=mean, std=std, kind=conversion.kind,
-                   config={"model": {"bands": net.bands, "classes": net.classes}}, extra=extra)
+                   config={"model": {"bands": net.bands, "num_classes": net.classes}}, extra=extra)
 
     # --- what it is ---------------------------------------------------------------------------------------
 
@@ -262,7 +264,7 @@ class Model(nn.Module):
         classes = self.classes or ClassTable.generic(self.num_classes)
         return {"kind": self.kind, "version": __version__, "config": self.config, "classes": classes.to_dict(),
                 "mean": norm[0], "std": norm[1], "padding": self.plan.to_dict(), "temperature": self.temperature,
-                "extra": self.extra}
+                "extra": self.extra, **({"input_stats": self.input_stats} if self.input_stats is not None else {})}
 
     def save(self, path: str | Path) -> Path:
         """Write the model to one safetensors file (atomically)."""
@@ -276,33 +278,35 @@ class Model(nn.Module):
         source is a user's own code (which fcnkit never imports)."""
         tensors, values = read_model_file(path)
         where = str(path)
-        kind, classes, mean, std, plan, temperature = _check_values(values, where)
+        kind, classes, mean, std, padding, temperature = _check_values(values, where)
         net = BUILDERS[kind](values, where, classifier)
-        if plan is not None and net.plan != plan:
-            raise ModelFileError(f"{where}: metadata padding {plan.to_dict()} differs from its net's "
-                                 f"{net.plan.to_dict()}")
+        own = {"cells": 1, **net.plan.to_dict()}  # files from before cells were stored: their net's own
+        if padding is not None and any(own[k] != v for k, v in padding.items()):
+            raise ModelFileError(f"{where}: metadata padding {padding} differs from its net's {net.plan.to_dict()}")
         if len(mean) != net.bands or classes.num_classes != net.classes:
             raise ModelFileError(f"{where}: metadata gives {len(mean)} bands and {classes.num_classes} classes but "
                                  f"the net has {net.bands} bands and {net.classes} classes")
         _load_weights(net, tensors, where)
+        stats = values.get("input_stats")
         model = cls(net.eval(), classes=classes, mean=mean, std=std, kind=kind, config=values["config"],
-                    extra=values["extra"], temperature=temperature).eval()
+                    extra=values["extra"], temperature=temperature,
+                    input_stats=None if stats is None else check_stats(stats, net.bands, where)).eval()
         model.path = Path(path)  # where it came from (training records it as the run's starting point)
         return model
 
-    def export(self, out: str | Path, format: str = "onnx") -> ExportCheck:
+    def export(self, out: str | Path, format: str = "onnx", *, overwrite: bool = False) -> ExportCheck:
         """Write the model as ONNX or TorchScript (raw pixels in, class scores out, any size), checked against
         this model's own forward pass at sizes that are no multiple of its stride."""
         from fcnkit.export import export_model
 
-        return export_model(self, out, format)
+        return export_model(self, out, format, overwrite=overwrite)
 
     def copy(self) -> Model:
         return copy.deepcopy(self)
 
 
-def _check_values(values: dict[str, Any], where: str) -> tuple[str, ClassTable, list[float], list[float], PadPlan,
-                                                                 float]:
+def _check_values(values: dict[str, Any], where: str) -> tuple[str, ClassTable, list[float], list[float],
+                                                                 dict[str, int] | None, float]:
     """The model-file values, checked; ModelFileError naming the file and key otherwise."""
     for key in ("kind", "version", "config", "classes", "mean", "std", "extra"):
         if key not in values:
@@ -330,17 +334,15 @@ def _check_values(values: dict[str, Any], where: str) -> tuple[str, ClassTable, 
     if not (isinstance(temperature, (int, float)) and not isinstance(temperature, bool)
             and math.isfinite(temperature) and temperature > 0):
         raise ModelFileError(f"{where}: metadata 'fcnkit.temperature' must be a positive number, got {temperature!r}")
-    padding = values.get("padding")
-    if padding is None:  # files from before the padding plan was stored: their net's own plan
-        plan = None
-    else:
-        ok = isinstance(padding, dict) and set(padding) == {"factor", "offset"} and all(
-            isinstance(v, int) and not isinstance(v, bool) for v in padding.values()) and padding["factor"] >= 1
+    padding = values.get("padding")  # None in files from before the padding plan was stored: their net's own
+    if padding is not None:
+        ok = isinstance(padding, dict) and {"factor", "offset"} <= set(padding) <= {"factor", "offset", "cells"} \
+            and all(isinstance(v, int) and not isinstance(v, bool) for v in padding.values()) \
+            and padding["factor"] >= 1 and padding.get("cells", 1) >= 1
         if not ok:
-            raise ModelFileError(f"{where}: metadata 'fcnkit.padding' must be {{\"factor\": n >= 1, \"offset\": n}}, "
-                                 f"got {padding!r}")
-        plan = PadPlan(padding["factor"], padding["offset"])
-    return kind, classes, values["mean"], values["std"], plan, float(temperature)
+            raise ModelFileError(f"{where}: metadata 'fcnkit.padding' must be {{\"factor\": n >= 1, \"offset\": n}} "
+                                 f"(and optionally \"cells\": n >= 1), got {padding!r}")
+    return kind, classes, values["mean"], values["std"], padding, float(temperature)
 
 
 def _load_weights(net: nn.Module, tensors: dict[str, torch.Tensor], where: str) -> None:

@@ -18,6 +18,7 @@ from safetensors.torch import save_file
 
 from fcnkit.atomic import atomic_output
 from fcnkit.errors import ModelFileError
+from fcnkit.inputfiles import require_regular
 
 PREFIX = "fcnkit."
 PLAIN_KEYS = ("kind", "version")  # stored as plain strings; every other value is JSON
@@ -35,6 +36,7 @@ def read_model_file(path: str | Path) -> tuple[dict[str, torch.Tensor], dict[str
     """The tensors and decoded ``fcnkit.`` values of a model file; ModelFileError naming the file for anything
     unreadable, malformed or not finite."""
     path = Path(path)
+    require_regular(path, ModelFileError)
     if not path.is_file():
         raise ModelFileError(f"{path}: no such model file")
     try:

@@ -9,7 +9,7 @@ the per-class pixel counts and areas:
 * uncertainty — the normalised entropy −Σ p log p / log C × 255 (0 = certain, 255 = all classes equally
   likely; scale 1/255): the map that shows where labelling more pixels would help most.
 
-Then a down-sampled colour overlay for a quick look, a table of per-class pixel counts, fractions and areas in
+Then a down-sampled colour overlay for a quick look, a table of per-class pixel counts, shares and areas in
 m² (:mod:`fcnkit.areas`: any projected unit, rotated grids, geodesic areas for degrees) as CSV and JSON, and
 optionally the class polygons (:mod:`fcnkit.polygons`).
 
@@ -125,25 +125,25 @@ def overlay(rgb: np.ndarray, labels: np.ndarray, colors: Sequence[tuple[int, int
 
 
 def area_rows(counts: np.ndarray, classes: ClassTable, areas_m2: Sequence[float] | None) -> list[dict[str, Any]]:
-    """One row per class: id, name, pixels, fraction of the valid pixels, area in m² (None when unknown)."""
+    """One row per class: id, name, pixels, share of the valid pixels (0–1), area in m² (None when unknown)."""
     total = int(np.sum(counts))
     return [{"id": c.id, "name": c.name, "pixels": int(counts[c.id]),
-             "fraction": float(counts[c.id] / total) if total else 0.0,
+             "share": float(counts[c.id] / total) if total else 0.0,
              "area_m2": float(areas_m2[c.id]) if areas_m2 is not None else None}
             for c in classes.classes]
 
 
 def areas_csv(rows: list[dict[str, Any]], nodata: tuple[int, int] | None = None) -> str:
     """The area table as CSV; ``nodata`` (its value in the label map, pixel count) adds a last row for the
-    nodata pixels, which have no fraction and no area."""
+    nodata pixels, which have no share and no area."""
     buf = io.StringIO()
-    writer = csv.DictWriter(buf, ["id", "name", "pixels", "fraction", "area_m2"], lineterminator="\n")
+    writer = csv.DictWriter(buf, ["id", "name", "pixels", "share", "area_m2"], lineterminator="\n")
     writer.writeheader()
     for r in rows:
-        writer.writerow({**r, "fraction": f"{r['fraction']:.6f}",
+        writer.writerow({**r, "share": f"{r['share']:.6f}",
                          "area_m2": "" if r["area_m2"] is None else f"{r['area_m2']:.4f}"})
     if nodata is not None:
-        writer.writerow({"id": nodata[0], "name": "nodata", "pixels": nodata[1], "fraction": "", "area_m2": ""})
+        writer.writerow({"id": nodata[0], "name": "nodata", "pixels": nodata[1], "share": "", "area_m2": ""})
     return buf.getvalue()
 
 
@@ -367,18 +367,25 @@ def display_rgb(image: np.ndarray, valid: np.ndarray | None = None) -> np.ndarra
 def strided_rgb(raster: Raster, step: int, offset: int = 0) -> np.ndarray:
     """Every ``step``-th pixel of the image from ``offset``, as display RGB, read a band of rows at a time
     (copies, so each band's full rows are freed at once)."""
-    return _strided(raster, step, offset)[0]
+    return _strided(raster, step, (offset, offset))[0]
 
 
-def _strided(raster: Raster, step: int, offset: int) -> tuple[np.ndarray, np.ndarray | None]:
+def _offsets(shape: tuple[int, ...], step: int) -> tuple[int, int]:
+    """The first sample of each axis: mid-cell (``step // 2``), but inside an axis shorter than that (a 1×100000
+    strip has one row to sample, not none)."""
+    return min(step // 2, shape[0] - 1), min(step // 2, shape[1] - 1)
+
+
+def _strided(raster: Raster, step: int, offset: tuple[int, int]) -> tuple[np.ndarray, np.ndarray | None]:
     height, width, _ = raster.shape
     band = step * max(1, 512 // step)
+    oy, ox = offset
     parts, masks = [], []
     for y0 in range(0, height, band):
         y1 = min(y0 + band, height)
-        parts.append(raster.read(y0, y1, 0, width)[offset::step, offset::step].copy())
+        parts.append(raster.read(y0, y1, 0, width)[oy::step, ox::step].copy())
         v = raster.valid(y0, y1, 0, width) if getattr(raster, "masked", False) else None
-        masks.append(None if v is None else v[offset::step, offset::step].copy())
+        masks.append(None if v is None else v[oy::step, ox::step].copy())
     valid = None
     if any(m is not None for m in masks):
         valid = np.concatenate([np.ones(p.shape[:2], bool) if m is None else m for p, m in zip(parts, masks,
@@ -390,12 +397,12 @@ def _preview(raster: Raster, labels: RowStore, valid: RowStore | None, step: int
              ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     """Every ``step``-th pixel (from step // 2, so each sample sits mid-cell) of the image, as display RGB, of
     the label map, and of the validity (None: all valid)."""
-    off = step // 2
+    oy, ox = off = _offsets(raster.shape, step)
     band = step * max(1, 512 // step)
 
     def strided(store: RowStore) -> np.ndarray:
-        return np.concatenate([np.array(store.rows(y0, min(y0 + band, store.shape[0]), write=False)[off::step,
-                                                                                                   off::step])
+        return np.concatenate([np.array(store.rows(y0, min(y0 + band, store.shape[0]), write=False)[oy::step,
+                                                                                                   ox::step])
                                for y0 in range(0, store.shape[0], band)])
 
     rgb, _ = _strided(raster, step, off)

@@ -37,6 +37,7 @@ from PIL import Image
 
 from fcnkit.atomic import write_text_atomic
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import require_regular
 
 if TYPE_CHECKING:
     from fcnkit.data.classes import ClassTable
@@ -226,6 +227,7 @@ def reliability_figure(curves: Sequence[tuple[str, dict[str, Any], str]]) -> Fig
 def read_curves(path: str | Path) -> dict[str, list[float]]:
     """Numeric columns of a metrics CSV (one row per epoch), by header name."""
     path = Path(path)
+    require_regular(path, DataError)
     try:
         with open(path, newline="", encoding="utf-8") as f:
             rows = list(csv.DictReader(f))

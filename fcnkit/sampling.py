@@ -37,7 +37,8 @@ from fcnkit.assessment import (
 )
 from fcnkit.atomic import atomic_output, write_text_atomic
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import SEGMENT_MAX_PIXELS, TIFF_SUFFIXES, Raster, open_raster
+from fcnkit.data.raster import DEFAULT_MAX_PIXELS, TIFF_SUFFIXES, Raster, open_raster
+from fcnkit.destinations import check_outputs
 from fcnkit.errors import DataError
 
 SAMPLE_FIELDS = ("point_id", "row", "col", "x", "y", "map_id", "map_class", "reference")
@@ -129,7 +130,7 @@ def _band(raster: Raster, y0: int, y1: int) -> np.ndarray:
     return band
 
 
-def count_classes(labels: str | Path, max_pixels: int | None = SEGMENT_MAX_PIXELS) -> np.ndarray:
+def count_classes(labels: str | Path, max_pixels: int | None = DEFAULT_MAX_PIXELS) -> np.ndarray:
     """Pixels of each value 0..max in a label map, counted band by band."""
     raster = _open_labels(labels, max_pixels)
     try:
@@ -248,8 +249,6 @@ def _check_outputs(out: str | Path | Sequence[str | Path]) -> list[Path]:
         if p.suffix.lower() not in SAMPLE_SUFFIXES:
             raise DataError(f"{p}: unsupported sample file type {p.suffix or '(none)'}; expected one of: "
                             + ", ".join(SAMPLE_SUFFIXES))
-        if not p.parent.is_dir():
-            raise DataError(f"{p}: cannot write here, folder {p.parent} does not exist")
     return paths
 
 
@@ -258,7 +257,7 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
                 expected_accuracy: float | Sequence[float] = DEFAULT_EXPECTED_ACCURACY,
                 minimum: int = DEFAULT_MINIMUM, seed: int = 0, image: str | Path | None = None,
                 chips: str | Path | None = None, chip_size: int = 64,
-                max_pixels: int | None = SEGMENT_MAX_PIXELS) -> Sample:
+                max_pixels: int | None = DEFAULT_MAX_PIXELS, overwrite: bool = False) -> Sample:
     """Draw a stratified random sample of points from a label map and write it to ``out`` (.gpkg, .geojson
     or .csv; several names write several files).
 
@@ -274,6 +273,8 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
     paths = _check_outputs(out)
     if chips is not None and image is None:
         raise DataError("image chips need the mapped image (the image the label map was made from)")
+    check_outputs(paths, inputs=[labels, image], folders=[(chips, "point_*.png")] if chips is not None else [],
+                  overwrite=overwrite, error=DataError)
     if total is not None and total < 1:
         raise DataError(f"sample size {total} points (expected at least 1)")
     if minimum < 0:
@@ -362,7 +363,7 @@ def _write_sample(path: Path, sample: Sample) -> None:
 
 
 def write_chips(sample: Sample, image: str | Path, folder: str | Path, size: int = 64,
-                max_pixels: int | None = SEGMENT_MAX_PIXELS) -> Path:
+                max_pixels: int | None = DEFAULT_MAX_PIXELS) -> Path:
     """One PNG per point, ``size`` pixels of ``image`` around it (enlarged to about 256 px), the point's pixel
     outlined; named ``point_00001.png`` … after the point ids."""
     from PIL import Image
@@ -504,6 +505,8 @@ def read_counts(path: str | Path) -> tuple[dict[int, int], float | None]:
                 entries = list(csv.DictReader(f))
     except (UnicodeDecodeError, json.JSONDecodeError, csv.Error) as e:
         raise DataError(f"{path}: not a readable counts file ({e})") from None
+    except RecursionError:
+        raise DataError(f"{path}: not a readable counts file (nested too deeply)") from None
     counts: dict[int, int] = {}
     for e in entries:
         if not isinstance(e, dict) or "id" not in e or "pixels" not in e:
@@ -543,7 +546,8 @@ def _map_checker(raster: Raster, points: list[SamplePoint], sample: Path) -> Cal
 def assess_sample(sample: str | Path, *, labels: str | Path | None = None, counts: str | Path | None = None,
                   classes: ClassTable | None = None, pixel_area_m2: float | None = None,
                   reference_field: str = "reference", json_path: str | Path | None = None,
-                  csv_path: str | Path | None = None, max_pixels: int | None = SEGMENT_MAX_PIXELS) -> dict[str, Any]:
+                  csv_path: str | Path | None = None, max_pixels: int | None = DEFAULT_MAX_PIXELS,
+                  overwrite: bool = False) -> dict[str, Any]:
     """Olofsson et al. 2014 estimates from a filled sample; returns :func:`fcnkit.assessment.assessment_table`'s
     dict (plus the files used) and writes it as JSON and tidy CSV when paths are given.
 
@@ -558,9 +562,8 @@ def assess_sample(sample: str | Path, *, labels: str | Path | None = None, count
         raise DataError("give either the label map or a file of its pixel counts per class (not both)")
     if pixel_area_m2 is not None and not pixel_area_m2 > 0:
         raise DataError(f"pixel area {pixel_area_m2} m² (expected a positive number)")
-    for out in (json_path, csv_path):
-        if out is not None and not Path(out).parent.is_dir():
-            raise DataError(f"{out}: cannot write here, folder {Path(out).parent} does not exist")
+    check_outputs([p for p in (json_path, csv_path) if p is not None], inputs=[sample, labels, counts],
+                  overwrite=overwrite, error=DataError)
     points = read_sample(sample, reference_field, need_cells=labels is not None)
     area_source = "given" if pixel_area_m2 is not None else None
     if labels is not None:

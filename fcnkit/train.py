@@ -10,6 +10,7 @@ processes (DistributedDataParallel, gloo), validation images too, and rank 0 alo
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import json
 import math
@@ -34,13 +35,16 @@ from tqdm import tqdm
 from fcnkit import parallel, runstate
 from fcnkit.config import TrainConfig, config_from_dict
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.dataset import Sample, band_stats, find_samples, read_sample
+from fcnkit.data.dataset import Sample, band_stats, find_samples, mixed_images, read_sample
 from fcnkit.data.imageio import DEFAULT_MAX_PIXELS
 from fcnkit.data.patches import PatchDataset
-from fcnkit.errors import ConfigError, DataError
+from fcnkit.destinations import check_outputs, dataset_files
+from fcnkit.errors import ConfigError, DataError, FcnkitError, Interrupted, ModelFileError
+from fcnkit.inputrange import training_stats
 from fcnkit.losses import median_frequency_weights, pixel_cross_entropy, segmentation_loss
 from fcnkit.metrics import confusion_matrix, segmentation_scores
 from fcnkit.schedules import lr_factor
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -59,8 +63,8 @@ class TrainResult:
     history: list[dict[str, Any]]
 
 
-class TrainingInterrupted(KeyboardInterrupt):
-    """Ctrl-C during training: a resume point was written first; the message says where."""
+class TrainingInterrupted(Interrupted):
+    """Ctrl-C or SIGTERM during training: a resume point was written first; the message says where."""
 
 
 def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] | None = None, *,
@@ -78,16 +82,27 @@ def train(model: Model, data: str | Path | Sequence[np.ndarray], masks: Sequence
     temporary = out_dir is None
     run_dir = Path(tempfile.mkdtemp(prefix="fcnkit-run-")) if temporary else Path(out_dir)
     try:
-        if t.threads:
-            torch.set_num_threads(t.threads)
-        run = _prepare(model, t, data, masks, run_dir, resume, group,
-                       DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels, note)
-        with _StopRequest() as stop:
-            result = _loop(run, stop, progress)
-        model.net.load_state_dict(run.best_state)
-        model.eval()
-        _calibrate(run)
-        return result
+        with runstate.RunLock(run_dir) if group.main else contextlib.nullcontext():
+            if group.main:  # the run's own files never replace its inputs (the --init model, the data)
+                check_outputs([run_dir / n for n in (runstate.MODEL_FILE, runstate.RESUME_FILE,
+                                                     runstate.METRICS_FILE)],
+                              inputs=[model.path, *(dataset_files(data) if isinstance(data, (str, Path)) else ())],
+                              replace_weights=True)
+            if t.threads:
+                torch.set_num_threads(t.threads)
+            run = _prepare(model, t, data, masks, run_dir, resume, group,
+                           DEFAULT_MAX_PIXELS if max_pixels is None else max_pixels, note)
+            try:
+                with _StopRequest() as stop:
+                    result = _loop(run, stop, progress)
+            except FcnkitError:
+                if not resume and not run.p["epoch"] and group.main:  # refused before its first epoch: no run
+                    (run_dir / runstate.RESUME_FILE).unlink(missing_ok=True)
+                raise
+            model.net.load_state_dict(run.best_state)
+            model.eval()
+            _calibrate(run)
+            return result
     finally:
         torch.set_num_threads(threads)
         parallel.finish(group)
@@ -143,11 +158,14 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
         model.extra = {**model.extra, "init": str(model.path)}
     trained_on = str(Path(data).resolve()) if isinstance(data, (str, Path)) else f"{len(images)} image arrays"
     model.extra = {**model.extra, "trained_on": trained_on}
+    model.input_stats = training_stats(images)  # what mapping later compares new images with
     _check_fits(model, images, classes)
     _check_memory(model, t)
     if group.main:
         runstate.claim_run_dir(run_dir, resume)
     state = runstate.load_resume(run_dir / runstate.RESUME_FILE, model.config, data_id) if resume else None
+    if state is not None:
+        runstate.check_resume(run_dir / runstate.RESUME_FILE, state, model.net.state_dict())
     order = sorted(range(len(images)), key=lambda i: keys[i])
     train_i, val_i = split_indices(len(order), t.val_fraction, t.seed)
     train_x, train_y = [images[order[i]] for i in train_i], [labels[order[i]] for i in train_i]
@@ -178,11 +196,16 @@ def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarra
          "stopped_early": False, "history": []}
     best_state = _copy_state(model)
     if state is not None:
-        model.net.load_state_dict(state["model"])
-        opt.load_state_dict(state["optimizer"])
-        runstate.set_rng_states(state["rng"])
-        if len(state.get("torch_rng_by_rank", [])) == group.world:  # each process's own dropout stream
-            torch.set_rng_state(state["torch_rng_by_rank"][group.rank])
+        try:
+            model.net.load_state_dict(state["model"])
+            opt.load_state_dict(state["optimizer"])
+            runstate.set_rng_states(state["rng"])
+            if len(state.get("torch_rng_by_rank", [])) == group.world:  # each process's own dropout stream
+                torch.set_rng_state(state["torch_rng_by_rank"][group.rank])
+        except (KeyError, TypeError, ValueError, RuntimeError, IndexError, AttributeError) as e:
+            first = " ".join(str(e).split())[:160] or type(e).__name__
+            raise ModelFileError(f"{run_dir / runstate.RESUME_FILE}: resume point cannot be continued ({first}); "
+                                 "start a new run in another output folder") from None
         p = state["progress"]
         best_state = {k: v.clone() for k, v in state.get("best", _copy_state(model)).items()}
     net = DistributedDataParallel(model) if group.world > 1 else model
@@ -230,6 +253,12 @@ def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] |
             raise DataError(f"images[{i}]: image {x.shape} and mask {m.shape} (expected H×W×B and H×W)")
         if m.dtype.kind not in "ui" or (m.size and (m.min() < 0 or m.max() > 255)):
             raise DataError(f"masks[{i}]: expected class ids 0..254 (255 = unlabelled), got {m.dtype} values")
+    for i, x in enumerate(images):
+        if x.dtype.kind not in "uifb":
+            raise DataError(f"images[{i}]: pixel type {x.dtype} (expected integers or real numbers)")
+        if x.dtype.kind == "f" and not np.isfinite(x).all():
+            raise DataError(f"images[{i}]: {int((~np.isfinite(x)).sum())} NaN or infinite pixel values (expected "
+                            "finite numbers; mask or fill them first)")
     labels = [m.astype(np.uint8) for m in labels]
     classes = model.classes
     if classes is None:
@@ -248,7 +277,7 @@ def _data(data: str | Path | Sequence[np.ndarray], masks: Sequence[np.ndarray] |
 def _check_fits(model: Model, images: list[np.ndarray], classes: ClassTable) -> None:
     """The data must have the model's bands and classes."""
     if classes.num_classes != model.num_classes:
-        raise ConfigError(f"model.classes: the net has {model.num_classes} classes but the data has "
+        raise ConfigError(f"model.num_classes: the net has {model.num_classes} classes but the data has "
                           f"{classes.num_classes}")
     if model.classes is not None and model.classes.names != classes.names:
         raise DataError(f"classes: the data's classes ({', '.join(classes.names)}) differ from the model's "
@@ -263,6 +292,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
     t, p, g = run.t, run.p, run.group
     ignore, total_steps = run.model.classes.ignore, t.epochs * run.steps_per_epoch
     fmt = torch.channels_last if t.channels_last else torch.contiguous_format
+    first_step = p["step"]  # weights are still the ones this run started from until an optimiser step
     while p["epoch"] < t.epochs and not p["stopped_early"]:
         epoch, tic, lr = p["epoch"], time.perf_counter() - p["epoch_seconds"], 0.0
         bar = tqdm(total=run.steps_per_epoch, initial=p["batch"], desc=f"epoch {epoch + 1}/{t.epochs}",
@@ -278,9 +308,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             loss = segmentation_loss(logits, y, run.weight, ignore, t.dice)
             diverged, stopping = parallel.any_rank(g, not torch.isfinite(loss).item(), stop.requested)
             if diverged:
-                raise ConfigError(f"train.lr: the loss became {loss.item()} at epoch {epoch + 1}, batch "
-                                  f"{p['batch'] + 1} (lr {lr:.3g}); stopped, the last good files in {run.run_dir} "
-                                  "are kept; try a lower train.lr, or check the images for NaN or inf")
+                raise _diverged(run, x, logits, loss, lr, p["step"] - first_step)
             run.opt.zero_grad(set_to_none=True)
             loss.backward()
             run.opt.step()
@@ -288,18 +316,46 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool) -> TrainResult:
             p["loss_sum"], p["pixels"] = p["loss_sum"] + loss.item(), p["pixels"] + y.numel()
             bar.update()
             bar.set_postfix(loss=f"{p['loss_sum'] / p['loss_batches']:.4f}",
-                            speed=f"{p['pixels'] * g.world / (time.perf_counter() - tic) / 1e3:,.1f} kpx/s")
+                            speed=pixel_rate(p["pixels"] * g.world, time.perf_counter() - tic))
             if stopping:
                 p["epoch_seconds"] = time.perf_counter() - tic
                 bar.close()
-                _interrupt(run)
+                _interrupt(run, stop.signum)
         bar.close()
         _end_epoch(run, lr, time.perf_counter() - tic)
         if parallel.any_rank(g, stop.requested)[0]:  # Ctrl-C during validation: stop before the next epoch
-            _interrupt(run)
+            _interrupt(run, stop.signum)
     best = p["best_mean_iou"] if p["best_mean_iou"] > -math.inf else math.nan
     return TrainResult(run.run_dir, run.run_dir / runstate.MODEL_FILE, p["epoch"], p["best_epoch"], best,
                        p["stopped_early"], p["history"])
+
+
+def _diverged(run: _Run, x: torch.Tensor, logits: torch.Tensor, loss: torch.Tensor, lr: float,
+              steps: int) -> FcnkitError:
+    """The error for a loss that is not finite, saying what is not: the pixels, the starting model's scores, the
+    class weights, or — after training steps — the weights or scores (then the learning rate is to blame)."""
+    p = run.p
+    at = f"epoch {p['epoch'] + 1}, batch {p['batch'] + 1}"
+    kept = f"stopped, the last good files in {run.run_dir} are kept"
+    if not bool(torch.isfinite(loss)):  # this process's own batch (else another process's)
+        if not bool(torch.isfinite(x).all()):
+            return DataError(f"training patches of {at} hold NaN or infinite pixel values; check the images")
+        if run.weight is not None and not bool(torch.isfinite(run.weight).all()):
+            return ConfigError(f"train.class_weights: NaN or infinite class weights {run.weight.tolist()}")
+        weights_finite = all(bool(torch.isfinite(w).all()) for w in run.model.parameters())
+        if weights_finite and not bool(torch.isfinite(logits).all()) and steps == 0:
+            start = run.model.extra.get("init") or ("the resume point" if p["step"] else "the config's initial net")
+            mean, std = run.model.normalisation
+            return DataError(f"{start}: its class scores are NaN or infinite on the training patches of {at}, before "
+                             f"any training step (pixel values up to {float(x.abs().max()):g}, normalised by mean "
+                             f"{mean} and std {std}): the starting weights overflow on this data; check the data's "
+                             "range or the starting model")
+        what = ("weights NaN or infinite" if not weights_finite else "class scores NaN or infinite, weights finite"
+                if not bool(torch.isfinite(logits).all()) else "class scores and weights finite")
+        return ConfigError(f"train.lr: the loss became {loss.item()} at {at} (lr {lr:.3g}; {what} after {steps} "
+                           f"training steps); {kept}; try a lower train.lr")
+    return ConfigError(f"train.lr: the loss became NaN or infinite in another training process at {at} (lr {lr:.3g}); "
+                       f"{kept}; try a lower train.lr")
 
 
 def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
@@ -464,13 +520,13 @@ def _read(samples: list[Sample], classes: ClassTable, max_pixels: int | None = D
         image = sample.image
         if bands is not None and image.shape[2] != bands:
             raise ConfigError(f"model.bands: the net takes {bands} bands but {s.image} has {image.shape[2]}")
-        if images and image.shape[2] != images[0].shape[2]:
-            raise DataError(f"{s.image}: has {image.shape[2]} bands but {samples[0].image.name} has "
-                            f"{images[0].shape[2]} (every image needs the same bands)")
         images.append(image)
         masks.append(sample.mask)
         nodata += sample.nodata_pixels
         met += sample.nodata_pixels > 0
+    mixed = mixed_images([(s.image, x.shape[2], str(x.dtype)) for s, x in zip(samples, images, strict=True)])
+    if mixed:  # the rule `check` applies
+        raise DataError(mixed[0])
     if nodata:
         notes.append(f"nodata: {nodata:,} pixels in {met} of {len(samples)} images are unlabelled and left out of "
                      "the band statistics")
@@ -526,28 +582,33 @@ def _save_resume(run: _Run) -> None:
             "rng": runstate.rng_states(), "torch_rng_by_rank": torch_by_rank, "progress": run.p})
 
 
-def _interrupt(run: _Run) -> None:
+def _interrupt(run: _Run, signum: int) -> None:
     _save_resume(run)
-    raise TrainingInterrupted(f"interrupted; resume point saved to {run.run_dir / runstate.RESUME_FILE}, "
-                              "continue with --resume")
+    what = "terminated" if signum == signal.SIGTERM else "interrupted"
+    raise TrainingInterrupted(f"{what}; resume point saved to {run.run_dir / runstate.RESUME_FILE}, continue with "
+                              "--resume", signum)
+
+
+STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM)
 
 
 class _StopRequest:
-    """The first Ctrl-C (SIGINT) asks the loop to stop after the current batch and write a resume point;
-    a second one interrupts at once."""
+    """The first Ctrl-C (SIGINT) or SIGTERM asks the loop to stop after the current batch and write a resume
+    point; a second one interrupts at once."""
 
     def __enter__(self) -> _StopRequest:
         self.requested = False
-        self._previous = None
+        self.signum = signal.SIGINT
+        self._previous: dict[int, Any] = {}
         if threading.current_thread() is threading.main_thread():
-            self._previous = signal.signal(signal.SIGINT, self._handle)
+            self._previous = {s: signal.signal(s, self._handle) for s in STOP_SIGNALS}
         return self
 
     def _handle(self, signum: int, frame: Any) -> None:
         if self.requested:
-            raise KeyboardInterrupt
-        self.requested = True
+            raise Interrupted("stopped at once (second signal); the last resume point is kept", signum)
+        self.requested, self.signum = True, signum
 
     def __exit__(self, *exc: object) -> None:
-        if self._previous is not None:
-            signal.signal(signal.SIGINT, self._previous)
+        for s, previous in self._previous.items():
+            signal.signal(s, previous)

@@ -1,6 +1,6 @@
 """Run the malformed-input battery (tests/bad_inputs.py) and print it as a markdown table: input, command,
 the one-line message fcnkit printed, exit code — plus the counts that matter (cases run, exit 2, one line,
-tracebacks, files left under a final name, temp files left).
+tracebacks, files left under a final name, temp files left, earlier files changed).
 
     .venv/bin/python scripts/battery_table.py > docs/battery.md
 """
@@ -14,7 +14,7 @@ import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT / "tests"))
+sys.path[:0] = [str(ROOT), str(ROOT / "tests")]  # this checkout's fcnkit, not an installed one
 
 from bad_inputs import CASES, Workspace, available_commands, run_case  # noqa: E402
 
@@ -29,7 +29,7 @@ def main() -> int:
     torch.set_num_threads(1)
     commands = available_commands()
     rows, counts = [], {"cases": 0, "exit 2": 0, "one line": 0, "traceback": 0, "final files left": 0,
-                        "temp files left": 0, "expected words present": 0}
+                        "temp files left": 0, "earlier files changed": 0, "expected words present": 0}
     tic = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="fcnkit-battery-") as tmp:
         ws = Workspace(Path(tmp))
@@ -48,6 +48,7 @@ def main() -> int:
             counts["traceback"] += "Traceback" in o.stderr
             counts["final files left"] += len(o.new_files)
             counts["temp files left"] += len(o.partials)
+            counts["earlier files changed"] += len(o.changed)
             counts["expected words present"] += all(w.lower() in line.lower() for w in c.expect)
             message = re.sub(r"cases/[a-z0-9-]+", "…", line.replace(str(ws.root) + "/", ""))
             rows.append((c.name, c.command, message, str(o.code)))
@@ -56,13 +57,15 @@ def main() -> int:
     print(f"- cases run: {counts['cases']} ({len({c.name for c in CASES})} distinct bad inputs over "
           f"{len({c.command for c in CASES})} subcommands)")
     for key in ("exit 2", "one line", "expected words present", "traceback", "final files left",
-                "temp files left"):
+                "temp files left", "earlier files changed"):
         print(f"- {key}: {counts[key]}")
     print("\n| # | input | command | message | exit |\n|---|---|---|---|---|")
     for i, (name, command, message, code) in enumerate(rows, 1):
         print(f"| {i} | {_cell(name)} | {command} | {_cell(message)} | {code} |")
     ok = counts["exit 2"] == counts["one line"] == counts["expected words present"] == counts["cases"]
-    return 0 if ok and not (counts["traceback"] or counts["final files left"] or counts["temp files left"]) else 1
+    bad = counts["traceback"] or counts["final files left"] or counts["temp files left"] or \
+        counts["earlier files changed"]
+    return 0 if ok and not bad else 1
 
 
 if __name__ == "__main__":

@@ -41,7 +41,7 @@ def step_time(cfg, batch: int, patch: int, steps: int, channels_last: bool, bf16
     model = build_model(cfg).to(memory_format=fmt).train()
     opt = torch.optim.AdamW(model.parameters(), lr=1e-3)
     x = torch.randn(batch, cfg.model.bands, patch, patch).contiguous(memory_format=fmt)
-    y = torch.randint(0, cfg.model.classes, (batch, patch, patch))
+    y = torch.randint(0, cfg.model.num_classes, (batch, patch, patch))
     best = float("inf")
     for i in range(steps + 2):  # two warm-up steps
         tic = time.perf_counter()

@@ -4,8 +4,9 @@ Shared by tests/test_hardening_inputs.py (which asserts the contract below for e
 scripts/battery_table.py (which prints the cases as a markdown table).
 
 The contract for a bad input (DEVELOPERS.md, "Conventions"): exit status 2; exactly one line on stderr,
-naming the file, key or value at fault and what was expected; no traceback; and nothing new in the output
-location — no file under a final name and no hidden ``.partial`` temp file left behind.
+naming the file, key or value at fault and what was expected; no traceback; nothing new in the output
+location — no file under a final name and no hidden ``.partial`` temp file left behind —; and no earlier file
+changed, in the output location or among the workspace's good inputs.
 
 Each case builds its bad input in a folder of its own, next to a small shared workspace holding one good
 example of everything (dataset folder, config, model file). The CLI runs in-process (``fcnkit.cli.main``) with
@@ -19,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import io
 import json
+import math
 import os
 import re
 import shutil
@@ -39,7 +41,7 @@ ROOT = Path(__file__).resolve().parent.parent
 TINY_CONFIG = """\
 [model]
 bands = 3
-classes = 3
+num_classes = 3
 widths = [4, 8]
 blocks = [1, 1]
 head = [8]
@@ -97,6 +99,10 @@ class Workspace:
         write_model(self.model4, bands=4)
         self.file = self.root / "a-regular-file"
         self.file.write_text("not a folder\n")
+
+    def good_inputs(self) -> list[Path]:
+        """The shared good inputs, which no case may change."""
+        return [self.config, self.data, self.model, self.model4, self.file]
 
     def folder(self, name: str) -> Path:
         """A new empty folder for one case."""
@@ -290,6 +296,7 @@ class Outcome:
     stderr: str
     new_files: list[str] = field(default_factory=list)
     partials: list[str] = field(default_factory=list)
+    changed: list[str] = field(default_factory=list)  # files that existed before and differ (or are gone) after
     report: bool = False  # the command's job is a report of problems (``check``): they are on stdout
 
     @property
@@ -302,12 +309,33 @@ class Outcome:
         return [line.strip() for line in lines[start:] if line.startswith("  ")]
 
 
-def run_cli(argv: list, env: dict[str, str] | None = None) -> tuple[int | None, str, str]:
+def run_cli(argv: list, env: dict[str, str] | None = None,
+            fsize: int | None = None) -> tuple[int | None, str, str]:
     """Run ``fcnkit argv`` in this process; (exit status, stdout, stderr) as the terminal would show them.
+    ``fsize``: a file size limit in bytes for the run (RLIMIT_FSIZE, SIGXFSZ ignored), so writes beyond it fail
+    with EFBIG as they would on a full disk.
 
     An exception escaping ``main`` is what the interpreter would print: a traceback, status 1."""
-    with _environment(env or {}):
+    with _environment(env or {}), _file_size_limit(fsize):
         return _run_cli([str(a) for a in argv])
+
+
+@contextlib.contextmanager
+def _file_size_limit(fsize: int | None):
+    if fsize is None:
+        yield
+        return
+    import resource
+    import signal
+
+    old = resource.getrlimit(resource.RLIMIT_FSIZE)
+    handler = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    resource.setrlimit(resource.RLIMIT_FSIZE, (fsize, old[1]))
+    try:
+        yield
+    finally:
+        resource.setrlimit(resource.RLIMIT_FSIZE, old)
+        signal.signal(signal.SIGXFSZ, handler)
 
 
 @contextlib.contextmanager
@@ -360,6 +388,13 @@ def _show_warning(message, category, filename, lineno, file=None, line=None) -> 
     sys.stderr.write(warnings.formatwarning(message, category, filename, lineno, line))
 
 
+def snapshot(folders: list[Path]) -> dict[str, bytes]:
+    """The contents of every file below ``folders`` (hashed), by path."""
+    import hashlib
+
+    return {p: hashlib.sha256(Path(p).read_bytes()).digest() for p in listing(folders) if Path(p).is_file()}
+
+
 def listing(folders: list[Path]) -> set[str]:
     """Every file (not folder) below ``folders``, as paths."""
     found = set()
@@ -381,6 +416,7 @@ class Call:
     argv: list
     watch: list[Path]
     env: dict[str, str] = field(default_factory=dict)  # environment variables set for the run
+    fsize: int | None = None  # a file size limit for the run (a full disk, as writes see it)
 
 
 @dataclass(frozen=True)
@@ -409,11 +445,14 @@ def run_case(c: Case, ws: Workspace) -> Outcome:
     folder = ws.folder(f"{c.command}-{c.name}")
     call = c.build(ws, folder)
     before = listing(call.watch)
-    code, out, err = run_cli(call.argv, call.env)
+    contents = snapshot([*call.watch, *ws.good_inputs()])
+    code, out, err = run_cli(call.argv, call.env, call.fsize)
     after = listing(call.watch)
     new = sorted(after - before)
+    now = snapshot([*call.watch, *ws.good_inputs()])
+    changed = sorted(p for p, digest in contents.items() if now.get(p) != digest)
     return Outcome(code, out, err, [p for p in new if not Path(p).name.startswith(".")],
-                   [p for p in after if ".partial" in Path(p).name], report=c.command == "check")
+                   [p for p in after if ".partial" in Path(p).name], changed, report=c.command == "check")
 
 
 def available_commands() -> set[str]:
@@ -461,7 +500,7 @@ _config_case("config: float where an integer is expected", tiny_config("bands = 
 _config_case("config: true where an integer is expected", tiny_config("bands = true"), "model.bands",
              "expected int")
 _config_case("config: zero width", tiny_config("widths = [4, 0]"), "model.widths[1]", "minimum 1")
-_config_case("config: one class", tiny_config("classes = 1"), "model.classes", "minimum 2")
+_config_case("config: one class", tiny_config("num_classes = 1"), "model.num_classes", "minimum 2")
 _config_case("config: unknown choice upsample = 'bicubic'", tiny_config("upsample = 'bicubic'"), "model.upsample",
              "transposed, bilinear")
 _config_case("config: [model] is a string", 'model = "big"\n', "model", "expected a table")
@@ -556,7 +595,7 @@ _classes_case("classes.toml: id is a string", "id = 2", 'id = "2"', "classes[2].
 _data_case("classes.toml: a folder", lambda d: ((d / "classes.toml").unlink(), (d / "classes.toml").mkdir()),
            "classes.toml", "toml")
 _data_case("classes.toml: 4 classes for a 3-class config", lambda d: (d / "classes.toml").write_text(
-    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.classes", "4",
+    CLASSES_TOML + '\n[[classes]]\nid = 3\nname = "track"\ncolor = "#ffff00"\n'), "model.num_classes", "4",
     commands=("train",))
 _image_case("image: truncated PNG", lambda d: truncate(d / "images" / "s0.png"), "s0.png", "truncated")
 _image_case("image: random bytes named .png", lambda d: garbage(d / "images" / "s0.png"), "s0.png",
@@ -733,7 +772,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 # --- model files (evaluate, export, segment) -----------------------------------------------------------------
 
 def _evaluate(ws: Workspace, folder: Path, model: Path, *extra: object, data: Path | None = None) -> Call:
-    return Call(["evaluate", model, "--data", data or ws.data, "--json", folder / "scores.json", "--quiet", *extra],
+    return Call(["evaluate", model, "--data", data or ws.data, "--out", folder / "scores.json", "--quiet", *extra],
                 [folder])
 
 
@@ -819,13 +858,13 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _evaluate(ws, folder, ws.model, data=data)
 
 
-@case("--json in an unwritable folder", "evaluate", "scores.json", "cannot write")
+@case("--out in an unwritable folder", "evaluate", "scores.json", "cannot write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out / "scores.json", "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out / "scores.json", "--quiet"], [folder, out])
 
 
-@case("--json is a folder", "evaluate", "scores.json", "folder")
+@case("--out is a folder", "evaluate", "scores.json", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scores.json").mkdir()
     return _evaluate(ws, folder, ws.model)
@@ -976,7 +1015,7 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, pickle_payload(folder / "net.pt", folder / "MARKER"), "--native", 32)
 
 
-@case("convert: --grow without --save", "convert", "--grow", "--save")
+@case("convert: --grow without --out", "convert", "--grow", "--out")
 def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--grow")
 
@@ -985,7 +1024,7 @@ def _(ws: Workspace, folder: Path) -> Call:
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "classes.toml").write_text(CLASSES_TOML.replace("id = 2", "id = 1"))
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--classes",
-                    folder / "classes.toml", "--save", folder / "m.safetensors")
+                    folder / "classes.toml", "--out", folder / "m.safetensors")
 
 
 @case("convert: --keep not a list of numbers", "convert", "--keep", "whole numbers")
@@ -993,10 +1032,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "1,two")
 
 
-@case("convert: --save in an unwritable folder", "convert", "m.safetensors", "write")
+@case("convert: --out in an unwritable folder", "convert", "m.safetensors", "write")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--out",
                  out / "m.safetensors", "--keep", "0,1,2"], [folder, out])
 
 
@@ -1104,30 +1143,30 @@ def _(ws: Workspace, folder: Path) -> Call:
 
 @case("scenes: --count 0", "scenes", "count", "≥ 1")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--count", 0], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 0], [folder])
 
 
 @case("scenes: --size 0", "scenes", "size", "≥ 8")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", folder / "scenes", "--size", 0, "--count", 1], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--size", 0, "--count", 1], [folder])
 
 
-@case("scenes: OUT_DIR is a regular file", "scenes", "a-regular-file", "folder")
+@case("scenes: --out DIR is a regular file", "scenes", "a-regular-file", "folder")
 def _(ws: Workspace, folder: Path) -> Call:
-    return Call(["scenes", ws.file, "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", ws.file, "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR holds other files", "scenes", "scenes", "empty")
+@case("scenes: --out DIR holds other files", "scenes", "scenes", "empty")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "scenes").mkdir()
     (folder / "scenes" / "notes.txt").write_text("mine\n")
-    return Call(["scenes", folder / "scenes", "--count", 1, "--size", 32], [folder])
+    return Call(["scenes", "--out", folder / "scenes", "--count", 1, "--size", 32], [folder])
 
 
-@case("scenes: OUT_DIR in an unwritable place", "scenes", "out", "not a directory")
+@case("scenes: --out DIR in an unwritable place", "scenes", "out", "not a directory")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
 # --- an existing folder the user cannot write to ---------------------------------------------------------------
@@ -1138,10 +1177,10 @@ def _(ws: Workspace, folder: Path) -> Call:
     return Call(["train", ws.config, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
-@case("read-only output folder (--json RO/scores.json)", "evaluate", "scores.json", "cannot write here")
+@case("read-only output folder (--out RO/scores.json)", "evaluate", "scores.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scores.json"
-    return Call(["evaluate", ws.model, "--data", ws.data, "--json", out, "--quiet"], [folder, out])
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", out, "--quiet"], [folder, out])
 
 
 @case("read-only output folder (--out RO/m.onnx)", "export", "m.onnx", "cannot write here")
@@ -1155,16 +1194,16 @@ def _(ws: Workspace, folder: Path) -> Call:
     return _segment(ws, folder, out=ws.read_only(folder) / "maps")
 
 
-@case("read-only output folder (OUT_DIR RO/scenes)", "scenes", "/scenes")
+@case("read-only output folder (--out RO/scenes)", "scenes", "/scenes")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "scenes"
-    return Call(["scenes", out, "--count", 1, "--size", 32], [folder, out])
+    return Call(["scenes", "--out", out, "--count", 1, "--size", 32], [folder, out])
 
 
-@case("read-only output folder (--save RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
+@case("read-only output folder (--out RO/m.safetensors)", "convert", "m.safetensors", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.read_only(folder) / "m.safetensors"
-    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--save",
+    return Call(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--out",
                  out], [folder, out])
 
 
@@ -1202,8 +1241,8 @@ def _filled_sample(ws: Workspace, folder: Path, edit: Callable[[list[dict]], lis
 
 
 def _assess(ws: Workspace, folder: Path, sample: Path, *more: object) -> Call:
-    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv", *more], [folder])
+    return Call(["assess", sample, "--labels", _labels(ws), "--classes", ws.data / "classes.toml", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}", *more], [folder])
 
 
 @case("sample: LABELS is an RGB image", "sample", "s0.png", "one band of integer class ids")
@@ -1292,13 +1331,346 @@ def _(ws: Workspace, folder: Path) -> Call:
 @case("assess: counts file without a pixels column", "assess", "counts.csv", "'pixels'")
 def _(ws: Workspace, folder: Path) -> Call:
     (folder / "counts.csv").write_text("id,name,area\n0,ground,5\n1,water,6\n2,roof,7\n")
-    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--json",
-                 folder / "a.json", "--csv", folder / "a.csv"], [folder])
+    return Call(["assess", _filled_sample(ws, folder), "--counts", folder / "counts.csv", "--out",
+                 f"{folder / 'a.json'},{folder / 'a.csv'}"], [folder])
 
 
-@case("assess: --json in an unwritable place", "assess", "a.json", "cannot write here")
+@case("assess: --out in an unwritable place", "assess", "a.json", "cannot write here")
 def _(ws: Workspace, folder: Path) -> Call:
     out = ws.unwritable(folder)
     sample = _filled_sample(ws, folder)
-    return Call(["assess", sample, "--labels", _labels(ws), "--json", out / "a.json", "--csv", folder / "a.csv"],
+    return Call(["assess", sample, "--labels", _labels(ws), "--out", f"{out / 'a.json'},{folder / 'a.csv'}"],
                 [folder, out])
+
+
+# --- nothing lost, nothing silently wrong --------------------------------------------------------------------
+
+def _first_float(t: dict, value: float) -> dict:
+    """The tensors with the first element of the first floating-point weight set to ``value``."""
+    t = {k: v.clone() for k, v in t.items()}
+    name = next(k for k, v in t.items() if v.is_floating_point())
+    t[name].view(-1)[0] = value
+    return t
+
+
+_model_case("model: a NaN weight", lambda ws, f: rewrite_model(ws.model, f / "m.safetensors", tensors=lambda t:
+            _first_float(t, math.nan)), "m.safetensors", "NaN or infinite", "finite weights")
+_model_case("model: an infinite weight", lambda ws, f: rewrite_model(ws.model, f / "m.safetensors", tensors=lambda t:
+            _first_float(t, math.inf)), "m.safetensors", "NaN or infinite", "finite weights")
+_model_case("model: weights stored as int8", lambda ws, f: rewrite_model(ws.model, f / "m.safetensors", tensors=lambda
+            t: {k: v.round().to(__import__("torch").int8) for k, v in t.items()}), "m.safetensors", "int8",
+            "floating-point")
+_model_case("model: metadata nested 100 000 deep", _meta_edit("extra", "[" * 100_000 + "]" * 100_000), "fcnkit.extra",
+            "nested too deeply")
+_model_case("model: metadata input_stats of 1 band for 3", _meta_edit("input_stats", {"min": [0], "max": [255]}),
+            "fcnkit.input_stats", "3")
+_config_case("config: arrays nested 5000 deep", "[model]\nwidths = " + "[" * 5000 + "]" * 5000 + "\n", "bad.toml",
+             "nested too deeply")
+_data_case("classes.toml: arrays nested 5000 deep", lambda d: (d / "classes.toml").write_text(
+    "ignore = " + "[" * 5000 + "]" * 5000 + "\n"), "classes.toml", "nested too deeply")
+
+
+# outputs that would destroy an input or a model
+
+def _copy_model(ws: Workspace, folder: Path, name: str = "m.safetensors") -> Path:
+    return Path(shutil.copy(ws.model, folder / name))
+
+
+@case("export: --out is the model file itself", "export", "m.safetensors", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    model = _copy_model(ws, folder)
+    return Call(["export", model, "--out", model], [folder])
+
+
+@case("export: --out is a hard link to the model file", "export", "linked.onnx", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    model = _copy_model(ws, folder)
+    os.link(model, folder / "linked.onnx")
+    return Call(["export", model, "--out", folder / "linked.onnx"], [folder])
+
+
+@case("export: --out is a symbolic link to the model file", "export", "alias.pt", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    model = _copy_model(ws, folder)
+    (folder / "alias.pt").symlink_to(model)
+    return Call(["export", model, "--out", folder / "alias.pt", "--format", "torchscript"], [folder])
+
+
+@case("export: --out is another model file", "export", "other.safetensors", "already holds a model file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["export", ws.model, "--out", _copy_model(ws, folder, "other.safetensors")], [folder])
+
+
+@case("evaluate: --out is the model file", "evaluate", "m.safetensors", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    model = _copy_model(ws, folder)
+    return Call(["evaluate", model, "--data", ws.data, "--out", model, "--quiet"], [folder])
+
+
+@case("evaluate: --report is the model file", "evaluate", "m.safetensors", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    model = _copy_model(ws, folder)
+    return _evaluate(ws, folder, model, "--report", model)
+
+
+@case("evaluate: --out is a mask of the data", "evaluate", "s1.png", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    data = ws.copy_data(folder)
+    return Call(["evaluate", ws.model, "--data", data, "--out", data / "masks" / "s1.png", "--quiet"], [folder])
+
+
+@case("evaluate: --out is the dataset's vector label file", "evaluate", "labels.gpkg", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    data = ws.copy_data(folder)
+    _vector_labels(data, "water")
+    return Call(["evaluate", ws.model, "--data", data, "--out", data / "labels.gpkg", "--quiet"], [folder])
+
+
+@case("evaluate: --out and --report name one file", "evaluate", "same.html", "its own name")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", folder / "same.html", "--report",
+                 folder / "same.html", "--quiet"], [folder])
+
+
+@case("evaluate: --curves not UTF-8", "evaluate", "metrics.csv", "cannot read")
+def _(ws: Workspace, folder: Path) -> Call:
+    (folder / "metrics.csv").write_bytes(b"epoch,val_miou\n1,0.5\n\xff\xfe,\x81\n")
+    return _evaluate(ws, folder, ws.model, "--report", folder / "r.html", "--curves", folder / "metrics.csv")
+
+
+def _run_folder(ws: Workspace, folder: Path) -> Path:
+    """A finished-looking run folder: model, resume point, metrics."""
+    import torch
+
+    run = folder / "run"
+    run.mkdir()
+    _copy_model(ws, run, "model.safetensors")
+    torch.save({"format": "fcnkit-resume/1", "model": {"w": torch.zeros(2)}}, run / "resume.pt")
+    (run / "metrics.csv").write_text("epoch,val_miou\n1,0.5\n")
+    return run
+
+
+@case("convert: --out over a run's model beside its resume point", "convert", "model.safetensors",
+      "already holds a model file")
+def _(ws: Workspace, folder: Path) -> Call:
+    run = _run_folder(ws, folder)
+    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--random-weights", "--keep", "0,1,2", "--out",
+                    run / "model.safetensors")
+
+
+@case("convert: --out is the --weights file", "convert", "w.safetensors", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    from torchvision.models import mobilenet_v3_small
+
+    w = write_safetensors(folder / "w.safetensors", mobilenet_v3_small().state_dict(), None)
+    return _convert(folder, "mobilenet_v3_small", "--native", 64, "--weights", w, "--keep", "0,1,2", "--out", w)
+
+
+@case("evaluate: --out over a run's metrics.csv", "evaluate", "metrics.csv", "metrics of the training run")
+def _(ws: Workspace, folder: Path) -> Call:
+    run = _run_folder(ws, folder)
+    return Call(["evaluate", ws.model, "--data", ws.data, "--out", run / "metrics.csv", "--quiet"], [folder])
+
+
+@case("segment: --out is the input folder after an earlier run", "segment", "s0.labels.png", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    images = folder / "images"
+    shutil.copytree(ws.data / "images", images)
+    write_png(images / "s0.labels.png", scene(0)[1])  # what an earlier `segment ... images --out images` left
+    return _segment(ws, folder, images, out=images)
+
+
+@case("segment: --out holds a model file under an output name", "segment", "s0.areas.json", "model file")
+def _(ws: Workspace, folder: Path) -> Call:
+    (folder / "out").mkdir()
+    _copy_model(ws, folder / "out", "s0.areas.json")
+    return _segment(ws, folder)
+
+
+@case("sample: the same --out file twice", "sample", "s.csv", "its own name")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["sample", _labels(ws), "--out", f"{folder / 's.csv'},{folder / 's.csv'}"], [folder])
+
+
+@case("sample: --chips into the image's folder where a chip name is the image", "sample", "point_00001.png",
+      "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    image = Path(shutil.copy(ws.data / "images" / "s0.png", folder / "point_00001.png"))
+    return Call(["sample", _labels(ws), "--out", folder / "s.csv", "--image", image, "--chips", folder,
+                 "--points", 5], [folder])
+
+
+@case("assess: --out is the filled sample", "assess", "filled.csv", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    sample = _filled_sample(ws, folder)
+    return Call(["assess", sample, "--labels", _labels(ws), "--out", f"{folder / 'a.json'},{sample}"], [folder])
+
+
+@case("assess: --report is the label map", "assess", "labels.png", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    labels = Path(shutil.copy(_labels(ws), folder / "labels.png"))
+    sample = _filled_sample(ws, folder)
+    return Call(["assess", sample, "--labels", labels, "--out", f"{folder / 'a.json'},{folder / 'a.csv'}",
+                 "--report", labels], [folder])
+
+
+@case("--init is the run's own model, resumed", "train", "model.safetensors", "input of this run")
+def _(ws: Workspace, folder: Path) -> Call:
+    run = _run_folder(ws, folder)
+    return _train(ws, folder, ws.data, "--resume", "--init", run / "model.safetensors")
+
+
+_HELD: list[int] = []  # lock files held open for the rest of the session (a run in progress stands for it)
+
+
+@case("run folder locked by another training run", "train", "run", "another training run")
+def _(ws: Workspace, folder: Path) -> Call:
+    import fcntl
+
+    (folder / "run").mkdir()
+    fd = os.open(folder / "run" / ".lock", os.O_RDWR | os.O_CREAT)
+    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)  # another open file description: conflicts as another process's
+    os.write(fd, b"424242\n")
+    _HELD.append(fd)
+    return _train(ws, folder, ws.data)
+
+
+# resume points that cannot be continued
+
+def _resume_point(ws: Workspace, folder: Path, edit: Callable[[dict], object]) -> Call:
+    """A real resume point of one epoch on the good data, changed by ``edit(state)``."""
+    import torch
+
+    call = _train(ws, folder, ws.data)
+    code, _, err = run_cli(call.argv)
+    assert code == 0, err
+    path = folder / "run" / "resume.pt"
+    state = torch.load(path, weights_only=True)
+    edit(state)
+    torch.save(state, path)
+    return _train(ws, folder, ws.data, "--resume")
+
+
+@case("--resume with a resume point missing 'optimizer'", "train", "resume.pt", "lacks 'optimizer'")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _resume_point(ws, folder, lambda s: s.pop("optimizer"))
+
+
+@case("--resume with a resume point whose weight has the wrong shape", "train", "resume.pt", "the net's is")
+def _(ws: Workspace, folder: Path) -> Call:
+    def edit(state: dict) -> None:
+        name = next(iter(state["model"]))
+        state["model"][name] = state["model"][name][:1]
+    return _resume_point(ws, folder, edit)
+
+
+@case("--resume with a resume point of other training data", "train", "resume.pt", "other training data")
+def _(ws: Workspace, folder: Path) -> Call:
+    call = _train(ws, folder, ws.data)
+    code, _, err = run_cli(call.argv)
+    assert code == 0, err
+    other = write_dataset(folder / "other", count=4)
+    return _train(ws, folder, other, "--resume")
+
+
+# a starting model whose scores overflow on the data: blamed for it, not the learning rate
+
+@case("--init model whose class scores overflow", "train", "huge.safetensors", "before any training step")
+def _(ws: Workspace, folder: Path) -> Call:
+    huge = rewrite_model(ws.model, folder / "huge.safetensors", tensors=lambda t: {
+        k: v * 1e30 if k.endswith("weight") and v.ndim == 4 else v for k, v in t.items()})
+    return _train(ws, folder, ws.data, "--init", huge)
+
+
+# images far outside the range the model was trained on
+
+def _stats_model(ws: Workspace, folder: Path) -> Path:
+    stats = {"dtype": "uint8", "min": [0.0] * 3, "max": [255.0] * 3, "p01": [2.0] * 3, "p99": [250.0] * 3,
+             "pixels": 1728}
+    return rewrite_model(ws.model, folder / "m.safetensors",
+                         meta=lambda m: {**m, "fcnkit.input_stats": json.dumps(stats)})
+
+
+def _far_image(path: Path) -> Path:
+    return write_tiff(path, _with(scene(0)[0].astype(np.float32), 1e30))
+
+
+@case("image far outside the training range (a pixel of 1e30)", "segment", "s0.tif", "1e+30",
+      "far outside the range 0..255")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _segment(ws, folder, _far_image(folder / "s0.tif"), model=_stats_model(ws, folder))
+
+
+@case("image far outside the training range (a pixel of 1e30)", "evaluate", "s0.tif", "1e+30",
+      "far outside the range 0..255")
+def _(ws: Workspace, folder: Path) -> Call:
+    data = ws.copy_data(folder)
+    _replace_image(data, "s0.tif", _far_image)
+    return _evaluate(ws, folder, _stats_model(ws, folder), data=data)
+
+
+# a full disk, as writes see it (a file size limit makes them fail with EFBIG)
+
+@case("disk full while writing --out", "export", "m.onnx", "too large")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["export", ws.model, "--out", folder / "m.onnx"], [folder], fsize=2000)
+
+
+@case("disk full while writing --out", "evaluate", "scores.json", "too large")
+def _(ws: Workspace, folder: Path) -> Call:
+    call = _evaluate(ws, folder, ws.model)
+    call.fsize = 1000
+    return call
+
+
+@case("disk full while writing the resume point", "train", "resume.pt", "too large")
+def _(ws: Workspace, folder: Path) -> Call:
+    call = _train(ws, folder, ws.data)
+    call.fsize = 4000
+    return call
+
+
+@case("disk full while writing the maps", "segment", "out", "too large")
+def _(ws: Workspace, folder: Path) -> Call:
+    call = _segment(ws, folder)
+    call.fsize = 200
+    return call
+
+
+@case("demo: --out is a training run's folder", "demo", "run", "not empty", "nothing was changed")
+def _(ws: Workspace, folder: Path) -> Call:
+    return Call(["demo", "--quick", "--quiet", "--out", _run_folder(ws, folder)], [folder])
+
+
+# special files where a file is read: a FIFO would block the reader until some process writes to it
+
+def _fifo(path: Path) -> Path:
+    path.unlink(missing_ok=True)
+    os.mkfifo(path)
+    return path
+
+
+_image_case("image: a FIFO (named pipe) named s0.png", lambda d: _fifo(d / "images" / "s0.png"), "s0.png",
+            "FIFO", "not a regular file")
+_data_case("classes.toml: a FIFO (named pipe)", lambda d: _fifo(d / "classes.toml"), "classes.toml", "FIFO",
+           "not a regular file")
+
+
+@case("config: a FIFO (named pipe)", "describe", "bad.toml", "FIFO", "not a regular file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _describe(_fifo(folder / "bad.toml"))
+
+
+_model_case("model: a FIFO (named pipe)", lambda ws, f: _fifo(f / "m.safetensors"), "m.safetensors", "FIFO",
+            "not a regular file")
+
+
+@case("evaluate: --curves is a FIFO (named pipe)", "evaluate", "metrics.csv", "FIFO", "not a regular file")
+def _(ws: Workspace, folder: Path) -> Call:
+    return _evaluate(ws, folder, ws.model, "--report", folder / "r.html", "--curves", _fifo(folder / "metrics.csv"))
+
+
+# one dataset, two scales: one normalisation cannot fit 8-bit and 16-bit pixels at once
+
+_data_case("dataset: one 16-bit image among 8-bit ones", lambda d: _replace_image(d, "s0.tif", lambda p: write_tiff(
+    p, scene(0)[0].astype(np.uint16) * 39)), "s0.tif", "pixel type uint16", "uint8", commands=("train", "check"))

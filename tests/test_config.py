@@ -40,7 +40,7 @@ BAD = {
     "no stages": ("[model]\nwidths = []\n", ["model.widths", "[]", "at least one stage"]),
     "huge width": ("[model]\nwidths = [8, 1000000000]\n", ["model.widths[1]", "1000000000", "above the maximum 4096"]),
     "zero blocks": ("[model]\nwidths = [8]\nblocks = [0]\n", ["model.blocks[0]", "0", "below the minimum 1"]),
-    "too many classes": ("[model]\nclasses = 256\n", ["model.classes", "256", "above the maximum 255"]),
+    "too many classes": ("[model]\nnum_classes = 256\n", ["model.num_classes", "256", "above the maximum 255"]),
     "list length": ("[model]\nwidths = [8, 16]\nblocks = [1]\n", ["model.blocks", "1 entries", "expected 2"]),
     "skip stride absent": ('[model]\nwidths = [8, 8, 8, 8]\nfusion = "sum"\nskips = [3]\n',
                            ["model.skips", "stride 3", "allowed: 1, 2, 4"]),
@@ -127,9 +127,9 @@ def test_round_trip_dict_and_json(path: Path) -> None:
 
 def test_replace_section_revalidates() -> None:
     cfg = load_config(ROOT / "fcnkit" / "configs" / "tiny.toml")
-    assert replace_section(cfg, "model", classes=7).model.classes == 7
-    assert replace_section(cfg, "model", classes=7).model.widths == cfg.model.widths
-    with pytest.raises(ConfigError, match=r"^model\.clases: unknown key \(did you mean 'classes'\?\)"):
+    assert replace_section(cfg, "model", num_classes=7).model.num_classes == 7
+    assert replace_section(cfg, "model", num_classes=7).model.widths == cfg.model.widths
+    with pytest.raises(ConfigError, match=r"^model\.clases: unknown key \(did you mean 'num_classes'\?\)"):
         replace_section(cfg, "model", clases=7)
     with pytest.raises(ConfigError, match=r"^train\.epochs: 0 is below the minimum 1$"):
         replace_section(cfg, "train", epochs=0)
@@ -199,3 +199,15 @@ def test_version(capsys: pytest.CaptureFixture[str]) -> None:
     with pytest.raises(SystemExit) as info:
         main(["--version"])
     assert info.value.code == 0 and capsys.readouterr().out.strip() == f"fcnkit {__version__}"
+
+
+def test_older_key_spelling_is_read_with_a_note(tmp_path: Path) -> None:
+    """model.classes (a count, easily confused with the --classes table file) is now model.num_classes."""
+    path = tmp_path / "old.toml"
+    path.write_text("[model]\nclasses = 4\nwidths = [8]\n")
+    notes: list[str] = []
+    assert load_config(path, note=notes.append).model.num_classes == 4
+    assert notes == [f"{path}: model.classes is now spelled model.num_classes; read as such"]
+    assert config_from_dict({"model": {"classes": 4}}).model.num_classes == 4  # model files: silently
+    with pytest.raises(ConfigError, match=r"model.classes: give only model.num_classes"):
+        config_from_dict({"model": {"classes": 4, "num_classes": 4}})

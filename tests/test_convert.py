@@ -21,27 +21,11 @@ import torch
 import torchvision
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from model_strategies import lively
 from torch import nn
 
 from fcnkit.convert import ConvertError, convert_classifier
 from fcnkit.geometry import conv_output_size
-
-
-def lively(module: nn.Module, seed: int = 0) -> nn.Module:
-    """Random weights whose logits are of order one (torchvision's init with fresh batch-norm statistics
-    gives near-zero logits for some families, which would make an equivalence check vacuous)."""
-    g = torch.Generator().manual_seed(seed)
-    with torch.no_grad():
-        for m in module.modules():
-            if isinstance(m, (nn.BatchNorm2d, nn.BatchNorm1d)):
-                m.running_mean.copy_(0.1 * torch.randn(m.num_features, generator=g))
-                m.running_var.copy_(0.5 + torch.rand(m.num_features, generator=g))
-                m.weight.copy_(0.8 + 0.4 * torch.rand(m.num_features, generator=g))
-                m.bias.copy_(0.1 * torch.randn(m.num_features, generator=g))
-            elif isinstance(m, nn.Linear):
-                m.weight.copy_(torch.randn(m.weight.shape, generator=g) / m.in_features ** 0.5)
-                m.bias.copy_(0.1 * torch.randn(m.out_features, generator=g))
-    return module.eval()
 
 
 def user_cnn(classes: int = 4, padded: bool = False) -> nn.Sequential:

@@ -9,6 +9,7 @@ reference up-sampler.
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 import torch
 import torchvision
@@ -17,8 +18,11 @@ from torch.nn import functional as F
 
 from fcnkit import Model
 from fcnkit.convert import ConvertError, convert_classifier, grow_segmenter, rebuild
+from fcnkit.convert.sources import sequential_spec
 from fcnkit.errors import ModelFileError
 from fcnkit.geometry import downsampling_factor
+from fcnkit.inference.scan import predict_scores
+from fcnkit.modelfile import write_model_file
 from fcnkit.nets import layer_graph
 from tests.test_convert import lively, user_cnn
 
@@ -185,3 +189,38 @@ def _spec() -> list:
     from fcnkit.convert.sources import sequential_spec
 
     return sequential_spec(user_cnn(padded=True), "test")
+
+
+def _needs_two_cells() -> nn.Sequential:
+    """A classifier whose trunk reads more than one cell: a 1×1 stride-2 convolution and 2×2 pooling (stride 4),
+    a padding-free 3×3 stride-2 convolution (stride 8) and a padded 2×2 convolution that grows the map again."""
+    torch.manual_seed(3)
+    return lively(nn.Sequential(nn.Conv2d(1, 2, 1, stride=2), nn.ReLU(), nn.MaxPool2d(2), nn.Conv2d(2, 2, 3, stride=2),
+                                nn.ReLU(), nn.Conv2d(2, 2, 2, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1),
+                                nn.Flatten(), nn.Linear(2, 3)))
+
+
+@pytest.mark.parametrize("grow", [False, True])
+def test_trunks_needing_more_than_one_cell_take_any_size(tmp_path, grow: bool) -> None:
+    """Regression: a class-activation map or grown segmenter whose trunk needs more input than one cell was padded
+    to a single 8 px cell, and every image up to 8 px raised a PyTorch size error (by the default scan too). By
+    the PyTorch Conv2d size formula the padding-free 3×3 convolution needs 3 rows at stride 4, so 12 input
+    pixels: the padded side must be 16 (two cells of 8, offset 0) for any image up to 16 px."""
+    module = _needs_two_cells()
+    conv = grow_segmenter(module, 24, keep=(0, 2)) if grow else convert_classifier(module, 24)
+    assert conv.net.plan.padded(1) == 16 and conv.net.plan.padded(16) == 16
+    model = Model.from_conversion(conv, source={"source": "sequential", "layers": sequential_spec(module, "t")},
+                                  mean=[0.0], std=[1.0]).eval()
+    for h, w in ((1, 1), (5, 8), (8, 3), (13, 17)):
+        x = torch.randn(1, 1, h, w)
+        with torch.no_grad():
+            ref = model(x)
+        assert ref.shape[-2:] == (h, w)
+        got = predict_scores(model, x[0].permute(1, 2, 0).numpy(), logits=True)  # the default scan
+        np.testing.assert_allclose(got, ref[0].numpy(), atol=1e-5)  # reference: the model's own forward (torch)
+    # the model file keeps the plan; a file from before the cell count was stored still loads
+    path = model.save(tmp_path / "m.safetensors")
+    assert Model.load(path).plan == model.plan
+    values = {**model.metadata(), "padding": {"factor": 8, "offset": 0}}
+    write_model_file(tmp_path / "old.safetensors", model.net.state_dict(), values)
+    assert Model.load(tmp_path / "old.safetensors").plan == model.plan

@@ -40,7 +40,7 @@ def test_valid_dataset_report(tmp_path, capsys):
     assert report.ok, report.problems
     counts = np.bincount(np.concatenate([m.ravel() for m in masks]), minlength=256)
     assert report.class_pixels == counts[:3].tolist() and report.ignore_pixels == counts[255]
-    assert sum(report.class_fractions) == pytest.approx(1.0)
+    assert sum(report.class_shares) == pytest.approx(1.0)
     assert [(i.height, i.width, i.bands) for i in report.images] == [(20, 24, 3)] * 3
     text = format_check(report)
     assert "3 × 20×24 px, 3 bands, uint8" in text and text.splitlines()[-1].startswith("ok: 3 image/mask pairs")

@@ -65,7 +65,8 @@ def test_make_scenes_writes_the_dataset_format(tmp_path, capsys):
         img, lab = render_scene(64, np.random.default_rng([9, i]))
         np.testing.assert_array_equal(read_image(s.image), img)
         np.testing.assert_array_equal(read_mask(s.mask, SCENE_CLASSES), lab)
-    assert main(["scenes", str(tmp_path / "rgb"), "--count", "2", "--size", "48", "--seed", "9", "--no-nir"]) == 0
+    assert main(["scenes", "--out", str(tmp_path / "rgb"), "--count", "2", "--size", "48", "--seed", "9",
+                 "--no-nir"]) == 0
     rgb_samples, _ = find_samples(tmp_path / "rgb")
     assert [p.image.suffix for p in rgb_samples] == [".png", ".png"]
     np.testing.assert_array_equal(read_image(rgb_samples[1].image),
@@ -77,7 +78,7 @@ def test_make_scenes_refuses_to_overwrite_and_bad_values(tmp_path, capsys):
     (tmp_path / "full" / "keep.txt").write_text("mine")
     with pytest.raises(DataError, match="not an empty folder"):
         make_scenes(tmp_path / "full", 1, 32, 0)
-    assert main(["scenes", str(tmp_path / "full"), "--count", "1"]) == 2
+    assert main(["scenes", "--out", str(tmp_path / "full"), "--count", "1"]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "full" in err and (tmp_path / "full" / "keep.txt").read_text() == "mine"
     with pytest.raises(ConfigError, match="count = 0"):

@@ -4,8 +4,11 @@ from __future__ import annotations
 
 import json
 
+import pytest
+
 from fcnkit.cli import main
 from fcnkit.demo import MARKER, QUICK, prepare, run_demo
+from fcnkit.errors import DataError
 
 
 def test_quick_demo_end_to_end(tmp_path):
@@ -45,7 +48,10 @@ def test_rerun_clears_only_the_demos_own_outputs(tmp_path):
     (out / "run" / "model.safetensors").write_text("old")
     (out / "report.html").write_text("old")
     (out / "my_notes.txt").write_text("kept")
-    prepare(out)  # an earlier demo's folder: its outputs go, anything else stays
+    with pytest.raises(DataError, match="holds an earlier demo run; refusing to replace it"):
+        prepare(out)  # the one overwrite rule: nothing replaced unless asked
+    assert (out / "report.html").read_text() == "old"
+    prepare(out, overwrite=True)  # an earlier demo's folder: its outputs go, anything else stays
     assert sorted(p.name for p in out.iterdir()) == sorted([MARKER, "my_notes.txt"])
 
 

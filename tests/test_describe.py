@@ -59,7 +59,7 @@ def test_describe_every_shipped_config(path: Path) -> None:
     side = cfg.model.min_size
     with torch.no_grad():
         assert net.eval()(torch.rand(1, cfg.model.bands, side, side + 1)).shape == (
-            1, cfg.model.classes, side, side + 1)
+            1, cfg.model.num_classes, side, side + 1)
 
 
 def test_describe_of_a_global_net_says_so() -> None:

@@ -50,7 +50,7 @@ def _dataset(root, classes=CLASSES):
 
 @pytest.fixture
 def model_file(tmp_path):
-    cfg = config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [8, 16], "blocks": [1, 1],
+    cfg = config_from_dict({"model": {"bands": 3, "num_classes": 3, "widths": [8, 16], "blocks": [1, 1],
                                       "fusion": "sum", "min_size": 16}})
     torch.manual_seed(0)
     net = build_model(cfg)
@@ -127,7 +127,7 @@ class _Images(HTMLParser):
 def test_report_and_cli(tmp_path, model_file, capsys):
     data = _dataset(tmp_path / "data")
     (tmp_path / "metrics.csv").write_text("epoch,train_loss,val_miou,lr\n1,1.0,0.4,0.001\n2,0.7,0.6,0.0005\n")
-    code = main(["evaluate", str(model_file), "--data", str(data), "--json", str(tmp_path / "e.json"),
+    code = main(["evaluate", str(model_file), "--data", str(data), "--out", str(tmp_path / "e.json"),
                  "--report", str(tmp_path / "r.html"), "--tile", "64", "--examples", "2", "--quiet"])
     assert code == 0
     printed = capsys.readouterr().out
@@ -161,7 +161,7 @@ def test_classes_differing_from_the_model_are_refused(tmp_path, model_file, caps
                         ClassInfo(2, "moss", (40, 160, 60))))
     data = _dataset(tmp_path / "data", other)
     err = _one_line_exit_2(capsys, ["evaluate", str(model_file), "--data", str(data),
-                                    "--json", str(tmp_path / "e.json"), "--report", str(tmp_path / "r.html")])
+                                    "--out", str(tmp_path / "e.json"), "--report", str(tmp_path / "r.html")])
     assert "classes.toml" in err and "lake" in err and "pool" in err
     assert not (tmp_path / "e.json").exists() and not (tmp_path / "r.html").exists()
 
@@ -171,7 +171,7 @@ def test_empty_folder_is_refused(tmp_path, model_file, capsys):
     (tmp_path / "data" / "masks").mkdir()
     write_classes(tmp_path / "data" / "classes.toml", CLASSES)
     err = _one_line_exit_2(capsys, ["evaluate", str(model_file), "--data", str(tmp_path / "data"),
-                                    "--json", str(tmp_path / "e.json")])
+                                    "--out", str(tmp_path / "e.json")])
     assert "no images" in err
     assert not (tmp_path / "e.json").exists()
 

@@ -24,7 +24,7 @@ MEAN, STD = [110.0, 95.0, 80.0], [40.0, 35.0, 30.0]
 
 
 def _net(fusion: str = "sum") -> Model:
-    cfg = config_from_dict({"model": {"bands": 3, "classes": 4, "widths": [8, 12, 16], "blocks": [1, 1, 1],
+    cfg = config_from_dict({"model": {"bands": 3, "num_classes": 4, "widths": [8, 12, 16], "blocks": [1, 1, 1],
                                       "fusion": fusion, "min_size": 16}})
     torch.manual_seed(0)
     net = build_model(cfg)
@@ -142,7 +142,7 @@ def test_cli_exports_a_model_file_with_its_metadata(tmp_path, capsys):
     from fcnkit.config import config_to_dict
     from fcnkit.data.classes import ClassInfo, ClassTable
 
-    cfg = config_from_dict({"model": {"bands": 3, "classes": 2, "widths": [8, 16], "min_size": 8}})
+    cfg = config_from_dict({"model": {"bands": 3, "num_classes": 2, "widths": [8, 16], "min_size": 8}})
     classes = ClassTable((ClassInfo(0, "bare", (90, 80, 70)), ClassInfo(1, "crack", (250, 20, 20))))
     path = tmp_path / "model.safetensors"
     Model(build_model(cfg), classes=classes, mean=MEAN, std=STD, config=config_to_dict(cfg)).save(path)

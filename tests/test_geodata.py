@@ -36,7 +36,7 @@ GRID = Affine(2.0, 0.0, 500000.0, 0.0, -2.0, 6000000.0)
 def _net(bands: int, mean: list[float] | None = None, std: list[float] | None = None) -> Model:
     """A tiny random-weight model (no normalisation unless given)."""
     torch.manual_seed(0)
-    net = build_model(config_from_dict({"model": {"bands": bands, "classes": 3, "widths": [4, 6], "fusion": "sum",
+    net = build_model(config_from_dict({"model": {"bands": bands, "num_classes": 3, "widths": [4, 6], "fusion": "sum",
                                                   "min_size": 8}}))
     return Model(net, classes=None, mean=mean or [0.0] * bands, std=std or [1.0] * bands).eval()
 

@@ -168,7 +168,7 @@ def test_receptive_field_matches_gradient_measurement(cfg: ModelConfig) -> None:
     picks = [(mid + ph, ph % cols) for ph in range(factor)] + [(0, cols - 1), (rows - 1, 0)]
     x = (torch.rand(len(picks), cfg.bands, rows, cols, dtype=torch.float64) + 0.5).requires_grad_()
     y = body(x)
-    assert y.shape == (len(picks), cfg.classes, rows, cols)
+    assert y.shape == (len(picks), cfg.num_classes, rows, cols)
     total = sum(y[i, :, r, c].sum() for i, (r, c) in enumerate(picks))
     (grad,) = torch.autograd.grad(total, x)
     lo_r, hi_r = geometry.dependency_intervals(graph, rows)
@@ -244,7 +244,7 @@ def test_params_and_macs_match_the_module(cfg: ModelConfig, h: int, w: int) -> N
 
 
 def test_global_layers_rule_out_exact_tiling() -> None:
-    graph = layer_graph(build_model(ModelConfig(bands=3, classes=2, widths=[4, 4], norm="group", groups=2)))
+    graph = layer_graph(build_model(ModelConfig(bands=3, num_classes=2, widths=[4, 4], norm="group", groups=2)))
     assert not geometry.is_local(graph)
     assert {g.note for g in geometry.global_layers(graph)} == {"GroupNorm"}
     with pytest.raises(ValueError, match="global layers"):
@@ -252,21 +252,21 @@ def test_global_layers_rule_out_exact_tiling() -> None:
 
 
 @settings(max_examples=300, deadline=None)
-@given(factor=st.integers(1, 64), offset=st.integers(-64, 400), n=st.integers(1, 3000))
-def test_padding_plan_aligns_every_size(factor: int, offset: int, n: int) -> None:
-    """The one padding rule: a padded side is the offset plus a whole number (at least one) of cells, holds the
-    crop and the input, and is the smallest such side (no cell computed in vain)."""
-    plan = geometry.PadPlan(factor, offset)
+@given(factor=st.integers(1, 64), offset=st.integers(-64, 400), n=st.integers(1, 3000), cells=st.integers(1, 4))
+def test_padding_plan_aligns_every_size(factor: int, offset: int, n: int, cells: int) -> None:
+    """The one padding rule: a padded side is the offset plus a whole number (at least ``cells``) of cells, holds
+    the crop and the input, and is the smallest such side (no cell computed in vain)."""
+    plan = geometry.PadPlan(factor, offset, cells)
     side = plan.padded(n)
     assert plan.before >= 0 and plan.after(n) >= 0 and plan.crop >= 0
-    assert (side - offset) % factor == 0 and side - offset >= factor
+    assert (side - offset) % factor == 0 and side - offset >= cells * factor
     # the net's output (side − offset pixels at full resolution, from the offset's half on) covers the crop
     assert plan.crop + n <= side - offset
-    assert side - factor < max(plan.before + n, offset + factor, plan.crop + n + offset)
+    assert side - factor < max(plan.before + n, offset + cells * factor, plan.crop + n + offset)
 
 
 def test_padding_plan_records_for_traced_sizes() -> None:
     """The rule is plain arithmetic, so a size a tracer hands over as a tensor gives the same padding."""
-    plan = geometry.PadPlan(8, 12)
+    plan = geometry.PadPlan(8, 12, cells=2)
     for n in (1, 5, 17, 40):
         assert int(plan.after(torch.tensor(n), lambda v: v.clamp(min=0))) == plan.after(n)

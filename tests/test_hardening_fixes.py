@@ -84,7 +84,7 @@ def test_segment_refuses_a_folder_without_images_and_a_negative_pixel_size(tmp_p
         find_images([tmp_path / "empty"])
     from model_strategies import as_model
 
-    net = as_model(build_model(config_from_dict({"model": {"widths": [4], "blocks": [1], "bands": 3, "classes": 2,
+    net = as_model(build_model(config_from_dict({"model": {"widths": [4], "blocks": [1], "bands": 3, "num_classes": 2,
                                                            "min_size": 1}})))
     image = _tiff(tmp_path / "i.tif", np.zeros((16, 16, 3), np.uint8))
     with pytest.raises(ConfigError, match="pixel_size: -0.5 is not a positive"):  # used to write negative areas
@@ -100,9 +100,9 @@ def test_atomic_output_names_the_final_file_when_its_folder_is_missing(tmp_path)
 # --- the memory check --------------------------------------------------------------------------------------------
 
 NETS = {
-    "chain": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "blocks": [1, 1, 1], "min_size": 4},
-    "sum": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "fusion": "sum", "min_size": 4},
-    "unet": {"bands": 3, "classes": 2, "widths": [8, 16, 32], "fusion": "concat", "min_size": 4},
+    "chain": {"bands": 3, "num_classes": 2, "widths": [8, 16, 32], "blocks": [1, 1, 1], "min_size": 4},
+    "sum": {"bands": 3, "num_classes": 2, "widths": [8, 16, 32], "fusion": "sum", "min_size": 4},
+    "unet": {"bands": 3, "num_classes": 2, "widths": [8, 16, 32], "fusion": "concat", "min_size": 4},
 }
 
 
@@ -110,7 +110,7 @@ NETS = {
 def test_forward_estimate_lies_between_the_largest_activation_and_all_of_them(name):
     """Bracket the estimate with sizes measured on the real module by forward hooks: the peak is at least
     the largest single activation (plus its input) and at most every activation kept at once."""
-    net = build_model(config_from_dict({"model": {**NETS[name], "classes": 3}})).eval()
+    net = build_model(config_from_dict({"model": {**NETS[name], "num_classes": 3}})).eval()
     graph = layer_graph(net)
     sizes = []
     for m in net.modules():
@@ -145,7 +145,7 @@ def test_training_estimate_covers_the_tensors_autograd_keeps(name):
     """Reference: the distinct tensors the real module's layers output in a training-mode forward pass (forward
     hooks, deduplicated by storage, as in-place ReLU reuses its input's): all of them stay alive for the
     backward pass, so the estimate's activation part must cover them, within the factor its rule allows."""
-    net = build_model(config_from_dict({"model": {**NETS[name], "classes": 3}})).train()
+    net = build_model(config_from_dict({"model": {**NETS[name], "num_classes": 3}})).train()
     graph = layer_graph(net)
     seen: dict[int, int] = {}
 
@@ -240,7 +240,7 @@ def test_convert_checks_the_save_path_before_converting(tmp_path, monkeypatch):
         raise AssertionError("the classifier was loaded before the output path was checked")
 
     monkeypatch.setattr(convert, "load_classifier", never)
-    code, _, err = run_cli(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--save",
+    code, _, err = run_cli(["convert", "mobilenet_v3_small", "--native", 64, "--random-weights", "--out",
                             tmp_path / "nowhere" / "m.safetensors"])
     assert code == 2 and "cannot write here" in err and "nowhere" in err, err  # was after the conversion
 
@@ -249,14 +249,14 @@ def test_a_read_only_folder_is_refused_before_any_work_even_for_root(tmp_path):
     """os.access says yes to root on any folder; the destination check now creates a probe file instead."""
     from bad_inputs import Workspace
 
-    from fcnkit.export import check_destination
+    from fcnkit.destinations import check_outputs
 
     folder = Workspace.read_only(Workspace.__new__(Workspace), tmp_path)  # only uses its folder argument
     with pytest.raises(FcnkitError, match="m.onnx: cannot write here"):
-        check_destination(folder / "m.onnx")
+        check_outputs([folder / "m.onnx"])
     with pytest.raises(FcnkitError, match="y.txt: cannot write here"):  # atomic output names the final file
         write_text_atomic(folder / "y.txt", "z")
-    check_destination(tmp_path / "fine.onnx")
+    check_outputs([tmp_path / "fine.onnx"])
     assert not [p for p in tmp_path.iterdir() if ".partial" in p.name]  # the probe is removed
 
 

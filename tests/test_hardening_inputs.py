@@ -1,6 +1,6 @@
 """The malformed-input battery (cases in tests/bad_inputs.py) against the CLI contract for bad input:
 exit status 2, exactly one line on stderr naming the culprit and what was expected, no traceback, nothing new
-under a final name in the output location and no hidden .partial file left behind."""
+under a final name in the output location, no hidden .partial file left behind and no earlier file changed."""
 
 from __future__ import annotations
 
@@ -48,6 +48,7 @@ def test_bad_input_gives_one_line_and_exit_2(ws, c):
         assert want.lower() in line.lower(), f"{want!r} not in: {line}"
     assert not o.new_files, o.new_files
     assert not o.partials, o.partials
+    assert not o.changed, o.changed
     markers = list((ws.root / "cases").rglob("MARKER"))
     assert not markers, f"a pickle payload ran: {markers}"
 
@@ -69,7 +70,7 @@ def test_a_one_pixel_image_is_accepted(ws, tmp_path):
     data = Path(shutil.copytree(ws.data, tmp_path / "data"))
     write_png(data / "images" / "dot.png", scene(5)[0][:1, :1])
     write_png(data / "masks" / "dot.png", np.array([[1]], np.uint8))
-    code, _, err = run_cli(["evaluate", ws.model, "--data", data, "--json", tmp_path / "s.json", "--quiet"])
+    code, _, err = run_cli(["evaluate", ws.model, "--data", data, "--out", tmp_path / "s.json", "--quiet"])
     assert code == 0, err
     assert (tmp_path / "s.json").is_file()
     code, _, err = run_cli(["train", ws.config, "--data", data, "--out", tmp_path / "run", "--quiet"])

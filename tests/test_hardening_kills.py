@@ -1,5 +1,5 @@
 """Killed runs: SIGKILL at random points of training and of mapping (tiles and row streaming), and Ctrl-C
-(SIGINT) in training and tiled inference.
+(SIGINT) and SIGTERM in training and mapping.
 
 Training killed anywhere and continued with ``--resume`` must end bit-identical to an uninterrupted run
 (single thread, torch.use_deterministic_algorithms, fixed seeds); tiled inference killed anywhere must leave
@@ -179,6 +179,22 @@ def test_ctrl_c_in_training_writes_a_resume_point_and_exits_130(runner, training
     _assert_same(best, ref_best)
 
 
+def test_sigterm_in_training_writes_a_resume_point_and_exits_143(runner, training):
+    # SIGTERM (a scheduler's or a container's stop) is handled as Ctrl-C: a resume point at the signal, one
+    # line, 128 + 15; resumed, the run ends bit-identical to an uninterrupted one.
+    root, (ref_last, ref_best, _), steps = training
+    out = root / "sigterm"
+    code, log = runner.run(_train_argv(root, out), (STEP, steps // 2 + 1, 0.0, signal.SIGTERM))
+    assert code == 143, log
+    assert log.strip().splitlines() == [f"fcnkit train: terminated; resume point saved to {out / 'resume.pt'}, "
+                                        "continue with --resume"]
+    code, log = runner.run(_train_argv(root, out, resume=True))
+    assert code == 0, log
+    last, best, _ = _state(out)
+    _assert_same(last, ref_last)
+    _assert_same(best, ref_best)
+
+
 # --- tiled inference ----------------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
@@ -215,7 +231,7 @@ def _kill_then_rerun(runner: Runner, argv: list, out: Path, hook: tuple, referen
     assert code == -signal.SIGKILL, (hook, log)
     for name, data in _finals(out).items():  # whatever has a final name is complete
         assert data == reference[name], name
-    code, log = runner.run([*argv, "--out", out])
+    code, log = runner.run([*argv, "--out", out, "--overwrite"])  # replaces what the killed run finished
     assert code == 0, log
     assert _finals(out) == reference
 
@@ -258,3 +274,27 @@ def test_ctrl_c_in_tiled_inference_exits_130_leaving_nothing_partial(runner, map
         assert data == reference[name], name
     hidden = [p.name for p in out.iterdir() if p.name.startswith(".")]
     assert not hidden, f"temporary files left after Ctrl-C: {hidden}"
+
+
+@pytest.mark.parametrize("scan", ["tiles", "rows"])
+def test_sigterm_in_mapping_exits_143_leaving_nothing_partial(runner, mapping, scan):
+    root, argv, reference, counts = mapping
+    out = root / f"sigterm-{scan}"
+    if scan == "rows":
+        argv = [a for a in argv if a not in ("--tile", 48, "--batch", 2)]
+        hook = (ROWS, 2, 0.0, signal.SIGTERM)
+    else:
+        hook = (TILES, counts[TILES] - 2, 0.0, signal.SIGTERM)
+    code, log = runner.run([*argv, "--out", out], hook)
+    assert code == 143, log
+    lines = [line for line in log.strip().splitlines() if not line.startswith("fcnkit: note: ")]
+    assert lines == ["fcnkit segment: terminated"], log
+    finals = _finals(out)
+    if scan == "tiles":  # the first image's outputs are complete, the second has none
+        assert set(finals) == {n for n in reference if n.startswith("field.")}
+        for name, data in finals.items():
+            assert data == reference[name], name
+    else:  # stopped while streaming the first image: no output at all
+        assert not finals
+    hidden = [p.name for p in out.iterdir() if p.name.startswith(".")] if out.exists() else []
+    assert not hidden, f"temporary files left after SIGTERM: {hidden}"

@@ -58,9 +58,9 @@ def test_the_cli_refuses_payloads_everywhere_a_model_file_goes_in(tmp_path, kind
     run.mkdir()
     shutil.copy(evil_pt, run / "resume.pt")
     config = tmp_path / "c.toml"
-    config.write_text("[model]\nclasses = 3\nwidths = [4]\nmin_size = 1\n")
+    config.write_text("[model]\nnum_classes = 3\nwidths = [4]\nmin_size = 1\n")
     commands = [
-        ["evaluate", evil_model, "--data", data, "--json", tmp_path / "e.json", "--quiet"],
+        ["evaluate", evil_model, "--data", data, "--out", tmp_path / "e.json", "--quiet"],
         ["segment", evil_model, data / "images" / "s0.png", "--out", tmp_path / "out", "--quiet"],
         ["export", evil_model, "--out", tmp_path / "m.onnx"],
         ["train", config, "--data", data, "--out", tmp_path / "run2", "--init", evil_model, "--quiet"],

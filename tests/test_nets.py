@@ -85,7 +85,7 @@ def test_net_output_is_input_sized(fusion: str, upsample: str, down: str, data: 
     x = torch.rand(n, cfg.bands, h, w)
     with torch.no_grad():
         y = net(x)
-    assert y.shape == (n, cfg.classes, h, w) and torch.isfinite(y).all()
+    assert y.shape == (n, cfg.num_classes, h, w) and torch.isfinite(y).all()
     # sides already multiples of the factor are not padded: the net is then exactly its body
     hh, ww = net.factor * -(-h // net.factor), net.factor * -(-w // net.factor)
     xp = torch.rand(n, cfg.bands, hh, ww)
@@ -94,7 +94,7 @@ def test_net_output_is_input_sized(fusion: str, upsample: str, down: str, data: 
 
 
 def test_net_trains_on_tiny_inputs() -> None:
-    cfg = ModelConfig(bands=2, classes=3, widths=[4, 4, 4], fusion="sum")
+    cfg = ModelConfig(bands=2, num_classes=3, widths=[4, 4, 4], fusion="sum")
     net = build_model(cfg).train()
     y = net(torch.rand(2, 2, 5, 3))
     assert y.shape == (2, 3, 5, 3)

@@ -48,7 +48,7 @@ def test_area_table_rows_and_csv_with_a_nodata_row():
     counts = np.array([300, 0, 700])
     rows = area_rows(counts, CLASSES, counts * 0.25)
     assert [r["pixels"] for r in rows] == [300, 0, 700]
-    assert [r["fraction"] for r in rows] == [0.3, 0.0, 0.7]  # of the valid pixels
+    assert [r["share"] for r in rows] == [0.3, 0.0, 0.7]  # of the valid pixels
     assert [r["area_m2"] for r in area_rows(counts, CLASSES, None)] == [None, None, None]
     parsed = list(csv.DictReader(io.StringIO(areas_csv(rows, (255, 42)))))  # read back with the csv module
     assert [p["name"] for p in parsed] == [*CLASSES.names, "nodata"]

@@ -81,7 +81,7 @@ def test_regions_merged_across_bands_equal_the_whole_maps(seed, band, blobs):
 def _model_file(folder):
     from fcnkit import Model
 
-    cfg = config_from_dict({"model": {"bands": 3, "classes": 3, "widths": [4, 6], "fusion": "sum", "min_size": 8}})
+    cfg = config_from_dict({"model": {"bands": 3, "num_classes": 3, "widths": [4, 6], "fusion": "sum", "min_size": 8}})
     torch.manual_seed(1)
     model = Model(build_model(cfg), classes=CLASSES, mean=[2000.0] * 3, std=[900.0] * 3, config=config_to_dict(cfg))
     return model.save(folder / "model.safetensors")

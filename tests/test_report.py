@@ -150,7 +150,7 @@ def test_html_parses_embeds_every_image_and_names_every_class(tmp_path):
     truth, pred = _predictions()
     cm = confusion_matrix(truth, pred, 4)
     _metrics_csv(tmp_path / "metrics.csv")
-    net = build_model(config_from_dict({"model": {"bands": 3, "classes": 4, "widths": [8, 16], "min_size": 8}}))
+    net = build_model(config_from_dict({"model": {"bands": 3, "num_classes": 4, "widths": [8, 16], "min_size": 8}}))
     path = write_report(tmp_path / "report.html", segmentation_scores(cm), cm, CLASSES,
                         facts={"model": "model.safetensors"}, curves=tmp_path / "metrics.csv",
                         examples=_examples(), description=describe(net))

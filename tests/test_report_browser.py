@@ -135,7 +135,7 @@ def full_report(folder: Path, classes: ClassTable = CLASSES, seed: int = 0,
         for e in range(1, 13):
             w.writerow([e, 10 * e, 1e-3 / e, 1 / e, 1.1 / e, 1 - 0.3 / e, 1 - 0.35 / e, 1 - 0.4 / e, 1 - 0.38 / e,
                         9000, *(1 - (0.3 + 0.5 * i / k) / e for i in range(k))])
-    net = build_model(config_from_dict({"model": {"bands": 3, "classes": k, "widths": [8, 16], "min_size": 8}}))
+    net = build_model(config_from_dict({"model": {"bands": 3, "num_classes": k, "widths": [8, 16], "min_size": 8}}))
     facts = {"model": "/srv/kessmoor/runs/2031-04-02-heath-and-ponds-with-a-long-folder-name/model.safetensors",
              "data": "/srv/kessmoor/scenes/test", "images": "3", "scan": "rows (exact)",
              "trained on": "/srv/kessmoor/scenes/train (24 images, 20 % for validation)",

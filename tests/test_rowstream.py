@@ -72,7 +72,7 @@ class _CountingRaster(ArrayRaster):
 def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
     # A tall image streams: the first scores arrive after reading a few bands (the receptive field's depth),
     # not the whole image, and the rows carried over between bands do not grow with the height.
-    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4, 4], "min_size": 8}})
+    cfg = config_from_dict({"model": {"bands": 1, "num_classes": 2, "widths": [4, 4, 4], "min_size": 8}})
     net = as_model(build_model(cfg))
     raster = _CountingRaster(np.random.default_rng(0).random((4000, 40, 1)).astype(np.float32))
     streamer = RowStreamer(net)
@@ -108,15 +108,21 @@ def test_streaming_survives_torch_fx_tracing_in_another_thread():
 
 
 def test_auto_scan_streams_when_it_can_and_says_when_it_does_not():
-    net = as_model(build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4],
+    net = as_model(build_model(config_from_dict({"model": {"bands": 1, "num_classes": 2, "widths": [4, 4],
                                                            "min_size": 8}})))
     assert choose_scan(net, 50, 60) == ScanChoice("rows", True, None)
     for option, said in (({"tta": True}, "flip TTA"), ({"tiles_asked": True}, "tile settings"),
                          ({"engine": "onnxruntime"}, "another engine")):
         choice = choose_scan(net, 50, 60, **option)
         assert (choice.scan, choice.exact) == ("tiles", False) and said in choice.note and "not exact" in choice.note
-    assert choose_scan(net, 50, 60, exact_tiles=True) == ScanChoice("tiles", True, None)  # nothing lost
+    # exact means equal to whole-image inference on every path: rows already are; tiles become exact tiles
+    assert choose_scan(net, 50, 60, exact=True) == ScanChoice("rows", True, None)
+    choice = choose_scan(net, 50, 60, exact=True, tiles_asked=True)
+    assert (choice.scan, choice.exact) == ("tiles", True) and "exact tiles" in choice.note
     assert choose_scan(net, 50, 60, "tiles") == ScanChoice("tiles", False, None)
+    assert choose_scan(net, 50, 60, "tiles", exact=True) == ScanChoice("tiles", True, None)
+    with pytest.raises(ConfigError, match=r"exact: flip TTA .* never equal whole-image inference"):
+        choose_scan(net, 50, 60, exact=True, tta=True)
     with pytest.raises(ConfigError, match=r"scan: rows cannot be combined with flip TTA"):
         choose_scan(net, 50, 60, "rows", tta=True)
     with pytest.raises(ConfigError, match=r"scan: 'columns' is not one of: auto, rows, whole, tiles"):
@@ -125,7 +131,7 @@ def test_auto_scan_streams_when_it_can_and_says_when_it_does_not():
 
 def test_group_norm_nets_are_mapped_whole_and_exactly():
     """A net with a global layer cannot be streamed: auto maps a small image in one pass (exact) and says so."""
-    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "norm": "group", "min_size": 8}})
+    cfg = config_from_dict({"model": {"bands": 1, "num_classes": 2, "widths": [4, 4], "norm": "group", "min_size": 8}})
     net = as_model(build_model(cfg))
     with pytest.raises(NotStreamable, match="GroupNorm cannot be streamed"):
         RowStreamer(net)
@@ -142,7 +148,7 @@ def test_group_norm_nets_are_mapped_whole_and_exactly():
 
 def test_predict_scores_rows_equal_exact_tiles():
     # Two independent exact paths must agree: row streaming and exact tiling (both against the whole image).
-    cfg = config_from_dict({"model": {"bands": 2, "classes": 3, "widths": [4, 8, 8], "fusion": "sum",
+    cfg = config_from_dict({"model": {"bands": 2, "num_classes": 3, "widths": [4, 8, 8], "fusion": "sum",
                                       "skips": [2], "min_size": 8}})
     net = as_model(randomise_statistics(build_model(cfg), 5, deconv=True))
     img = np.random.default_rng(2).random((301, 257, 2)).astype(np.float32)
@@ -230,7 +236,7 @@ def test_transposed_convolution_by_phases_equals_torch(cin, cout, s, extra, h, w
 def test_prepared_nets_are_rebuilt_when_the_weights_change():
     # Regression guard for the per-model cache: a BN-folded copy must never outlive a change of the weights
     # (in-place updates as by an optimiser, or new parameter tensors).
-    net = build_model(config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8}}))
+    net = build_model(config_from_dict({"model": {"bands": 1, "num_classes": 2, "widths": [4, 4], "min_size": 8}}))
     net = as_model(randomise_statistics(net, 0, deconv=True))
     img = np.random.default_rng(0).random((32, 40, 1)).astype(np.float32)
     before = predict_scores(net, img, logits=True)

@@ -155,7 +155,7 @@ def test_selection_is_uniform_within_each_class(tmp_path, monkeypatch):
     Image.fromarray(mapped).save(labels)  # grey PNG: no georeferencing to look up, quicker to repeat
     hits = np.zeros(mapped.shape)
     for seed in range(200):
-        s = draw_sample(labels, tmp_path / "s.csv", total=12, minimum=4, seed=seed)
+        s = draw_sample(labels, tmp_path / "s.csv", total=12, minimum=4, seed=seed, overwrite=True)
         assert (mapped[s.rows, s.cols] == s.map_ids).all()
         assert len(set(zip(s.rows, s.cols, strict=True))) == len(s.rows)  # without replacement
         hits[s.rows, s.cols] += 1
@@ -258,10 +258,12 @@ def test_chips(tmp_path):
     assert chip.shape == (256, 256, 3)
     assert (chip[8 * 16 - 1, 8 * 16 - 1:8 * 16 + 17] == (255, 255, 0)).all()  # the point's pixel outlined
     with pytest.raises(DataError, match="mapped image"):
-        draw_sample(labels, tmp_path / "s.csv", total=12, chips=tmp_path / "chips")
+        draw_sample(labels, tmp_path / "s2.csv", total=12, chips=tmp_path / "chips")
     small = write_labels(tmp_path / "small.tif", mapped[:10])
     with pytest.raises(DataError, match=r"small\.tif: 30x10 pixels, but the label map .* has 30x24"):
-        draw_sample(labels, tmp_path / "s.csv", total=12, image=small, chips=tmp_path / "chips")
+        draw_sample(labels, tmp_path / "s3.csv", total=12, image=small, chips=tmp_path / "chips3")
+    with pytest.raises(DataError, match=r"chips: holds earlier results \(point_\*\.png\)"):
+        draw_sample(labels, tmp_path / "s4.csv", total=12, image=tmp_path / "image.tif", chips=tmp_path / "chips")
 
 
 def test_assess_from_counts_file_equals_assess_from_map(tmp_path):

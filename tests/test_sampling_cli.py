@@ -49,16 +49,16 @@ def fill_csv(src, dst, truth, blank=0):
 
 def test_sample_fill_assess(mosaic, tmp_path, capsys):
     d, truth, mapped = mosaic
-    code = main(["sample", str(d / "labels.tif"), "--out", str(tmp_path / "s.gpkg"), str(tmp_path / "s.csv"),
+    code = main(["sample", str(d / "labels.tif"), "--out", f"{tmp_path / 's.gpkg'},{tmp_path / 's.csv'}",
                  "--classes", str(d / "classes.toml"), "--target-se", "0.04", "--min-per-class", "15",
                  "--image", str(d / "image.tif"), "--chips", str(tmp_path / "chips"), "--chip-size", "32"])
-    out = capsys.readouterr().out
-    assert code == 0 and "Cochran 1977" in out and "gpkg:" in out and "fill in the 'reference' field" in out
+    out, err = capsys.readouterr()
+    assert code == 0 and "Cochran 1977" in out and "wrote gpkg:" in err and "fill in the 'reference' field" in out
     points = list(csv.DictReader(open(tmp_path / "s.csv", newline="")))
     assert len(list((tmp_path / "chips").glob("*.png"))) == len(points) > 0
     fill_csv(tmp_path / "s.csv", tmp_path / "filled.csv", truth)
     code = main(["assess", str(tmp_path / "filled.csv"), "--labels", str(d / "labels.tif"), "--classes",
-                 str(d / "classes.toml"), "--json", str(tmp_path / "a.json"), "--csv", str(tmp_path / "a.csv"),
+                 str(d / "classes.toml"), "--out", f"{tmp_path / 'a.json'},{tmp_path / 'a.csv'}",
                  "--report", str(tmp_path / "a.html")])
     out = capsys.readouterr().out
     assert code == 0 and "overall accuracy" in out and "qualified people" in out
@@ -105,6 +105,7 @@ def test_assess_errors(mosaic, tmp_path, capsys):
     d, truth, _ = mosaic
     main(["sample", str(d / "labels.tif"), "--out", str(tmp_path / "s.csv"), "--points", "60", "--min-per-class",
           "5", "--classes", str(d / "classes.toml")])
+    capsys.readouterr()
     fill_csv(tmp_path / "s.csv", tmp_path / "part.csv", truth, blank=2)
     fill_csv(tmp_path / "s.csv", tmp_path / "full.csv", truth)
     cases = [
@@ -117,8 +118,10 @@ def test_assess_errors(mosaic, tmp_path, capsys):
          "nocounts.csv: no such counts file"),
         (["assess", str(tmp_path / "part.csv"), "--labels", str(d / "labels.tif"), "--pixel-size", "-1"],
          "--pixel-size -1.0"),
-        (["assess", str(tmp_path / "full.csv"), "--labels", str(d / "labels.tif"), "--json",
+        (["assess", str(tmp_path / "full.csv"), "--labels", str(d / "labels.tif"), "--out",
           str(tmp_path / "no" / "a.json")], "a.json: cannot write here"),
+        (["assess", str(tmp_path / "full.csv"), "--labels", str(d / "labels.tif"), "--out", "a.txt"],
+         "--out a.txt: expected one .json and/or one .csv file"),
     ]
     for argv, message in cases:
         code = main(argv)

@@ -35,7 +35,7 @@ MEAN, STD = [500.0, 600.0, 700.0, 800.0], [100.0, 120.0, 140.0, 160.0]
 
 
 def _model_file(folder: Path, bands: int = 4) -> Path:
-    cfg = config_from_dict({"model": {"bands": bands, "classes": 3, "widths": [6, 8], "fusion": "sum",
+    cfg = config_from_dict({"model": {"bands": bands, "num_classes": 3, "widths": [6, 8], "fusion": "sum",
                                       "min_size": 16}})
     torch.manual_seed(0)
     net = build_model(cfg)

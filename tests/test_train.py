@@ -114,7 +114,7 @@ def test_nan_loss_stops_and_keeps_last_good_files(scenes, tmp_path, monkeypatch)
 
 def test_cli_errors_are_one_line(scenes, tmp_path, capsys):
     cfg = tmp_path / "c.toml"
-    cfg.write_text('[model]\nbands = 3\nclasses = 5\nwidths = [8]\n[train]\nepochs = 1\n')
+    cfg.write_text('[model]\nbands = 3\nnum_classes = 5\nwidths = [8]\n[train]\nepochs = 1\n')
     assert main(["train", str(cfg), "--data", str(tmp_path / "nowhere"), "--out", str(tmp_path / "r")]) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and "nowhere" in err

@@ -59,7 +59,7 @@ def test_learns_otsu_labels_of_coins_from_strokes(tmp_path):
     write_classes(ds / "classes.toml", classes)
 
     cfg = config_from_dict({
-        "model": {"bands": 1, "classes": 2, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
+        "model": {"bands": 1, "num_classes": 2, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
                   "min_size": 16},
         "train": {"epochs": 4, "batch": 8, "patch": 64, "patches_per_epoch": 48, "lr": 1e-2, "warmup": 1,
                   "val_fraction": 0.0, "balanced": True, "threads": 1, "seed": 1},

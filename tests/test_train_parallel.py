@@ -25,7 +25,7 @@ def test_two_processes_train_and_reduce_metrics(tmp_path):
                            "-m", "fcnkit", "train", str(cfg), "--data", str(data), "--out", str(out), "--quiet"],
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stderr[-3000:]
-    assert proc.stdout.count("best val mIoU") == 1  # rank 0 alone reports
+    assert proc.stdout.count("best validation mean IoU") == 1  # rank 0 alone reports
     assert sorted(p.name for p in out.iterdir()) == ["metrics.csv", "model.safetensors", "resume.pt"]
     rows = list(csv.DictReader((out / "metrics.csv").open()))
     assert [r["epoch"] for r in rows] == ["1", "2"]

@@ -111,7 +111,7 @@ def test_training_from_polygons_and_lines_matches_dense_masks_of_the_same_stroke
         assert (a != SCENE_CLASSES.ignore).mean() > 0.05 and (a == b).mean() > 0.995
 
     cfg = config_from_dict({
-        "model": {"bands": 4, "classes": 5, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
+        "model": {"bands": 4, "num_classes": 5, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
                   "min_size": 16},
         "train": {"epochs": 6, "batch": 8, "patch": 32, "patches_per_epoch": 64, "lr": 1e-2, "warmup": 1,
                   "val_fraction": 0.0, "balanced": True, "threads": 1, "seed": 3},

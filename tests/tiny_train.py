@@ -4,7 +4,7 @@ stages, so a run takes seconds."""
 import json
 
 TINY = {
-    "model": {"bands": 4, "classes": 5, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
+    "model": {"bands": 4, "num_classes": 5, "widths": [8, 16], "blocks": [1, 1], "head": [16], "fusion": "sum",
               "min_size": 16},
     "train": {"epochs": 2, "batch": 4, "patch": 32, "patches_per_epoch": 16, "lr": 5e-3, "warmup": 1,
               "val_fraction": 0.34, "threads": 1, "class_weights": "median", "dice": 0.5},

@@ -198,14 +198,35 @@ def node_shapes(gm: fx.GraphModule, upto: fx.Node, bands: int, side: int) -> dic
     the meta device (shapes only, no arithmetic). Layers after ``upto`` are left out: a dense head only
     takes the native size."""
     run = _ShapeRun(cut_graph(gm, [upto]))
-    meta = {k: torch.empty_like(v, device="meta") for k, v in run.state_dict(keep_vars=True).items()}
     try:
-        torch.func.functional_call(run, meta, (torch.empty(1, bands, side, side, device="meta"),))
+        meta_run(run, bands, side)
     except Exception as e:  # noqa: BLE001 - a size the net cannot take
         msg = str(e).splitlines()[0] if str(e) else type(e).__name__
         raise ConvertError(f"the classifier cannot run on a {side}x{side} input: {msg}") from e
     return {n.name: tuple(n.meta["tensor_meta"].shape) for n in run.gm.graph.nodes
             if isinstance(n.meta.get("tensor_meta"), TensorMetadata)}
+
+
+def meta_run(module: nn.Module, bands: int, side: int) -> Any:
+    """``module`` run on a 1×bands×side×side input on the meta device (shapes only, no arithmetic); raises
+    what the module raises for a size it cannot take."""
+    meta = {k: torch.empty_like(v, device="meta") for k, v in module.state_dict(keep_vars=True).items()}
+    return torch.func.functional_call(module, meta, (torch.empty(1, bands, side, side, device="meta"),))
+
+
+def padding_plan(body: nn.Module, bands: int, stride: int, offset: int, native_size: int) -> PadPlan:
+    """The padding plan of a converted body: its grid (stride, offset) and the fewest whole cells a padded
+    input needs for every layer to give an output. One cell, unless a layer without padding reads more input
+    than one cell's window gives (e.g. a padding-free 3×3 convolution after the last pooling when a padded layer
+    follows); the native size always runs, so no more cells than reach it are ever needed."""
+    most = max(1, -(-(native_size - offset) // stride))
+    for cells in range(1, most):
+        try:
+            meta_run(body, bands, offset + cells * stride)
+            return PadPlan(stride, offset, cells)
+        except Exception:  # noqa: BLE001 - too small for some layer: one more cell
+            continue
+    return PadPlan(stride, offset, most)
 
 
 def first_conv(gm: fx.GraphModule) -> tuple[str, nn.Conv2d]:
@@ -498,4 +519,5 @@ def score_map(p: Plan, dense: DenseClassifier, stride: int, recipe: Recipe) -> P
         dense.head[convs[-1]] = keep_rows(dense.head[convs[-1]], recipe.keep)
     body = nn.Sequential(dense, nn.Upsample(scale_factor=stride, mode="bilinear"))
     classes = dense.head[convs[-1]].out_channels
-    return PaddedNet(body, PadPlan(stride, offset(p, stride)), p.bands, classes).eval()
+    return PaddedNet(body, padding_plan(body, p.bands, stride, offset(p, stride), p.native_size), p.bands,
+                     classes).eval()

@@ -29,6 +29,7 @@ from fcnkit.convert.dense import (
     first_conv,
     keep_rows,
     offset,
+    padding_plan,
     plan,
     score_map,
     sliding_pool,
@@ -36,7 +37,6 @@ from fcnkit.convert.dense import (
 )
 from fcnkit.convert.sources import build_torchvision, sequential_from_spec
 from fcnkit.errors import FcnkitError, ModelFileError
-from fcnkit.geometry import PadPlan
 from fcnkit.nets.blocks import BilinearUp
 from fcnkit.nets.padded import PaddedNet
 
@@ -147,7 +147,8 @@ def make_net(module: nn.Module, r: Recipe) -> PaddedNet:
         prev = t
     body = GrownBody(trunk, sliding_pool(p, same=True), nn.Sequential(*hidden), score, skip_scores, ups,
                      BilinearUp(k, prev))
-    return PaddedNet(body, PadPlan(s, delta), r.bands or p.bands, k)
+    bands = r.bands or p.bands
+    return PaddedNet(body, padding_plan(body, bands, s, delta, r.native_size), bands, k)
 
 
 def classifier_from_source(source: dict[str, Any], where: str) -> nn.Module:

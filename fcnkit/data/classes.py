@@ -26,6 +26,7 @@ from typing import Any
 
 from fcnkit.atomic import write_text_atomic
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import not_regular
 
 Color = tuple[int, int, int]
 
@@ -215,12 +216,17 @@ def _hex(c: Color) -> str:
 def read_classes_toml(path: str | Path) -> tuple[ClassTable | None, list[str]]:
     """Parse classes.toml and list every problem in it (used by ``load_classes`` and the dataset check)."""
     path = Path(path)
+    special = not_regular(path)
+    if special is not None:
+        return None, [special]
     try:
         d = tomllib.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
         return None, [f"{path}: missing (expected a class table, see README 'Dataset folders')"]
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as e:
         return None, [f"{path}: not readable as TOML ({e})"]
+    except RecursionError:
+        return None, [f"{path}: not readable as TOML (arrays or tables nested too deeply)"]
     problems: list[str] = []
     raw = _parse(d, problems)
     if raw is not None:

@@ -11,7 +11,7 @@ with the file's name. ``band_stats`` gives the per-band mean and standard deviat
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -29,6 +29,7 @@ from fcnkit.data.imageio import (
 from fcnkit.data.raster import GeoRef, Raster
 from fcnkit.data.vectors import VectorSettings, load_vector_labels, rasterise, vector_settings
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import not_regular
 
 
 @dataclass(frozen=True)
@@ -80,7 +81,7 @@ class CheckReport:
         return not self.problems
 
     @property
-    def class_fractions(self) -> list[float]:
+    def class_shares(self) -> list[float]:
         """Each class's share of the labelled (non-ignore) pixels."""
         total = sum(self.class_pixels)
         return [n / total if total else 0.0 for n in self.class_pixels]
@@ -105,7 +106,10 @@ def _scan(data_dir: Path) -> tuple[list[Sample], list[str]]:
         for p in sorted(folder.iterdir()):
             if p.name.startswith(".") or p.is_dir():
                 continue
-            if p.suffix.lower() not in suffixes:
+            special = not_regular(p)  # a FIFO would block every reader
+            if special is not None:
+                problems.append(special)
+            elif p.suffix.lower() not in suffixes:
                 problems.append(f"{p}: unsupported file type (expected {', '.join(suffixes)})")
             elif p.stem in files:
                 problems.append(f"{p}: same stem as {files[p.stem].name} (each stem must be unique)")
@@ -225,15 +229,28 @@ def check_dataset(data_dir: str | Path, max_pixels: int | None = DEFAULT_MAX_PIX
         report.nodata_pixels += nodata
         report.nodata_images += nodata > 0
         counts += np.bincount(mask.ravel(), minlength=256)
-    if report.images:
-        usual = Counter(i.bands for i in report.images).most_common(1)[0][0]
-        for i in report.images:
-            if i.bands != usual:
-                report.problems.append(f"{_image_path(samples, i.stem)}: {i.bands} bands but most images have {usual}")
+    report.problems += mixed_images([(_image_path(samples, i.stem), i.bands, i.dtype) for i in report.images])
     if report.classes is not None:
         report.class_pixels = [int(n) for n in counts[:report.classes.num_classes]]
         report.ignore_pixels = int(counts[report.classes.ignore])
     return report
+
+
+def mixed_images(images: Sequence[tuple[Path, int, str]]) -> list[str]:
+    """The images (path, bands, pixel type) whose bands or pixel type differ from most images': one net takes
+    one number of bands, and one normalisation cannot fit two scales (8- and 16-bit files of one scene)."""
+    if not images:
+        return []
+    bands = Counter(b for _, b, _ in images).most_common(1)[0][0]
+    dtype = Counter(t for _, _, t in images).most_common(1)[0][0]
+    problems = []
+    for path, b, t in images:
+        if b != bands:
+            problems.append(f"{path}: {b} bands but most images have {bands} (every image needs the same bands)")
+        if t != dtype:
+            problems.append(f"{path}: pixel type {t} but most images are {dtype} (expected one pixel type; convert "
+                            "the images to one scale)")
+    return problems
 
 
 def _image_path(samples: list[Sample], stem: str) -> Path:
@@ -258,12 +275,12 @@ def format_check(report: CheckReport) -> str:
     if report.classes is not None and report.images:
         total = sum(report.class_pixels) + report.ignore_pixels
         width = max(len(n) for n in report.classes.names + ["ignore"])
-        lines.append(f"  {'id':>3}  {'class':<{width}}  {'pixels':>12}  fraction")
-        for c, n, f in zip(report.classes.classes, report.class_pixels, report.class_fractions, strict=True):
-            lines.append(f"  {c.id:>3}  {c.name:<{width}}  {n:>12}  {f:8.4f}")
+        lines.append(f"  {'id':>3}  {'class':<{width}}  {'pixels':>12}  share")
+        for c, n, f in zip(report.classes.classes, report.class_pixels, report.class_shares, strict=True):
+            lines.append(f"  {c.id:>3}  {c.name:<{width}}  {n:>12}  {f:6.1%}")
         share = report.ignore_pixels / total if total else 0.0
         lines.append(f"  {report.classes.ignore:>3}  {'ignore':<{width}}  {report.ignore_pixels:>12}  "
-                     f"({share:.4f} of all mask pixels)")
+                     f"({share:.1%} of all mask pixels)")
         absent = [c.name for c, n in zip(report.classes.classes, report.class_pixels, strict=True) if n == 0]
         if absent:
             lines.append(f"note: no labelled pixels of {', '.join(absent)}")

@@ -18,11 +18,8 @@ from PIL import Image
 
 from fcnkit.atomic import atomic_output
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import GeoRef, open_raster, read_whole
+from fcnkit.data.raster import DEFAULT_MAX_PIXELS, GeoRef, open_raster, read_whole
 from fcnkit.errors import DataError
-
-DEFAULT_MAX_PIXELS = 2**27
-"""134 MP (e.g. 11585×11585): a 10k×10k labelled image fits; larger files need an explicit ``max_pixels``."""
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff")
 MASK_SUFFIXES = (".png", ".tif", ".tiff")

@@ -41,12 +41,16 @@ from fcnkit.data.rasterbase import (  # noqa: F401 - the front also offers what 
     supported_dtype,
 )
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import require_regular
 
 TIFF_SUFFIXES = (".tif", ".tiff")
 GDAL_SUFFIXES = TIFF_SUFFIXES + (".vrt",)
 PILLOW_SUFFIXES = (".png", ".jpg", ".jpeg")
 RASTER_SUFFIXES = GDAL_SUFFIXES + PILLOW_SUFFIXES
-SEGMENT_MAX_PIXELS = 2**31  # 2.1 gigapixels; the decoded-pixel guard for segment (raise it for larger files)
+DEFAULT_MAX_PIXELS = 2**31
+"""2.1 gigapixels: the one guard against mistaken or hostile files (a header claiming 100 000 × 100 000 pixels)
+for every command; raise it for larger images. Training and ``check`` hold an image in memory, mapping streams it."""
+
 _TIFF_MAGIC = (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+")
 
 
@@ -58,6 +62,7 @@ def open_raster(path: str | Path, max_pixels: int | None, *, indices: bool = Fal
     the colours) instead of expanding them to colours.
     """
     path = Path(path)
+    require_regular(path, DataError)
     if not path.is_file():
         raise DataError(f"{path}: no such image file")
     if path.stat().st_size == 0:

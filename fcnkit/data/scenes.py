@@ -411,7 +411,7 @@ def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, ni
     if progress:
         from tqdm import tqdm
 
-        bar = tqdm(total=rows_of_blocks, desc="mosaic", unit="block row")
+        bar = tqdm(total=rows_of_blocks * cols_of_blocks, desc="mosaic", unit="scene")
 
     def blend(top: int, bh: int) -> tuple[np.ndarray, np.ndarray]:
         """Rows top..top+bh, one block column at a time: every block that reaches them, weighted (image), and
@@ -441,6 +441,8 @@ def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, ni
                     if by == own and bx == cx:
                         lab[:, X0:X1] = blk[m:m + bh, m:m + X1 - X0]
             out[:, X0:X1] = np.clip(np.rint(acc), 0, 255)
+            if bar is not None:
+                bar.update()
         return out, lab
 
     def image_rows(y0: int, y1: int) -> np.ndarray:
@@ -450,8 +452,6 @@ def write_mosaic(path: str | Path, size: int | tuple[int, int], seed: int, *, ni
             stripe.update(top=top, image=img)
             if mask_path is not None:
                 label_rows.append(zlib.compress(lab.tobytes(), 1))
-            if bar is not None:
-                bar.update()
         return stripe["image"][y0 - top:y1 - top]
 
     def mask_rows(y0: int, y1: int) -> np.ndarray:

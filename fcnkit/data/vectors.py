@@ -31,6 +31,7 @@ import shapely
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.raster import GeoRef
 from fcnkit.errors import DataError
+from fcnkit.inputfiles import special_kind
 
 VECTOR_SUFFIXES = (".gpkg", ".geojson", ".shp")
 DEFAULT_STEM = "labels"
@@ -76,10 +77,11 @@ def vector_settings(data_dir: Path) -> tuple[VectorSettings | None, list[str]]:
     """The dataset's vector label settings (None: it uses masks/) and every problem found declaring them."""
     table: object = None
     toml = data_dir / "classes.toml"
-    try:
-        table = tomllib.loads(toml.read_text(encoding="utf-8")).get("vector_labels")
-    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
-        pass  # classes.toml's own problems are reported by the class-table reader
+    try:  # classes.toml's own problems (a FIFO there too) are reported by the class-table reader
+        if special_kind(toml) is None:
+            table = tomllib.loads(toml.read_text(encoding="utf-8")).get("vector_labels")
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError):
+        pass
     if table is None:
         found = [p for p in (data_dir / f"{DEFAULT_STEM}{s}" for s in VECTOR_SUFFIXES) if p.is_file()]
         if not found or (data_dir / "masks").exists():

@@ -31,6 +31,7 @@ from torch.nn import functional as F
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
 from fcnkit.inference.bandflow import can_pin_threads, one_thread_per_worker, run_bands
+from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -436,10 +437,34 @@ def block_max(x: torch.Tensor, k: int) -> torch.Tensor:
     return out
 
 
+class _Fusion:
+    """Whether convolutions may apply the ReLU after them in the same oneDNN pass. That fused ReLU turns NaN into
+    0 where F.relu keeps it, and rows must give whatever whole-image inference gives, NaN included (every scan
+    then refuses the scores). NaN arises only from input or weights that are not finite (a NaN born inside a
+    convolution from finite values needs float32 sums overflowing both ways): so fusion is off for weights that
+    are not finite, and a stream turns it off from the first band whose input is not (checked once per band
+    rather than once per convolution: later bands' steps run after that band's input is loaded)."""
+
+    def __init__(self, ok: bool) -> None:
+        self.ok = ok
+
+
+def _conv(weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int], padding: tuple[int, int],
+          dilation: tuple[int, int], groups: int, relu: bool, fusion: _Fusion) -> Callable[[list[torch.Tensor]],
+                                                                                              torch.Tensor]:
+    """A convolution (then ReLU) by oneDNN, the ReLU fused while ``fusion`` allows."""
+    def fn(xs: list[torch.Tensor]) -> torch.Tensor:
+        if relu and not fusion.ok:
+            return F.relu(onednn_conv(xs[0], weight, bias, stride, padding, dilation, groups, False))
+        return onednn_conv(xs[0], weight, bias, stride, padding, dilation, groups, relu)
+    return fn
+
+
 def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: bool = False,
-               last: bool = False) -> _Op:
-    """The op of one module; ``relu``: a Conv2d also applies the ReLU that follows it (by oneDNN); ``onednn``:
-    convolutions run by oneDNN (:func:`onednn_conv`); ``last``: its output is the net's."""
+               last: bool = False, fusion: _Fusion | None = None) -> _Op:
+    """The op of one module; ``relu``: a Conv2d also applies the ReLU that follows it (by oneDNN, fused as
+    ``fusion`` allows); ``onednn``: convolutions run by oneDNN (:func:`onednn_conv`); ``last``: its output is the
+    net's."""
     if isinstance(m, nn.Conv2d):
         if m.padding_mode != "zeros" or isinstance(m.padding, str):
             raise NotStreamable(f"{name}: convolution padding {m.padding!r} ({m.padding_mode}) cannot be streamed")
@@ -447,7 +472,7 @@ def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: 
                                              _pair(m.padding))
         weight, bias, groups = m.weight.detach(), None if m.bias is None else m.bias.detach(), m.groups
         if onednn:
-            return _Window(lambda xs: onednn_conv(xs[0], weight, bias, (s, sw), (0, pw), (d, dw), groups, relu),
+            return _Window(_conv(weight, bias, (s, sw), (0, pw), (d, dw), groups, relu, fusion or _Fusion(True)),
                            k, s, d, p, 0.0)
         return _Window(lambda xs: F.conv2d(xs[0], weight, bias, (s, sw), (0, pw), (d, dw), groups), k, s, d, p, 0.0)
     if isinstance(m, nn.MaxPool2d) and not m.ceil_mode and not m.return_indices:
@@ -524,13 +549,16 @@ class RowStreamer:
         except Exception as e:  # a layer the tracer accepted but that fails on a small input
             raise NotStreamable(f"model: cannot run its graph on a {side}x{side} input ({' '.join(str(e).split())})"
                                 ) from None
-        self._build()  # fail now, not on the first image, if a layer cannot be streamed
+        self._build(_Fusion(True))  # fail now, not on the first image, if a layer cannot be streamed
+        self._finite_weights = all(bool(torch.isfinite(t).all()) for t in gm.state_dict().values()
+                                   if t.is_floating_point())
         self._bytes_per_pixel = 4 * max(
             math.prod(node.meta["shape"][1:]) / (side * side) for node in self._graph.graph.nodes
             if node.op in ("call_module", "call_function") and node not in self._concats and "shape" in node.meta)
 
-    def _build(self) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
-        """Fresh ops (empty row buffers) for every node of the graph, in execution order."""
+    def _build(self, fusion: _Fusion) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
+        """Fresh ops (empty row buffers) for every node of the graph, in execution order; their ReLUs fused into
+        convolutions as ``fusion`` allows."""
         modules = dict(self._graph.named_modules())
         fused = self._fusable_relus(modules)
         self._concats = self._fusable_concats(modules)
@@ -549,10 +577,11 @@ class RowStreamer:
                     op = _Pointwise(lambda x: x, False)  # done by the convolution before it
                 elif node.op == "call_module" and ins and ins[0] in self._concats:
                     ins = list(ins[0].args[0])
-                    op = self._concat_conv(modules[str(node.target)], ins, relu=node in fused)
+                    op = self._concat_conv(modules[str(node.target)], ins, relu=node in fused, fusion=fusion)
                 elif node.op == "call_module":
                     op = _module_op(modules[str(node.target)], str(node.target), copy, relu=node in fused,
-                                    onednn=self._onednn, last=all(u.op == "output" for u in node.users))
+                                    onednn=self._onednn, last=all(u.op == "output" for u in node.users),
+                                    fusion=fusion)
                 elif node.op == "call_function":
                     op = _function_op(node, len(ins), copy)
                 else:
@@ -595,13 +624,19 @@ class RowStreamer:
                 found.add(node)
         return found
 
-    def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool) -> _Window:
-        """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`)."""
+    def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool, fusion: _Fusion) -> _Window:
+        """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`; its ReLU fused as
+        ``fusion`` allows)."""
         (k, _), (s, sw), (d, dw), (p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.dilation), _pair(m.padding)
         widths = [int(part.meta["shape"][1]) for part in parts]
         weights = [w.contiguous() for w in torch.split(m.weight.detach(), widths, dim=1)]
-        return _Window(lambda xs: concat_conv(xs, weights, m.bias, (s, sw), (0, pw), (d, dw), relu), k, s, d, p, 0.0,
-                       inputs=len(parts))
+        bias = None if m.bias is None else m.bias.detach()
+
+        def fn(xs: list[torch.Tensor]) -> torch.Tensor:
+            if relu and not fusion.ok:
+                return F.relu(concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), False))
+            return concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), relu)
+        return _Window(fn, k, s, d, p, 0.0, inputs=len(parts))
 
     def band_rows(self, width: int) -> int:
         """Input rows per band for an image ``width`` pixels wide: as many as keep the band's largest feature map
@@ -618,10 +653,12 @@ class RowStreamer:
                 self.model.std.flatten().numpy().astype(np.float32))
 
     def stream(self, raster: Raster, *, logits: bool = False, rows: int | None = None, progress: bool = False,
-               desc: str = "rows", post: Callable[[torch.Tensor], Any] | None = None) -> Iterator[tuple[int, Any]]:
+               desc: str = "rows", post: Callable[[int, torch.Tensor], Any] | None = None
+               ) -> Iterator[tuple[int, Any]]:
         """Class probabilities (the model's, calibrated) or ``logits`` of ``raster``, top to bottom, as (first
-        row, C×h×W float32), or as (first row, ``post`` of them) when ``post`` is given: a band's last step, run
-        by the workers too. The graph's steps run on :func:`workers` threads (:mod:`fcnkit.inference.bandflow`)."""
+        row, C×h×W float32), or as (first row, ``post(first row, band)``) when ``post`` is given: a band's last
+        step, run by the workers too. The graph's steps run on :func:`workers` threads
+        (:mod:`fcnkit.inference.bandflow`)."""
         from tqdm import tqdm
 
         height, width, bands = raster.shape
@@ -642,6 +679,8 @@ class RowStreamer:
             flat = a.reshape(y1 - y0, width * bands)
             np.subtract(flat, mean, out=flat)
             np.divide(flat, std, out=flat)
+            if fusion.ok and not np.isfinite(flat).all():
+                fusion.ok = False  # NaN must reach the scores as in a whole-image pass (see _Fusion)
             top = p.before if y0 == 0 else 0
             if left or right or top or (y1 == height and bottom):
                 a = np.pad(a, ((top, bottom if y1 == height else 0), (left, right), (0, 0)), mode="edge")
@@ -663,10 +702,11 @@ class RowStreamer:
             if not y.shape[2]:
                 return None
             y = y if logits else self.model.probabilities(y)
-            state["done"] += y.shape[2]
-            return state["done"] - y.shape[2], y.shape[2], y[0] if post is None else post(y[0])
+            y0, state["done"] = state["done"], state["done"] + y.shape[2]
+            return y0, y.shape[2], y[0] if post is None else post(y0, y[0])
 
-        nodes = self._build()
+        fusion = _Fusion(self._finite_weights)
+        nodes = self._build(fusion)
         index = {self._input: 0} | {node: j + 1 for j, (node, _, _) in enumerate(nodes)}
         steps: list[Callable[[list, int], object]] = [load]
         deps: list[list[int]] = [[]]
@@ -696,7 +736,7 @@ class RowStreamer:
                     continue
                 yield out[0], out[2]
                 bar.update(out[1])
-                bar.set_postfix_str(f"{state['done'] * width / 1e6 / (time.perf_counter() - t0):.2f} MP/s")
+                bar.set_postfix_str(pixel_rate(state["done"] * width, time.perf_counter() - t0))
         if state["done"] != height:
             raise RuntimeError(f"row streaming produced {state['done']} of {height} rows")
 

@@ -29,6 +29,7 @@ from fcnkit.errors import ConfigError, DataError
 from fcnkit.inference.engines import Engine, make_engine, prepared
 from fcnkit.inference.rowstream import NotStreamable, RowStreamer
 from fcnkit.inference.tiles import DEFAULT_TILE, auto_batch, plan_tiles, stream_tiles
+from fcnkit.inputrange import RangeCheck
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
@@ -65,23 +66,37 @@ def _whole_fits(model: Model, height: int, width: int) -> bool:
 
 
 def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, tiles_asked: bool = False,
-                exact_tiles: bool = False, tta: bool = False, engine: str | Engine = "torch") -> ScanChoice:
-    """The scan for a height×width image (see module notes); ConfigError when the scan asked for cannot run."""
+                exact: bool = False, tta: bool = False, engine: str | Engine = "torch") -> ScanChoice:
+    """The scan for a height×width image (see module notes); ConfigError when the scan asked for cannot run.
+
+    ``exact`` means one thing on every path: the scores must equal whole-image inference. Rows and whole
+    passes always are; tiles then become exact tiles, and whatever cannot be exact (flip TTA, a net whose
+    tiles cannot be exact) is refused instead of run. Every automatic change of scan is said in ``note``."""
     if scan not in SCANS:
         raise ConfigError(f"scan: {scan!r} is not one of: {', '.join(SCANS)}")
-    geom = model.geometry
-    tiles_exact = exact_tiles and geom.margin is not None
+    if exact and tta:
+        raise ConfigError("exact: flip TTA averages flipped passes, which never equal whole-image inference; "
+                          "drop --tta or --exact")
+    tiles_can_be_exact = model.geometry.margin is not None
+    whole_image_layers = ("exact tiling is impossible: layers " + ", ".join(model.geometry.global_layers)
+                          + " make every output depend on the whole image")
+    if exact and scan == "tiles" and not tiles_can_be_exact:
+        raise ConfigError(f"exact: {whole_image_layers}; use scan rows or whole")
     if scan == "tiles":
-        return ScanChoice("tiles", tiles_exact)
-    conflicts = [name for name, bad in (("flip TTA", tta), ("tile settings", tiles_asked or exact_tiles),
+        return ScanChoice("tiles", exact)
+    conflicts = [name for name, bad in (("flip TTA", tta), ("tile settings", tiles_asked),
                                         ("another engine", engine != "torch")) if bad]
     if conflicts:
+        asked = " and ".join(conflicts)
         if scan != "auto":
-            raise ConfigError(f"scan: {scan} cannot be combined with {' and '.join(conflicts)} (use scan tiles)")
-        if tiles_exact:  # exact tiles asked for: nothing lost, nothing to say
-            return ScanChoice("tiles", True)
-        return ScanChoice("tiles", False, f"{' and '.join(conflicts)} asked for: scanning by blended tiles, "
-                          "not exact (equal to whole-image inference only by rows, a whole pass or exact tiles)")
+            raise ConfigError(f"scan: {scan} cannot be combined with {asked} (use scan tiles)")
+        if exact:
+            if not tiles_can_be_exact:
+                raise ConfigError(f"exact: {asked} need tiles, and {whole_image_layers}")
+            return ScanChoice("tiles", True, f"{asked} asked for: scanning by exact tiles (equal to whole-image "
+                              "inference)")
+        return ScanChoice("tiles", False, f"{asked} asked for: scanning by blended tiles, not exact (equal to "
+                          "whole-image inference only by rows, a whole pass or exact tiles; add --exact for those)")
     if scan in ("auto", "rows"):
         try:
             _streamer(model, False)
@@ -93,8 +108,14 @@ def choose_scan(model: Model, height: int, width: int, scan: str = "auto", *, ti
     if scan == "whole" or _whole_fits(model, height, width):
         return ScanChoice("whole", True, None if scan == "whole" else
                           f"the net cannot be streamed in rows ({reason}): one whole-image pass instead")
+    if exact:
+        if not tiles_can_be_exact:
+            raise ConfigError(f"exact: the net cannot be streamed in rows ({reason}), the {width}x{height} image "
+                              f"is too large for one pass, and {whole_image_layers}")
+        return ScanChoice("tiles", True, f"the net cannot be streamed in rows ({reason}) and the {width}x{height} "
+                          "image is too large for one pass: exact tiles")
     return ScanChoice("tiles", False, f"the net cannot be streamed in rows ({reason}) and the {width}x{height} image "
-                      "is too large for one pass: blended tiles, not exact")
+                      "is too large for one pass: blended tiles, not exact (add --exact for exact tiles)")
 
 
 def _whole(engine: Engine, raster: Raster, model: Model, logits: bool) -> Iterator[tuple[int, torch.Tensor]]:
@@ -111,41 +132,44 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
                   overlap: int | None = None, batch: int | None = None, window: str | None = None,
                   exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
                   engine: str | Engine = "torch", progress: bool = False, desc: str = "mapping",
-                  echo: Callable[[str], None] | None = None, post: Callable[[torch.Tensor], Any] | None = None
-                  ) -> Iterator[tuple[int, Any]]:
+                  echo: Callable[[str], None] | None = None, note: Callable[[str], None] | None = None,
+                  post: Callable[[torch.Tensor], Any] | None = None) -> Iterator[tuple[int, Any]]:
     """Choose the scan (:func:`choose_scan`) and stream the class probabilities (the model's calibrated ones,
     or ``logits``) of ``raster`` as (first row, C×h×W float32) bands from top to bottom. The checks run at once,
     before the first band is asked for; ``echo`` receives the one-line note of an automatic choice. Tile
     settings left as None take their defaults (512 px tiles, Hann window, a batch of about a quarter megapixel).
-    ``post``, when given, turns each band into what is streamed instead (first row, ``post(band)``): in the row
-    streaming workers, in parallel, or here on bands of at most POST_ROWS rows.
+
+    Every region read is checked against the model's training range (:mod:`fcnkit.inputrange`: ``note``, or a
+    RangeWarning, when outside; DataError when far outside), and every band of scores must be finite: a NaN or
+    inf anywhere in the net ends the scan with a DataError on every scan alike, never a plausible-looking map.
+    ``post``, when given, turns each band into what is streamed instead (first row, ``post(band)``), after that
+    check: in the row streaming workers, in parallel, or here on bands of at most POST_ROWS rows.
     """
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
 
     if batch is not None and batch < 1:
         raise ConfigError(f"batch: {batch} must be >= 1")
-    if exact and tta:
-        raise ConfigError("tta: flip test-time augmentation cannot be combined with exact tiles "
-                          "(flipped tiles see different pooling grids)")
     height, width, bands = raster.shape
+    where = str(raster.path or "image")
     if bands != model.bands:
-        where = raster.path or "image"
         raise DataError(f"{where}: has {bands} bands but the model expects {model.bands}")
+    if model.input_stats is not None:
+        raster = RangeCheck(raster, model.input_stats, where=where, model=str(model.path or "the model"), note=note)
     asked = any(v is not None for v in (tile, overlap, batch, window))
-    choice = choose_scan(model, height, width, scan, tiles_asked=asked, exact_tiles=exact, tta=tta, engine=engine)
+    choice = choose_scan(model, height, width, scan, tiles_asked=asked, exact=exact, tta=tta, engine=engine)
     graph = prepared(model, "graph", lambda m: layer_graph(m.net))
     factor = model.plan.factor
     if choice.scan == "rows":
         streamer = _streamer(model, bf16)
         check_forward_memory(graph, streamer.band_rows(width), width, 1, bands, factor=factor)  # type: ignore[arg-type]
-        return streamer.stream(raster, logits=logits, progress=progress, desc=desc, post=post)
+        return streamer.stream(raster, logits=logits, progress=progress, desc=desc, post=_checked(post, where))
     run = engine if callable(engine) else make_engine(engine, model, bf16)
     if choice.scan == "whole":
         _say(echo, choice)
-        return _posted(_whole(run, raster, model, logits), post)
+        return _posted(_whole(run, raster, model, logits), post, where)
     plan = plan_tiles(model.geometry, height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
-                      window=window or "hann", exact=exact)
+                      window=window or "hann", exact=choice.exact)
     batch = batch or auto_batch(plan)
     rows, cols = max(s.stop - s.start for s in plan.rows), max(s.stop - s.start for s in plan.cols)
     check_forward_memory(graph, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,  # type: ignore[arg-type]
@@ -153,15 +177,32 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     _say(echo, choice)
     return _posted(stream_tiles(run, raster, plan, batch=batch, tta=tta,
                                 probabilities=None if logits else model.probabilities, progress=progress, desc=desc),
-                   post)
+                   post, where)
 
 
-def _posted(bands: Iterator[tuple[int, torch.Tensor]], post: Callable[[torch.Tensor], Any] | None
-            ) -> Iterator[tuple[int, Any]]:
-    """``post`` of each band, in bands of at most POST_ROWS rows (its temporaries stay small), or the bands."""
-    if post is None:
-        return bands
-    return ((y0 + k, post(band[:, k:k + POST_ROWS])) for y0, band in bands for k in range(0, band.shape[1], POST_ROWS))
+def _checked(post: Callable[[torch.Tensor], Any] | None, where: str) -> Callable[[int, torch.Tensor], Any]:
+    """A band's last step: the band (first row ``y0``), checked to be finite, then ``post`` of it (or itself)."""
+    def run(y0: int, band: torch.Tensor) -> Any:
+        if not bool(torch.isfinite(band).all()):
+            bad = torch.nonzero(~torch.isfinite(band))[0].tolist()
+            raise DataError(f"{where}: the model's class scores are NaN or infinite at row {y0 + bad[1]}, column "
+                            f"{bad[2]} (its activations overflowed: pixel values far outside what it was trained "
+                            "on, or a damaged model)")
+        return band if post is None else post(band)
+    return run
+
+
+def _posted(bands: Iterator[tuple[int, torch.Tensor]], post: Callable[[torch.Tensor], Any] | None,
+            where: str) -> Iterator[tuple[int, Any]]:
+    """Each band checked to be finite, then ``post`` of it in pieces of at most POST_ROWS rows (its temporaries
+    stay small), or the band itself."""
+    step = _checked(post, where)
+    for y0, band in bands:
+        if post is None:
+            yield y0, step(y0, band)
+        else:
+            for k in range(0, band.shape[1], POST_ROWS):
+                yield y0 + k, step(y0 + k, band[:, k:k + POST_ROWS])
 
 
 def _say(echo: Callable[[str], None] | None, choice: ScanChoice) -> None:

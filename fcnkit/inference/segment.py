@@ -12,9 +12,10 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from fcnkit.atomic import DISK_FULL, default_mode
 from fcnkit.data.classes import ClassTable
-from fcnkit.data.raster import SEGMENT_MAX_PIXELS
-from fcnkit.errors import ConfigError
+from fcnkit.data.raster import DEFAULT_MAX_PIXELS
+from fcnkit.errors import ConfigError, DataError, DiskFullError
 from fcnkit.inference.engines import Engine, make_engine
 from fcnkit.inference.scan import stream_scores
 from fcnkit.model import Model
@@ -35,7 +36,7 @@ def as_model(model_or_path: Model | str | Path) -> Model:
 @dataclass
 class SegmentResult:
     """The files written for one image (by kind: labels, confidence, uncertainty, overlay, areas_csv,
-    areas_json) and its per-class area rows (id, name, pixels, fraction, area_m2)."""
+    areas_json) and its per-class area rows (id, name, pixels, share, area_m2)."""
 
     paths: dict[str, Path]
     areas: list[dict]
@@ -44,9 +45,21 @@ class SegmentResult:
     notes: list[str] = field(default_factory=list)  # one line each: nodata met, areas unknown
 
 
-def _prepare_folder(out_dir: Path) -> None:
-    from fcnkit.errors import DataError
+def check_segment_outputs(model: Model, images: Sequence[Path], out_dir: Path,
+                          outputs: OutputOptions | None = None, overwrite: bool = False) -> None:
+    """Refuse, before any work, outputs that would replace an input (an image, the model file) or weights
+    (:func:`fcnkit.destinations.check_outputs`), for every output name an image may get."""
+    from fcnkit.destinations import check_outputs
+    from fcnkit.outputs import output_names
 
+    polygons = outputs.polygons if outputs is not None else None
+    names = {out_dir / n for p in images for tiff in (False, True)
+             for n in output_names(p.stem, tiff, polygons).values()}
+    check_outputs(sorted(names), inputs=[model.path, *images], folders=[out_dir], overwrite=overwrite,
+                  error=DataError)
+
+
+def _prepare_folder(out_dir: Path) -> None:
     if out_dir.exists() and not out_dir.is_dir():
         raise DataError(f"{out_dir}: is a file, expected an output folder")
     try:
@@ -59,9 +72,9 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
                   scan: str = "auto", tile: int | None = None, overlap: int | None = None, batch: int | None = None,
                   window: str | None = None, exact: bool = False,
                   tta: bool = False, pixel_size: float | tuple[float, float] | None = None,
-                  max_pixels: int | None = SEGMENT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
+                  max_pixels: int | None = DEFAULT_MAX_PIXELS, progress: bool = True, bf16: bool = False,
                   engine: Engine | str = "torch", preview: int = 1024, outputs: OutputOptions | None = None,
-                  note: Callable[[str], None] | None = None) -> SegmentResult:
+                  note: Callable[[str], None] | None = None, overwrite: bool = False) -> SegmentResult:
     """Map one image file (PNG, JPEG, or any GeoTIFF GDAL reads, of any size) into ``out_dir``.
 
     ``model_or_path`` is a :class:`~fcnkit.model.Model` or a model file. Writes
@@ -71,19 +84,20 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     scores stream from the scan straight into the
     8-bit maps, which are built in a hidden work folder inside ``out_dir``; every output is first completed
     there and only then moved to its final name, so a run that is stopped leaves no output at all for the image
-    rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan).
+    rather than some of them. ``note`` receives one-line notes (e.g. an automatic change of scan). Outputs
+    of an earlier run are replaced only with ``overwrite``.
     """
     import shutil
     import tempfile
 
     from fcnkit.data.raster import alpha_hint, open_raster
-    from fcnkit.errors import DataError
     from fcnkit.outputs import class_maps, write_outputs
 
     if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
         raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
     model = as_model(model_or_path)
     image_path, out_dir = Path(image_path), Path(out_dir)
+    check_segment_outputs(model, [image_path], out_dir, outputs, overwrite)
     _prepare_folder(out_dir)
     raster = open_raster(image_path, max_pixels)
     work = Path(tempfile.mkdtemp(prefix=".fcnkit-work-", dir=out_dir))
@@ -102,16 +116,27 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
 
         bands = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
                               exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
-                              desc=image_path.name, echo=note, post=maps)
+                              desc=image_path.name, echo=note, note=note, post=maps)
         done = work / "done"
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
         written = write_outputs(bands, raster, classes, done, image_path.stem, work=work if large else None,
                                 pixel_size=pixel_size, preview=preview, options=outputs)
         final = {k: out_dir / p.name for k, p in written.paths.items()}
+        mode = default_mode()
         for k, p in written.paths.items():  # renames within one file system: each is atomic, all follow at once
+            p.chmod(mode)
             p.replace(final[k])
         return SegmentResult(final, written.areas, (height, width), written.nodata_pixels, written.notes)
+    except (OSError, DiskFullError) as e:  # written in the work folder: name the file's final place
+        if isinstance(e, DiskFullError):
+            where, why = out_dir / Path(str(e.path)).name, e.reason
+        elif e.errno in DISK_FULL:
+            where, why = out_dir, e.strerror or str(e)
+        else:
+            raise
+        raise DiskFullError(f"{where}: {why} while writing the maps of {image_path} (nothing was written under a "
+                            "final name; free some space or write elsewhere)", where, why) from None
     finally:
         raster.close()
         shutil.rmtree(work, ignore_errors=True)
@@ -121,7 +146,6 @@ def find_images(inputs: Sequence[str | Path]) -> list[Path]:
     """Image files named directly or found (not recursively) in folders, sorted; DataError for a missing input
     or two inputs whose outputs would share a name."""
     from fcnkit.data.raster import RASTER_SUFFIXES
-    from fcnkit.errors import DataError
 
     found: list[Path] = []
     for item in map(Path, inputs):
@@ -164,6 +188,8 @@ def segment_images(model_or_path: Model | str | Path, inputs: Sequence[str | Pat
     distinct one-line note once."""
     model = as_model(model_or_path)
     files = shard(find_images(inputs), rank, world)
+    # every image's outputs, before the first is mapped
+    check_segment_outputs(model, files, Path(out_dir), options.get("outputs"), options.get("overwrite", False))
     engine = options.get("engine", "torch")
     if isinstance(engine, str) and engine != "torch":  # e.g. onnxruntime: build the session once
         options["engine"] = make_engine(engine, model)

@@ -31,6 +31,7 @@ from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
 from fcnkit.inference.engines import Engine
 from fcnkit.nets.graph import NetGeometry
+from fcnkit.units import pixel_rate
 from fcnkit.windows import check_window, window
 
 DEFAULT_TILE = 512
@@ -252,7 +253,7 @@ def stream_tiles(engine: Engine, raster: Raster, plan: TilePlan, *, batch: int, 
                 region = buf[:, tile.row.start - top:tile.row.stop - top, tile.col.start:tile.col.stop]
                 region.addcmul_(scores, weights[key])
             bar.update(len(group))
-            bar.set_postfix_str(f"{pixels * bar.n / bar.total / (time.perf_counter() - start):.2f} MP/s")
+            bar.set_postfix_str(pixel_rate(pixels * bar.n / bar.total, time.perf_counter() - start))
     yield top, _finish(buf, top, plan.height, wy, wx)
 
 

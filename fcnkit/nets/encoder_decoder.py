@@ -69,18 +69,18 @@ class ScoreSumDecoder(nn.Module):
     def __init__(self, m: ModelConfig) -> None:
         super().__init__()
         learn = m.upsample == "transposed"
-        self.head = ScoreHead(m.widths[-1], m.classes, m.head, m.dropout)
+        self.head = ScoreHead(m.widths[-1], m.num_classes, m.head, m.dropout)
         stride = m.stage_output_strides()[-1]
         self.taps, scores, ups = [], [], []
         for s in m.skip_strides():
             i, width = _feature_at(m, s)
             self.taps.append(i)
-            ups.append(BilinearUp(m.classes, stride // s, learn))
-            scores.append(nn.Conv2d(width, m.classes, 1))
+            ups.append(BilinearUp(m.num_classes, stride // s, learn))
+            scores.append(nn.Conv2d(width, m.num_classes, 1))
             stride = s
         self.ups = nn.ModuleList(ups)
         self.scores = nn.ModuleList(scores)
-        self.final_up = BilinearUp(m.classes, stride, learn)
+        self.final_up = BilinearUp(m.num_classes, stride, learn)
 
     def forward(self, feats: list[torch.Tensor]) -> torch.Tensor:
         y = self.head(feats[-1])
@@ -109,8 +109,8 @@ class ConcatDecoder(nn.Module):
             stride, cin = s, width
         self.ups = nn.ModuleList(ups)
         self.convs = nn.ModuleList(convs)
-        self.head = ScoreHead(cin, m.classes, m.head, m.dropout)
-        self.final_up = BilinearUp(m.classes, stride, learn)
+        self.head = ScoreHead(cin, m.num_classes, m.head, m.dropout)
+        self.final_up = BilinearUp(m.num_classes, stride, learn)
 
     def forward(self, feats: list[torch.Tensor]) -> torch.Tensor:
         y = feats[-1]
@@ -135,7 +135,7 @@ def build_model(cfg: Config | ModelConfig) -> PaddedNet:
     """Build the encoder–decoder a config describes (weights random-initialised, bilinear up-sampling kernels),
     wrapped to take images of any size."""
     m = cfg.model if isinstance(cfg, Config) else cfg
-    if m.bands is None or m.classes is None:
-        raise ConfigError("model.bands and model.classes: not known yet (they come from the data when training; "
+    if m.bands is None or m.num_classes is None:
+        raise ConfigError("model.bands and model.num_classes: not known yet (they come from the data when training; "
                           "give them to build a net without data)")
-    return PaddedNet(EncoderDecoder(m), PadPlan(m.stage_output_strides()[-1]), m.bands, m.classes)
+    return PaddedNet(EncoderDecoder(m), PadPlan(m.stage_output_strides()[-1]), m.bands, m.num_classes)
