@@ -100,7 +100,8 @@ def main() -> None:
     naive = work / "naive_segment.py"
     naive.write_text(NAIVE)
     py = sys.executable
-    cmds = {"fcnkit": [py, "-m", "fcnkit", "segment", str(model), str(image), "--out", str(work / "out"), "--quiet"],
+    cmds = {"fcnkit": [py, "-m", "fcnkit", "segment", str(model), str(image), "--out", str(work / "out"), "--quiet",
+                       "--overwrite"],
             "naive": [py, str(naive), str(model), str(image), str(work / "naive.labels.tif")]}
     print(f"{a.side}x{a.side} 4-band GeoTIFF ({a.side**2 / 1e6:.0f} MP), demo net, {os.cpu_count()} cores; "
           f"{a.rounds} interleaved rounds of two fresh processes; ratio: naive time / fcnkit time (>1: fcnkit faster)")
@@ -119,7 +120,7 @@ def main() -> None:
           f"{max(peaks['naive']):.2f} GB")
     if a.memory:
         s, gb = run([py, "-m", "fcnkit", "segment", str(model), str(mosaic), "--out", str(work / "mosaic_out"),
-                     "--quiet"])
+                     "--quiet", "--overwrite"])
         mp = a.mosaic_side**2 / 1e6
         print(f"{a.mosaic_side}x{a.mosaic_side} mosaic ({mp:.0f} MP): fcnkit segment {s:.0f} s ({mp / s:.2f} MP/s, "
               f"outputs included), peak RSS {gb:.2f} GB (target <= 1.5 GB)")
