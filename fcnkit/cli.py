@@ -555,6 +555,9 @@ def _signals() -> Iterator[None]:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    from fcnkit.allocator import reuse_freed_memory
+
+    reuse_freed_memory()  # before any thread allocates (see fcnkit.allocator)
     args = build_parser().parse_args(argv)
     try:
         with _signals():

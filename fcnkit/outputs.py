@@ -30,11 +30,13 @@ import io
 import json
 import math
 from collections.abc import Iterable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import torch
 
 from fcnkit.areas import PixelArea, pixel_area
 from fcnkit.atomic import atomic_output, write_text_atomic
@@ -43,7 +45,6 @@ from fcnkit.data.raster import PILLOW_SUFFIXES, Raster, RowStore
 from fcnkit.errors import ConfigError
 
 PNG_MAX_PIXELS = 50_000_000  # maps of larger images are written as GeoTIFF
-BAND = 64  # rows per pass over the score store (keeps the temporaries of one pass small)
 POLYGON_FORMATS = {"gpkg": ".gpkg", "geojson": ".geojson"}
 CAUTION = ("Statistical estimates from a model trained on few examples; verify with ground truth and qualified "
            "people before any medical, structural, flood or safety decision.")
@@ -86,16 +87,33 @@ def normalised_entropy(probs: np.ndarray, axis: int = -1) -> np.ndarray:
     return (-(p * np.log(p)).sum(axis=axis) / math.log(probs.shape[axis])).astype(np.float32)
 
 
-def to_byte(v: np.ndarray) -> np.ndarray:
+def _byte(v: torch.Tensor) -> torch.Tensor:
+    return (v * 255.0).round_().clamp_(0, 255).to(torch.uint8)  # round: half to even, as numpy's rint
+
+
+def to_byte(v: np.ndarray | torch.Tensor) -> np.ndarray:
     """Values in [0, 1] → uint8 0..255, rounded to nearest."""
-    return np.clip(np.rint(v * 255.0), 0, 255).astype(np.uint8)
+    return _byte(torch.as_tensor(v)).numpy()
 
 
-def class_maps(probs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Labels, confidence and uncertainty (each uint8 h×w) from C×h×w probabilities."""
-    labels = probs.argmax(0).astype(np.uint8)
-    confidence = to_byte(np.take_along_axis(probs, labels[None].astype(np.intp), 0)[0])
-    return labels, confidence, to_byte(normalised_entropy(probs, axis=0))
+def class_maps(probs: np.ndarray | torch.Tensor) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Labels, confidence and uncertainty (each uint8 h×w) from C×h×w probabilities: the top class, its
+    probability and the normalised entropy (:func:`normalised_entropy`). By torch and class by class: about
+    3x faster than numpy's argmax and sums over the first axis (and torch's own, slower still); segmenting
+    runs it in the inference workers (:func:`fcnkit.inference.scan.stream_scores`)."""
+    p = torch.as_tensor(probs)
+    top, labels = p[0], torch.zeros(p.shape[1:], dtype=torch.uint8)
+    for c in range(1, p.shape[0]):
+        # c where p[c] beats every class before it (strictly: the first maximum on ties, as numpy's argmax);
+        # arithmetic, since torch's masked writes are 20x slower than these
+        labels = torch.maximum(labels, (p[c] > top).to(torch.uint8) * c)
+        top = torch.maximum(top, p[c])
+    plogp = p.clamp(1e-12, 1.0)
+    plogp = plogp.log().mul_(plogp)
+    total = plogp[0].clone()
+    for c in range(1, p.shape[0]):
+        total += plogp[c]
+    return labels.numpy(), _byte(top).numpy(), _byte(total.neg_().div_(math.log(p.shape[0]))).numpy()
 
 
 def overlay(rgb: np.ndarray, labels: np.ndarray, colors: Sequence[tuple[int, int, int]],
@@ -183,14 +201,17 @@ def _map_specs(classes: ClassTable, shape: tuple[int, int], stores: dict[str, Ro
     }
 
 
-def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, classes: ClassTable, folder: Path,
+Maps = tuple[np.ndarray, np.ndarray, np.ndarray]  # labels, confidence, uncertainty of a band (:func:`class_maps`)
+
+
+def write_outputs(maps: Iterable[tuple[int, Maps]], raster: Raster, classes: ClassTable, folder: Path,
                   stem: str, *, work: Path | None, pixel_size: float | tuple[float, float] | None = None,
                   preview: int = 1024, options: OutputOptions | None = None) -> MapOutputs:
     """Write every output of one image into ``folder`` (each atomically).
 
-    ``scores`` are the image's class probabilities as (first row, C×h×W) bands from top to bottom, as inference
-    streams them. ``work`` holds the 8-bit maps between passes when the image is large (None: keep them in
-    memory). ``pixel_size`` (metres) overrides the areas of the input's grid.
+    ``maps`` are the image's :func:`class_maps` as (first row, (labels, confidence, uncertainty)) bands from top
+    to bottom, as inference streams them. ``work`` holds the 8-bit maps between passes when the image is large
+    (None: keep them in memory). ``pixel_size`` (metres) overrides the areas of the input's grid.
     """
     from fcnkit.data.geotiff import RasterSpec, write_geotiff
 
@@ -202,63 +223,66 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
     if options.polygons is not None and options.min_area_m2 > 0 and not area.known:  # before any inference
         raise ConfigError(f"min_area: needs pixel areas, but {area.reason}")
     names = output_names(stem, as_tiff, options.polygons)
-    maps = {k: RowStore((height, width), np.uint8, work, k) for k in ("labels", "confidence", "uncertainty")}
+    stores = {k: RowStore((height, width), np.uint8, work, k) for k in ("labels", "confidence", "uncertainty")}
     valid_store = RowStore((height, width), np.uint8, work, "valid") if raster.masked else None
     counts = np.zeros(256, np.int64)
     area_sums = np.zeros(256, np.float64)
     nodata = 0
-    for top, band in scores:
-        if band.shape[0] != classes.num_classes:
-            raise ConfigError(f"model: gives {band.shape[0]} class scores but its class table has "
-                              f"{classes.num_classes} classes")
-        for y0 in range(0, band.shape[1], BAND):
-            values = class_maps(np.asarray(band[:, y0:y0 + BAND]))
-            a, b = top + y0, top + y0 + values[0].shape[0]
-            valid = raster.valid(a, b, 0, width) if valid_store is not None else None
-            if valid is not None:
-                values[0][~valid] = classes.ignore
-                values[1][~valid] = 0
-                values[2][~valid] = 0
-                nodata += int((~valid).sum())
-                out = valid_store.rows(a, b)
-                out[:] = valid
-                del out
-            elif valid_store is not None:
-                out = valid_store.rows(a, b)
-                out[:] = 1
-                del out
-            for kind, v in zip(maps, values, strict=True):
-                out = maps[kind].rows(a, b)
-                out[:] = v
-                del out
-            counts += np.bincount(values[0].ravel(), minlength=256)
-            if area.kind in ("rows", "pixels"):
-                weights = np.broadcast_to(area.rows(a, b, width), values[0].shape)
-                area_sums += np.bincount(values[0].ravel(), weights=weights.ravel(), minlength=256)
+    for a, values in maps:
+        b = a + values[0].shape[0]
+        valid = raster.valid(a, b, 0, width) if valid_store is not None else None
+        if valid is not None:
+            values[0][~valid] = classes.ignore
+            values[1][~valid] = 0
+            values[2][~valid] = 0
+            nodata += int((~valid).sum())
+            out = valid_store.rows(a, b)
+            out[:] = valid
+            del out
+        elif valid_store is not None:
+            out = valid_store.rows(a, b)
+            out[:] = 1
+            del out
+        for kind, v in zip(stores, values, strict=True):
+            out = stores[kind].rows(a, b)
+            out[:] = v
+            del out
+        counts += np.bincount(values[0].ravel(), minlength=256)
+        if area.kind in ("rows", "pixels"):
+            weights = np.broadcast_to(area.rows(a, b, width), values[0].shape)
+            area_sums += np.bincount(values[0].ravel(), weights=weights.ravel(), minlength=256)
 
     paths = {k: folder / n for k, n in names.items()}
-    if as_tiff:
-        for kind, spec in _map_specs(classes, (height, width), maps, valid_store if nodata else None).items():
-            write_geotiff(paths[kind], spec, geo, cog=options.cog, work=work)
-    else:
-        for kind, store in maps.items():
-            _write_png(paths[kind], store.whole(), classes.palette() if kind == "labels" else None)
+    # The files are written side by side: GDAL and Pillow compress without holding Python's lock, and the
+    # inference threads are done. The preview is read and drawn meanwhile.
+    with ThreadPoolExecutor(max_workers=max(1, torch.get_num_threads())) as pool:
+        jobs = []
+        if as_tiff:
+            for kind, spec in _map_specs(classes, (height, width), stores, valid_store if nodata else None).items():
+                jobs.append(pool.submit(write_geotiff, paths[kind], spec, geo, cog=options.cog, work=work))
+        else:
+            for kind, store in stores.items():
+                jobs.append(pool.submit(_write_png, paths[kind], store.whole(),
+                                        classes.palette() if kind == "labels" else None))
 
-    step = max(1, math.ceil(max(height, width) / preview))
-    rgb, small, small_valid = _preview(raster, maps["labels"], valid_store if nodata else None, step)
-    picture = overlay(rgb, small, classes.colors)
-    if small_valid is not None:
-        picture[~small_valid] = 0
-    if as_tiff:
-        spec = RasterSpec(picture.shape, np.dtype(np.uint8), lambda a, b: picture[a:b],
-                          None if small_valid is None else (lambda a, b: small_valid[a:b]), rgb=True,
-                          descriptions=("red", "green", "blue"), resampling="average",
-                          tags={"FCNKIT_PRODUCT": "overlay"})
-        write_geotiff(paths["overlay"], spec, None if geo is None else geo.scaled(step), cog=options.cog,
-                      work=work)
-    else:
-        _write_png(paths["overlay"], picture)
-    _write_png(paths["preview"], _preview_card(raster, maps["labels"], small, picture, step, classes, counts, stem))
+        step = max(1, math.ceil(max(height, width) / preview))
+        rgb, small, small_valid = _preview(raster, stores["labels"], valid_store if nodata else None, step)
+        picture = overlay(rgb, small, classes.colors)
+        if small_valid is not None:
+            picture[~small_valid] = 0
+        if as_tiff:
+            spec = RasterSpec(picture.shape, np.dtype(np.uint8), lambda a, b: picture[a:b],
+                              None if small_valid is None else (lambda a, b: small_valid[a:b]), rgb=True,
+                              descriptions=("red", "green", "blue"), resampling="average",
+                              tags={"FCNKIT_PRODUCT": "overlay"})
+            jobs.append(pool.submit(write_geotiff, paths["overlay"], spec, None if geo is None else geo.scaled(step),
+                                    cog=options.cog, work=work))
+        else:
+            jobs.append(pool.submit(_write_png, paths["overlay"], picture))
+        _write_png(paths["preview"], _preview_card(raster, stores["labels"], small, picture, step, classes, counts,
+                                                   stem))
+        for job in jobs:
+            job.result()  # re-raises a writer's error
 
     k = classes.num_classes
     if area.kind == "constant":
@@ -270,7 +294,7 @@ def write_outputs(scores: Iterable[tuple[int, np.ndarray]], raster: Raster, clas
     if options.polygons is not None:
         from fcnkit.polygons import write_class_polygons
 
-        write_class_polygons(paths["polygons"], maps["labels"], maps["confidence"],
+        write_class_polygons(paths["polygons"], stores["labels"], stores["confidence"],
                              valid_store if nodata else None, classes, geo, area, fmt=options.polygons,
                              min_area_m2=options.min_area_m2, simplify=options.simplify)
     rows = area_rows(counts[:k], classes, per_class)

@@ -15,8 +15,6 @@ from bad_inputs import run_cli, scene, write_dataset, write_model, write_tiff
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from model_strategies import as_model, randomise_statistics
-from torch import nn
-from torch.nn import functional as F
 
 from fcnkit import Model, build_model
 from fcnkit.config import config_from_dict
@@ -40,19 +38,21 @@ def _net() -> Model:
 # --- NaN and inf: one answer on every scan ----------------------------------------------------------------------
 
 @pytest.mark.parametrize("value", [math.nan, math.inf])
-def test_fused_convolution_relu_keeps_nan_as_conv_then_relu_does(value):
-    # Reference: F.conv2d followed by F.relu (torch.nn.functional), which propagate NaN (and turn inf into NaN
-    # where +inf and -inf products meet); the fused oneDNN kernel alone would give 0 there.
-    from fcnkit.inference.rowstream import _conv_relu
+def test_row_streaming_keeps_nan_where_the_whole_image_pass_has_it(value):
+    # Reference: the model's whole-image forward pass (torch: F.conv2d then F.relu, which propagate NaN and turn
+    # inf into NaN where +inf and -inf products meet). Row streaming fuses each ReLU into its oneDNN convolution,
+    # whose ReLU alone would give 0 there: from the band holding the bad pixel on, it must not.
+    from fcnkit.inference.rowstream import RowStreamer
 
-    conv = nn.Conv2d(3, 5, 3, padding=1)
-    x = torch.randn(1, 3, 9, 11).contiguous(memory_format=torch.channels_last)
-    x[0, 1, 4, 5] = value
+    model = _net()
+    img = np.random.default_rng(0).random((40, 36, 3)).astype(np.float32)
+    img[17, 9, 1] = value
     with torch.no_grad():
-        ref = F.relu(F.conv2d(x, conv.weight, conv.bias, 1, (0, 1), 1))
-        got = _conv_relu(x, conv, (1, 1), (0, 1), (1, 1))
-    assert ref.isnan().any() or ref.isinf().any()
-    torch.testing.assert_close(got, ref, equal_nan=True, rtol=0, atol=1e-5)
+        ref = model(torch.from_numpy(img).permute(2, 0, 1)[None])[0]
+    got = torch.cat([b for _, b in RowStreamer(model).stream(ArrayRaster(img), logits=True, rows=8)], dim=1)
+    assert not ref.isfinite().all()
+    assert torch.equal(got.isfinite(), ref.isfinite())
+    torch.testing.assert_close(got, ref, equal_nan=True, rtol=0, atol=1e-4)
 
 
 @pytest.mark.parametrize("scan", ["rows", "whole", "tiles"])

@@ -271,3 +271,36 @@ def test_row_store_on_disk_equals_in_memory(tmp_path):
             del rows
     np.testing.assert_array_equal(mem.whole(), disk.whole())
     assert disk.path.stat().st_size == 50 * 20 * 3 * 4
+
+
+def test_reading_a_large_file_keeps_gdal_block_cache_bounded(tmp_path):
+    # Bug fix: GDAL's block cache defaults to 5 % of the machine's memory, and reading a large image band by band
+    # filled it (1.2 GB of a 268 MP mosaic's peak). Reference: the kernel's count of anonymous resident memory
+    # (RssAnon in /proc/self/status), read in a fresh process after reading every row of a 96 MB (decoded) file
+    # with the bound set to 16 MB; GDAL's default on any machine with 2 GB or more would keep all 96 MB.
+    import os
+    import subprocess
+    import sys
+
+    path = tmp_path / "big.tif"
+    rng = np.random.default_rng(0)
+    with rasterio.open(path, "w", driver="GTiff", width=4096, height=6144, count=4, dtype="uint8", tiled=True,
+                       blockxsize=512, blockysize=512, compress="deflate", zlevel=1) as dst:
+        for y in range(0, 6144, 512):
+            dst.write(rng.integers(0, 256, (4, 512, 4096), dtype=np.uint8), window=((y, y + 512), (0, 4096)))
+    code = f"""
+import fcnkit.data.gdalraster as g
+g.READ_CACHE_BYTES = 16 << 20
+from fcnkit.data.raster import open_raster
+def anon():
+    return next(int(line.split()[1]) for line in open("/proc/self/status") if line.startswith("RssAnon")) << 10
+r = open_raster({str(path)!r}, None)
+r.read(0, 64, 0, 4096)
+before = anon()
+for y in range(64, 6144, 64):
+    r.read(y, y + 64, 0, 4096)
+print(anon() - before)
+"""
+    env = {k: v for k, v in os.environ.items() if k != "GDAL_CACHEMAX"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env)
+    assert int(out.stdout) < 48 << 20  # the 16 MB cache plus allocator slack, not the 96 MB of the file

@@ -14,7 +14,7 @@ from fcnkit import build_model
 from fcnkit.config import config_from_dict
 from fcnkit.data.raster import ArrayRaster
 from fcnkit.errors import ConfigError
-from fcnkit.inference.rowstream import NotStreamable, RowStreamer, block_max
+from fcnkit.inference.rowstream import BANDS_IN_FLIGHT, NotStreamable, RowStreamer, block_max
 from fcnkit.inference.scan import ScanChoice, choose_scan, predict_scores
 
 
@@ -80,8 +80,31 @@ def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
     y0, first = next(stream)
     field = net.geometry.margin
     assert y0 == 0 and first.shape[1] > 0
-    assert raster.deepest <= 2 * 16 + 2 * field  # the first band, the one being prefetched and the field
+    # the bands the field's depth holds back, then at most BANDS_IN_FLIGHT more being read or computed
+    assert raster.deepest <= (BANDS_IN_FLIGHT + 1) * 16 + 2 * field
     assert sum(b.shape[1] for _, b in stream) + first.shape[1] == 4000
+
+
+def test_streaming_survives_torch_fx_tracing_in_another_thread():
+    # Bug fix: torch.fx patches every module call of the process while it traces; worker threads that called
+    # point-wise modules (batch norm, activations) then failed with "module is not installed as a submodule"
+    # when the caller traced a net (e.g. to read a model's geometry) between two bands.
+    from torch import fx
+
+    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8, "norm": "batch"}})
+    net = as_model(randomise_statistics(build_model(cfg), 0))
+    other = nn.Sequential(*[nn.Sequential(nn.Conv2d(2, 2, 1), nn.ReLU()) for _ in range(20)])
+    img = np.random.default_rng(0).random((600, 32, 1)).astype(np.float32)
+    before = torch.get_num_threads()
+    torch.set_num_threads(2)  # two workers
+    try:
+        bands = []
+        for _, band in RowStreamer(net).stream(ArrayRaster(img), logits=True, rows=8):
+            fx.symbolic_trace(other)
+            bands.append(band.numpy())
+    finally:
+        torch.set_num_threads(before)
+    np.testing.assert_allclose(np.concatenate(bands, axis=1), whole_image(net, img), atol=1e-4, rtol=0)
 
 
 def test_auto_scan_streams_when_it_can_and_says_when_it_does_not():
@@ -147,17 +170,67 @@ def test_block_max_equals_torch_max_pooling(k, c, h, w, seed, channels_last):
     torch.testing.assert_close(block_max(x, k), F.max_pool2d(x, k), equal_nan=True, rtol=0, atol=0)
 
 
-def test_fused_convolution_relu_equals_conv_then_relu():
-    # Reference: F.conv2d followed by F.relu (torch), on the fused oneDNN kernel row streaming uses.
-    from fcnkit.inference.rowstream import FUSED_RELU, _conv_relu
+@settings(max_examples=30, deadline=None)
+@given(relu=st.booleans(), groups=st.sampled_from([1, 2]), k=st.sampled_from([1, 3]), seed=st.integers(0, 100))
+def test_onednn_convolutions_equal_torch(relu, groups, k, seed):
+    # Reference: F.conv2d (then F.relu) of torch, on the oneDNN kernels row streaming uses for every convolution,
+    # strided, dilated, grouped and 1x1 with few output channels.
+    from fcnkit.inference.rowstream import ONEDNN, onednn_conv
 
-    if not FUSED_RELU:
+    if not ONEDNN:
         pytest.skip("this torch build has no fused oneDNN convolution")
-    conv = nn.Conv2d(5, 7, 3, stride=(2, 1), padding=1, dilation=(1, 2))
-    x = torch.randn(1, 5, 23, 31).contiguous(memory_format=torch.channels_last)
+    g = torch.Generator().manual_seed(seed)
+    w, b = torch.randn(6, 4 // groups, k, k, generator=g), torch.randn(6, generator=g)
+    x = torch.randn(1, 4, 23, 31, generator=g).contiguous(memory_format=torch.channels_last)
     with torch.no_grad():
-        ref = F.relu(F.conv2d(x, conv.weight, conv.bias, (2, 1), (0, 1), (1, 2)))
-        torch.testing.assert_close(_conv_relu(x, conv, (2, 1), (0, 1), (1, 2)), ref, rtol=0, atol=1e-5)
+        ref = F.conv2d(x, w, b, (2, 1), (0, 1), (1, 2), groups)
+        ref = F.relu(ref) if relu else ref
+        torch.testing.assert_close(onednn_conv(x, w, b, (2, 1), (0, 1), (1, 2), groups, relu), ref, rtol=0, atol=1e-5)
+
+
+@settings(max_examples=30, deadline=None)
+@given(parts=st.lists(st.integers(1, 5), min_size=1, max_size=3), relu=st.booleans(), seed=st.integers(0, 100))
+def test_concatenation_convolution_equals_torch(parts, relu, seed):
+    # Reference: F.conv2d of torch.cat along channels (then F.relu): the concatenation row streaming skips by
+    # convolving each part with its slice of the weights.
+    from fcnkit.inference.rowstream import ONEDNN, concat_conv
+
+    if not ONEDNN:
+        pytest.skip("this torch build has no fused oneDNN convolution")
+    g = torch.Generator().manual_seed(seed)
+    xs = [torch.randn(1, c, 17, 19, generator=g).contiguous(memory_format=torch.channels_last) for c in parts]
+    w, b = torch.randn(3, sum(parts), 3, 3, generator=g), torch.randn(3, generator=g)
+    with torch.no_grad():
+        ref = F.conv2d(torch.cat(xs, dim=1), w, b, 1, (0, 1))
+        ref = F.relu(ref) if relu else ref
+        got = concat_conv(xs, list(torch.split(w, parts, dim=1)), b, (1, 1), (0, 1), (1, 1), relu)
+        # the parts' sums are added in another order than one convolution adds them: a few float32 ulps
+        torch.testing.assert_close(got, ref, rtol=1e-5, atol=1e-5)
+
+
+@settings(max_examples=60, deadline=None)
+@given(cin=st.integers(1, 4), cout=st.integers(1, 4), s=st.tuples(st.integers(1, 4), st.integers(1, 4)),
+       extra=st.tuples(st.integers(0, 5), st.integers(0, 5)), h=st.integers(1, 6), w=st.integers(1, 6),
+       bias=st.booleans(), channels_last=st.booleans(), crop=st.tuples(*[st.floats(0, 1)] * 4),
+       seed=st.integers(0, 100))
+def test_transposed_convolution_by_phases_equals_torch(cin, cout, s, extra, h, w, bias, channels_last, crop, seed):
+    # Reference: F.conv_transpose2d of torch (no padding), cropped to any window of rows and columns; kernels
+    # from the stride up to stride + 5 (FCN up-sampling uses kernel 2 x stride), any strides per axis.
+    from fcnkit.inference.rowstream import ONEDNN, phase_weight, transposed_by_phases
+
+    if not ONEDNN:
+        pytest.skip("this torch build has no fused oneDNN convolution")
+    k = (s[0] + extra[0], s[1] + extra[1])
+    g = torch.Generator().manual_seed(seed)
+    weight, b = torch.randn(cin, cout, *k, generator=g), torch.randn(cout, generator=g) if bias else None
+    x = torch.randn(1, cin, h, w, generator=g).contiguous(memory_format=torch.channels_last)
+    ref = F.conv_transpose2d(x, weight, b, s)
+    (r0, r1), (c0, c1) = [(min(ends), max(ends) + 1) for ends in
+                          [[int(f * (n - 1)) for f in pair] for pair, n in zip((crop[:2], crop[2:]), ref.shape[2:],
+                                                                               strict=True)]]
+    got = transposed_by_phases(x, phase_weight(weight, s, channels_last), b, s, k, (r0, r1), (c0, c1),
+                               channels_last)
+    torch.testing.assert_close(got, ref[:, :, r0:r1, c0:c1], rtol=0, atol=1e-5)
 
 
 def test_prepared_nets_are_rebuilt_when_the_weights_change():

@@ -16,7 +16,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import torch
-import torchvision
 from torch import nn
 
 from fcnkit.errors import ModelFileError
@@ -32,6 +31,8 @@ class Classifier:
 
 def torchvision_architectures() -> list[str]:
     """Names of torchvision's image-classification architectures (the only code a model file may name)."""
+    import torchvision  # on first use: importing it takes seconds (it pulls in torch's compiler)
+
     return torchvision.models.list_models(module=torchvision.models)
 
 
@@ -85,6 +86,8 @@ def build_torchvision(arch: str, num_classes: int = 1000) -> nn.Module:
     if arch not in torchvision_architectures():
         raise ModelFileError(f"architecture {arch!r} is not one of torchvision's classifiers "
                              f"(e.g. alexnet, vgg11, resnet18, mobilenet_v3_small)")
+    import torchvision
+
     return torchvision.models.get_model(arch, weights=None, num_classes=num_classes).eval()
 
 

@@ -92,7 +92,7 @@ def write_geotiff(path: str | Path, spec: RasterSpec, geo: GeoRef | None, *, cog
             return
         stage = partial_path((work or path.parent) / f"{path.stem}.stage.tif")
         try:
-            _write_tiled(stage, spec, geo, compress, block)
+            _write_tiled(stage, spec, geo, None, block)  # uncompressed: read once, by the COG driver, at once
             options = {"COMPRESS": "DEFLATE", "LEVEL": 1} if compress else {"COMPRESS": "NONE"}
             try:
                 rasterio.shutil.copy(stage, tmp, driver="COG", BLOCKSIZE=block, BIGTIFF="IF_SAFER",

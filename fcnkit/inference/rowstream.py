@@ -16,27 +16,42 @@ norm, global pooling) raise :class:`NotStreamable`; tiled inference handles thos
 
 from __future__ import annotations
 
+import contextlib
 import math
 import operator
 import time
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import ThreadPoolExecutor
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
+import numpy as np
 import torch
 from torch import fx, nn
 from torch.nn import functional as F
 
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
+from fcnkit.inference.bandflow import can_pin_threads, one_thread_per_worker, run_bands
 from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
     from fcnkit.model import Model
 
-# Input pixels per band: on the 2-core development CPU, bands of 2048×256 pixels ran the demo and FCN-8s nets
-# at least as fast as 128- or 512-row bands, and 64-row bands 10–30 % slower (more calls, more rows carried).
-BAND_PIXELS = 512 * 1024
+# Bytes of a band's largest feature map. glibc's malloc serves blocks up to 32 MiB (once one has been freed) from
+# its heap and reuses them; larger blocks are fresh pages from the kernel each time, and their page faults cost
+# about 25 ms per 32 MiB on the 2-core development CPU: three quarters of the time of a demo net's first
+# convolution over 2048×256 pixels. Smaller bands also stay in the caches but cost more calls per image.
+BAND_BYTES = 16 << 20
+# Yet at least this many input pixels per band, while its largest map stays under BAND_BYTES_MAX: every layer
+# costs a oneDNN call or two per band, 100-200 us each whatever its size (measured), and nets with many layers
+# and wide maps (the U-Net config: 128 bytes a pixel) ran 8 % faster with bands of 2048x128 than 2048x64.
+BAND_PIXELS = 256 << 10
+BAND_BYTES_MAX = 32 << 20
+# Bands whose output has not been handed on yet that may be read or computed at once (by several workers).
+BANDS_IN_FLIGHT = 3
+# Input bytes below which a layer's new rows are not convolved straight from their piece but together with the
+# rows carried over, from one copy, in one call: a oneDNN call costs 100-200 us whatever its size (measured on the
+# development CPU), more than copying a megabyte. Saved about 4 % on the demo and FCN nets.
+DIRECT_BYTES = 1 << 20
 
 
 class NotStreamable(ConfigError):
@@ -105,14 +120,15 @@ class _Pointwise(_Op):
 
 
 class _Local(_Op):
-    """A layer whose output rows each depend on a short run of input rows. Each step computes the output rows
-    now complete: those whose inputs lie inside one piece straight from that piece (no copy), the few whose
-    inputs straddle pieces from a copy of just those rows. Subclasses give the row arithmetic."""
+    """A layer whose output rows each depend on a short run of input rows (of every input, row for row). Each
+    step computes the output rows now complete: those whose inputs lie inside one piece of each input straight
+    from those pieces (no copy), the few whose inputs straddle pieces from a copy of just those rows.
+    Subclasses give the row arithmetic."""
 
     MIN_ROWS = 4  # output rows worth computing from one piece on their own
 
-    def __init__(self) -> None:
-        super().__init__(1)
+    def __init__(self, inputs: int = 1) -> None:
+        super().__init__(inputs)
 
     def stop(self, end: int, last: bool) -> int:
         """Output rows complete once input rows 0..end have arrived (all of them when ``last``)."""
@@ -126,63 +142,83 @@ class _Local(_Op):
         """Output rows computable exactly from input rows a..b alone."""
         raise NotImplementedError
 
-    def compute(self, x: torch.Tensor, a: int, o0: int, o1: int) -> torch.Tensor:
-        """Output rows o0..o1 from ``x``, the input rows from ``a`` on."""
+    def compute(self, xs: list[torch.Tensor], a: int, o0: int, o1: int) -> torch.Tensor:
+        """Output rows o0..o1 from ``xs``, every input's rows from ``a`` on."""
         raise NotImplementedError
 
-    def receive(self, new: Rows, last: bool) -> None:
-        self.inputs[0].pieces += [p for p in new if p.shape[2]]
+    def receive(self, new: Sequence[Rows], last: bool) -> None:
+        for buf, rows in zip(self.inputs, new, strict=True):
+            buf.pieces += [p for p in rows if p.shape[2]]
+
+    def _spans(self, end: int) -> list[tuple[int, int, list[tuple[int, torch.Tensor]]]]:
+        """Runs of rows a..b (up to ``end``) lying inside one piece of every input, with those pieces and their
+        first rows."""
+        spans = [buf.spans() for buf in self.inputs]
+        if len(spans) == 1:
+            return [(a, b, [(a, p)]) for a, b, p in spans[0] if a < end]
+        cuts = sorted({r for sp in spans for a, b, _ in sp for r in (a, b) if r <= end})
+        out = []
+        for u, v in zip(cuts, cuts[1:], strict=False):
+            pieces = [next((a, p) for a, b, p in sp if a <= u and v <= b) for sp in spans]
+            out.append((u, v, pieces))
+        return out
 
     def step(self, new, last):
-        self.receive(new[0], last)
-        buf = self.inputs[0]
-        end = buf.end
+        self.receive(new, last)
+        end = min(buf.end for buf in self.inputs)
         stop = self.stop(end, last)
         if stop <= self.done:
             return []
         out: Rows = []
         o = self.done
-        for a, b, piece in buf.spans():
+        for a, b, pieces in self._spans(end):
             m0, m1 = self.inside(a, b, end, last)
             m0, m1 = max(m0, o), min(m1, stop)
-            if m1 - m0 < self.MIN_ROWS:
+            if m1 - m0 < self.MIN_ROWS or (m1 - m0) * sum(p[0, :, 0].numel() * p.element_size()
+                                                         for _, p in pieces) < DIRECT_BYTES:
                 continue
             if m0 > o:
                 out.append(self._from_buffer(o, m0, end))
             i0, i1 = self.need(m0, m1, end)
-            out.append(self.compute(piece[:, :, i0 - a:i1 - a], i0, m0, m1))
+            out.append(self.compute([p[:, :, i0 - pa:i1 - pa] for pa, p in pieces], i0, m0, m1))
             o = m1
         if stop > o:
             out.append(self._from_buffer(o, stop, end))
         self.done = stop
-        buf.drop_before(self.need(self.done, self.done + 1, end)[0])
+        first = self.need(self.done, self.done + 1, end)[0]
+        for buf in self.inputs:
+            buf.drop_before(first)
         return out
 
     def _from_buffer(self, o0: int, o1: int, end: int) -> torch.Tensor:
         i0, i1 = self.need(o0, o1, end)
-        return self.compute(self.inputs[0].rows(i0, i1), i0, o0, o1)
+        return self.compute([buf.rows(i0, i1) for buf in self.inputs], i0, o0, o1)
 
 
 class _Window(_Local):
     """Convolution or pooling with kernel k, stride s, dilation d and padding p along rows; ``fn`` is the layer
-    with its row padding removed. The padding rows (``fill``) are added as pieces of their own at the top and
-    bottom, so rows here are counted from the top of the padded input."""
+    with its row padding removed, applied to the list of its inputs' rows (one input, or the parts of a channel
+    concatenation). The padding rows (``fill``) are added as pieces of their own at the top and bottom, so rows
+    here are counted from the top of the padded input."""
 
-    def __init__(self, fn: Callable[[torch.Tensor], torch.Tensor], k: int, s: int, d: int, p: int,
-                 fill: float) -> None:
-        super().__init__()
+    def __init__(self, fn: Callable[[list[torch.Tensor]], torch.Tensor], k: int, s: int, d: int, p: int,
+                 fill: float, inputs: int = 1) -> None:
+        super().__init__(inputs)
         self.fn, self.s, self.span, self.p, self.fill = fn, s, d * (k - 1), p, fill
-        self.pad: torch.Tensor | None = None  # p rows of fill, made from the first piece's shape
+        self.pads: list[torch.Tensor | None] = [None] * inputs  # p rows of fill, made from each first piece
 
     def receive(self, new, last):
-        if self.p and new and self.pad is None:
-            n, c, _, w = new[0].shape
-            self.pad = torch.full((n, c, self.p, w), self.fill, dtype=new[0].dtype).contiguous(
-                memory_format=torch.channels_last)
-            self.inputs[0].pieces.append(self.pad)
+        for i, (buf, rows) in enumerate(zip(self.inputs, new, strict=True)):
+            if self.p and rows and self.pads[i] is None:
+                n, c, _, w = rows[0].shape
+                self.pads[i] = torch.full((n, c, self.p, w), self.fill, dtype=rows[0].dtype).contiguous(
+                    memory_format=torch.channels_last)
+                buf.pieces.append(self.pads[i])
         super().receive(new, last)
-        if self.pad is not None and last:
-            self.inputs[0].pieces.append(self.pad)
+        if last:
+            for buf, pad in zip(self.inputs, self.pads, strict=True):
+                if pad is not None:
+                    buf.pieces.append(pad)
 
     def stop(self, end, last):
         return max(0, (end - 1 - self.span) // self.s + 1)
@@ -193,31 +229,90 @@ class _Window(_Local):
     def inside(self, a, b, end, last):
         return -(-a // self.s), max(0, (b - 1 - self.span) // self.s + 1)
 
-    def compute(self, x, a, o0, o1):
-        return self.fn(x)
+    def compute(self, xs, a, o0, o1):
+        return self.fn(xs)
+
+
+def phase_weight(weight: torch.Tensor, stride: tuple[int, int], channels_last: bool) -> torch.Tensor:
+    """The convolution weight that computes a transposed convolution (weight C_in×C_out×kh×kw, stride sh×sw, no
+    groups) one output phase per channel: with J = ⌈k/s⌉ taps, output row s·q + r is Σ_j x[q − j]·w[s·j + r]
+    (j < J, w zero past k), a correlation over rows q − J + 1 … q. Channels are ordered (c, rh, rw) for NCHW
+    output, (rh, rw, c) for channels-last output, so :func:`transposed_by_phases` moves whole runs of memory."""
+    cin, cout, kh, kw = weight.shape
+    (sh, sw), jh, jw = stride, -(-kh // stride[0]), -(-kw // stride[1])
+    w = weight.new_zeros(cin, cout, jh * sh, jw * sw)
+    w[:, :, :kh, :kw] = weight
+    w = w.view(cin, cout, jh, sh, jw, sw).flip(2, 4)  # ci, co, uh, rh, uw, rw (u: tap of the correlation)
+    order = (3, 5, 1, 0, 2, 4) if channels_last else (1, 3, 5, 0, 2, 4)
+    return w.permute(order).reshape(cout * sh * sw, cin, jh, jw).contiguous()
+
+
+def transposed_by_phases(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int],
+                         kernel: tuple[int, int], rows: tuple[int, int], cols: tuple[int, int],
+                         channels_last: bool) -> torch.Tensor:
+    """Rows ``rows`` and columns ``cols`` of ``F.conv_transpose2d(x, w, bias, stride)`` (no padding: crop for
+    it) from ``weight`` = :func:`phase_weight` of w: one convolution at the input's resolution, every output
+    phase a channel, then the phases interleaved into rows and columns (sub-pixel convolution). Equal to the
+    transposed convolution up to the order of float32 sums, and 1.3–2.4× faster than torch's on channels-last
+    FCN up-sampling (measured for kernel 2s, stride 2 to 32, 3–5 classes). Output NCHW or channels-last."""
+    (sh, sw), (kh, kw) = stride, kernel
+    jh, jw = -(-kh // sh), -(-kw // sw)
+    n, _, h, w = x.shape
+    c = weight.shape[0] // (sh * sw)
+    q0, q1 = rows[0] // sh, -(-rows[1] // sh)  # correlation rows covering the output rows asked for
+    p0, p1 = cols[0] // sw, -(-cols[1] // sw)
+    # input rows q0 − J + 1 … q1 − 1, zero outside the input: the correlation's padding
+    pad = [max(0, jh - 1 - q0), max(0, q1 - h)]
+    x = x[:, :, max(0, q0 - jh + 1):min(h, q1)]
+    if any(pad):
+        x = F.pad(x, (0, 0, *pad)).contiguous(memory_format=torch.channels_last)
+    bias = None if bias is None else bias.repeat(sh * sw) if channels_last else bias.repeat_interleave(sh * sw)
+    y = onednn_conv(x, weight, bias, (1, 1), (0, jw - 1), (1, 1), 1, False)
+    qn, pn, width = q1 - q0, p1 - p0, y.shape[3]
+    if channels_last:
+        y = y[:, :, :, p0:p1].permute(0, 2, 3, 1)  # n, q, p, phases (a view of channels-last memory)
+        out = torch.empty(n, qn, sh, pn, sw, c, dtype=y.dtype)
+        out.copy_(y.reshape(n, qn, pn, sh, sw, c).permute(0, 1, 3, 2, 4, 5))
+        out = out.view(n, qn * sh, pn * sw, c).permute(0, 3, 1, 2)
+    else:
+        # phases first by one plain 2-D transpose, so the interleaving reads whole rows: 1.8x faster than
+        # gathering the phases straight from channels-last memory (2x up-sampling to 2050 columns, 5 classes)
+        y = y.permute(0, 2, 3, 1).reshape(n * qn * width, -1).t().contiguous()
+        y = y.view(c, sh, sw, n, qn, width)[..., p0:p1]
+        out = torch.empty(n, c, qn, sh, pn, sw, dtype=y.dtype)
+        out.copy_(y.permute(3, 0, 4, 1, 5, 2))
+        out = out.view(n, c, qn * sh, pn * sw)
+    r, k = rows[0] - q0 * sh, cols[0] - p0 * sw
+    return out[:, :, r:r + rows[1] - rows[0], k:k + cols[1] - cols[0]]
 
 
 class _Transposed(_Local):
-    """Transposed convolution (kernel k ≥ stride s, padding p along rows), computed in float32: output row o
-    receives input rows ⌈(o + p − k + 1)/s⌉ … ⌊(o + p)/s⌋."""
+    """Transposed convolution (kernel k ≥ stride s, padding p along rows), computed in float32 by phases
+    (:func:`transposed_by_phases`): output row o receives input rows ⌈(o + p − k + 1)/s⌉ … ⌊(o + p)/s⌋. Its
+    output is NCHW when it is the net's last layer (``nchw``: what the class scores leave in), else
+    channels-last."""
 
     MIN_ROWS = 1 << 62  # one call per band: up-sampling inputs are narrow score maps, cheap to copy
 
-    def __init__(self, m: nn.ConvTranspose2d) -> None:
+    def __init__(self, m: nn.ConvTranspose2d, nchw: bool = False) -> None:
         super().__init__()
-        (self.k, _), (self.s, _), (self.p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.padding)
+        (self.k, kw), (self.s, sw), (self.p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.padding)
         (self.extra, opw), (d, dw) = _pair(m.output_padding), _pair(m.dilation)
         if d != 1 or dw != 1 or self.k < self.s or self.extra > self.p:
             raise NotStreamable("a transposed convolution with dilation, kernel < stride or output padding > "
                                 "padding cannot be streamed")
-        self.fn = lambda x: F.conv_transpose2d(x, m.weight, m.bias, (self.s, m.stride[1]), (0, pw), (0, opw),
-                                               m.groups)
-        self.height: int | None = None  # input height, known at the last band
+        if m.groups == 1 and opw <= pw and ONEDNN:
+            weight = phase_weight(m.weight.detach().float(), (self.s, sw), channels_last=not nchw)
+            bias = None if m.bias is None else m.bias.detach().float()
 
-    def receive(self, new, last):
-        super().receive(new, last)
-        if last:
-            self.height = self.inputs[0].end
+            def fn(x: torch.Tensor, r0: int, r1: int) -> torch.Tensor:
+                cols = (pw, (x.shape[3] - 1) * sw - pw + kw + opw)
+                return transposed_by_phases(x, weight, bias, (self.s, sw), (self.k, kw), (r0, r1), cols, not nchw)
+        else:
+            def fn(x: torch.Tensor, r0: int, r1: int) -> torch.Tensor:
+                y = F.conv_transpose2d(x, m.weight, m.bias, (self.s, sw), (0, pw), (0, opw), m.groups)[:, :, r0:r1]
+                return y.contiguous() if nchw else y
+        self.fn = fn
 
     def stop(self, end, last):
         return (end - 1) * self.s - 2 * self.p + self.k + self.extra if last else end * self.s - self.p
@@ -229,11 +324,10 @@ class _Transposed(_Local):
         o0 = 0 if a == 0 else max(0, (a - 1) * self.s - self.p + self.k)
         return o0, self.stop(b, last and b == end)
 
-    def compute(self, x, a, o0, o1):
+    def compute(self, xs, a, o0, o1):
+        base = a * self.s - self.p  # output row of the first row of the unpadded transposed convolution
         with torch.autocast("cpu", enabled=False):  # bf16 transposed convolutions are slow on CPUs
-            y = self.fn(x.float())
-        base = a * self.s - self.p
-        return y[:, :, o0 - base:o1 - base]
+            return self.fn(xs[0].float(), o0 - base, o1 - base)
 
 
 class _Interpolate(_Local):
@@ -258,8 +352,8 @@ class _Interpolate(_Local):
     def inside(self, a, b, end, last):
         return (0 if a == 0 else (2 * a + 1) * self.f // 2), self.stop(b, last and b == end)
 
-    def compute(self, x, a, o0, o1):
-        y = F.interpolate(x, scale_factor=self.f, mode="bilinear", align_corners=False)
+    def compute(self, xs, a, o0, o1):
+        y = F.interpolate(xs[0], scale_factor=self.f, mode="bilinear", align_corners=False)
         return y[:, :, o0 - a * self.f:o1 - a * self.f]
 
 
@@ -289,20 +383,49 @@ _POINTWISE = (nn.ReLU, nn.ReLU6, nn.LeakyReLU, nn.GELU, nn.SiLU, nn.Sigmoid, nn.
               nn.Dropout, nn.Dropout2d, nn.Identity, nn.BatchNorm2d)
 
 
-def _conv_relu(x: torch.Tensor, m: nn.Conv2d, stride: tuple[int, int], padding: tuple[int, int],
-               dilation: tuple[int, int]) -> torch.Tensor:
-    """Convolution with the ReLU after it done by oneDNN in the same pass (the fused kernel torch's own compiler
-    uses on CPUs); results equal conv2d followed by relu.
+def _pointwise(m: nn.Module) -> Callable[[torch.Tensor], torch.Tensor]:
+    """A point-wise module's function in inference, reading nothing from the module when it runs: worker
+    threads must not call modules, since torch.fx, tracing any net in another thread meanwhile, patches every
+    module call and attribute lookup of the process."""
+    if isinstance(m, nn.BatchNorm2d):
+        mean, var, weight, bias, eps = m.running_mean, m.running_var, m.weight, m.bias, m.eps
+        return lambda x: F.batch_norm(x, mean, var, weight, bias, False, 0.0, eps)
+    if isinstance(m, (nn.Dropout, nn.Dropout2d, nn.Identity)):
+        return lambda x: x
+    return type(m).forward.__get__(m)  # activations: their settings are plain attributes, found without lookups
 
-    The fused ReLU turns NaN into 0 where ``relu`` keeps it, so rows would quietly differ from whole-image
-    inference: input that is not finite (its sum is not; a sum that merely overflows also lands here, harmlessly)
-    takes the unfused path, and the NaN reaches the scores, where every scan refuses it. A NaN born inside one
-    convolution from finite input needs sums overflowing float32 both ways, which pixels within the training
-    range check's limit (fcnkit.inputrange) cannot produce with finite weights."""
-    if not bool(torch.isfinite(x.sum())):
-        return F.relu(F.conv2d(x, m.weight, m.bias, stride, padding, dilation, m.groups))
-    return torch.ops.mkldnn._convolution_pointwise(x, m.weight, m.bias, list(padding), list(stride), list(dilation),
-                                                   m.groups, "relu", [None], "")
+
+ONEDNN = hasattr(torch.ops.mkldnn, "_convolution_pointwise") and torch.backends.mkldnn.is_available()
+
+
+def onednn_conv(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int],
+                padding: tuple[int, int], dilation: tuple[int, int], groups: int, relu: bool) -> torch.Tensor:
+    """Convolution, and the ReLU after it when ``relu``, in one oneDNN pass (the fused kernel torch's own
+    compiler uses on CPUs); equal to conv2d (then relu). Used for every convolution: for the 1×1 score layers of a
+    few classes torch's own dispatch picks an im2col kernel about 2× slower (measured on 5 classes)."""
+    return torch.ops.mkldnn._convolution_pointwise(x, weight, bias, list(padding), list(stride), list(dilation),
+                                                   groups, "relu" if relu else "none", [None] if relu else [], "")
+
+
+def onednn_conv_add(out: torch.Tensor, x: torch.Tensor, weight: torch.Tensor, stride: tuple[int, int],
+                    padding: tuple[int, int], dilation: tuple[int, int], relu: bool) -> torch.Tensor:
+    """``out`` += conv2d(x, weight) (no bias), then ReLU when ``relu``, in place in one oneDNN pass."""
+    return torch.ops.mkldnn._convolution_pointwise_.binary(out, x, weight, None, list(padding), list(stride),
+                                                           list(dilation), 1, "add", 1.0,
+                                                           "relu" if relu else None, [], "")
+
+
+def concat_conv(xs: Sequence[torch.Tensor], weights: Sequence[torch.Tensor], bias: torch.Tensor | None,
+                stride: tuple[int, int], padding: tuple[int, int], dilation: tuple[int, int],
+                relu: bool) -> torch.Tensor:
+    """conv2d(cat(xs, channels), weight) (then ReLU) without the concatenation: one convolution per part with its
+    slice of the weights (``weights``), each added into the output in place. Saves writing and reading the
+    concatenated map: a U-Net decoder's widest maps."""
+    n = len(xs)
+    y = onednn_conv(xs[0], weights[0], bias, stride, padding, dilation, 1, relu and n == 1)
+    for i in range(1, n):
+        y = onednn_conv_add(y, xs[i], weights[i], stride, padding, dilation, relu and i == n - 1)
+    return y
 
 
 def block_max(x: torch.Tensor, k: int) -> torch.Tensor:
@@ -318,33 +441,60 @@ def block_max(x: torch.Tensor, k: int) -> torch.Tensor:
     return out
 
 
-FUSED_RELU = hasattr(torch.ops.mkldnn, "_convolution_pointwise") and torch.backends.mkldnn.is_available()
+class _Fusion:
+    """Whether convolutions may apply the ReLU after them in the same oneDNN pass. That fused ReLU turns NaN into
+    0 where F.relu keeps it, and rows must give whatever whole-image inference gives, NaN included (every scan
+    then refuses the scores). NaN arises only from input or weights that are not finite (a NaN born inside a
+    convolution from finite values needs float32 sums overflowing both ways): so fusion is off for weights that
+    are not finite, and a stream turns it off from the first band whose input is not (checked once per band
+    rather than once per convolution: later bands' steps run after that band's input is loaded)."""
+
+    def __init__(self, ok: bool) -> None:
+        self.ok = ok
 
 
-def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False) -> _Op:
-    """The op of one module; ``relu``: a Conv2d also applies the ReLU that follows it."""
+def _conv(weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int], padding: tuple[int, int],
+          dilation: tuple[int, int], groups: int, relu: bool, fusion: _Fusion) -> Callable[[list[torch.Tensor]],
+                                                                                              torch.Tensor]:
+    """A convolution (then ReLU) by oneDNN, the ReLU fused while ``fusion`` allows."""
+    def fn(xs: list[torch.Tensor]) -> torch.Tensor:
+        if relu and not fusion.ok:
+            return F.relu(onednn_conv(xs[0], weight, bias, stride, padding, dilation, groups, False))
+        return onednn_conv(xs[0], weight, bias, stride, padding, dilation, groups, relu)
+    return fn
+
+
+def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: bool = False,
+               last: bool = False, fusion: _Fusion | None = None) -> _Op:
+    """The op of one module; ``relu``: a Conv2d also applies the ReLU that follows it (by oneDNN, fused as
+    ``fusion`` allows); ``onednn``: convolutions run by oneDNN (:func:`onednn_conv`); ``last``: its output is the
+    net's."""
     if isinstance(m, nn.Conv2d):
         if m.padding_mode != "zeros" or isinstance(m.padding, str):
             raise NotStreamable(f"{name}: convolution padding {m.padding!r} ({m.padding_mode}) cannot be streamed")
         (k, _), (s, sw), (d, dw), (p, pw) = (_pair(m.kernel_size), _pair(m.stride), _pair(m.dilation),
                                              _pair(m.padding))
-        if relu:
-            return _Window(lambda x: _conv_relu(x, m, (s, sw), (0, pw), (d, dw)), k, s, d, p, 0.0)
-        return _Window(lambda x: F.conv2d(x, m.weight, m.bias, (s, sw), (0, pw), (d, dw), m.groups), k, s, d, p, 0.0)
+        weight, bias, groups = m.weight.detach(), None if m.bias is None else m.bias.detach(), m.groups
+        if onednn:
+            return _Window(_conv(weight, bias, (s, sw), (0, pw), (d, dw), groups, relu, fusion or _Fusion(True)),
+                           k, s, d, p, 0.0)
+        return _Window(lambda xs: F.conv2d(xs[0], weight, bias, (s, sw), (0, pw), (d, dw), groups), k, s, d, p, 0.0)
     if isinstance(m, nn.MaxPool2d) and not m.ceil_mode and not m.return_indices:
         (k, kw), (s, sw), (d, dw), (p, pw) = (_pair(m.kernel_size), _pair(m.stride or m.kernel_size),
                                               _pair(m.dilation), _pair(m.padding))
         if k == kw == s == sw and d == dw == 1 and p == pw == 0:
-            return _Window(lambda x: block_max(x, k), k, s, d, p, -math.inf)
-        return _Window(lambda x: F.max_pool2d(x, (k, kw), (s, sw), (0, pw), (d, dw)), k, s, d, p, -math.inf)
+            return _Window(lambda xs: block_max(xs[0], k), k, s, d, p, -math.inf)
+        return _Window(lambda xs: F.max_pool2d(xs[0], (k, kw), (s, sw), (0, pw), (d, dw)), k, s, d, p, -math.inf)
     if isinstance(m, nn.ConvTranspose2d):
-        return _Transposed(m)
+        return _Transposed(m, nchw=last)
     if isinstance(m, nn.Upsample) and m.mode == "bilinear" and not m.align_corners and m.scale_factor is not None:
         f = m.scale_factor
         if isinstance(f, (int, float)) and float(f).is_integer():
             return _Interpolate(int(f))
+    if isinstance(m, nn.BatchNorm2d) and m.running_mean is None:
+        raise NotStreamable(f"{name}: batch norm without running statistics normalises by the whole image")
     if isinstance(m, _POINTWISE):
-        return _Pointwise(m, copy)
+        return _Pointwise(_pointwise(m), copy)
     raise NotStreamable(f"{name}: layer type {type(m).__name__} cannot be streamed in rows")
 
 
@@ -362,6 +512,17 @@ def _function_op(node: fx.Node, inputs: int, copy: bool) -> _Op:
     if t in (F.relu, torch.relu) and inputs == 1:
         return _Pointwise(F.relu, copy)
     raise NotStreamable(f"{node.name}: operation {getattr(t, '__name__', t)} cannot be streamed in rows")
+
+
+class _Shapes(fx.Interpreter):
+    """Runs a graph once, noting each node's output shape (torch.fx's ShapeProp does the same but imports the
+    symbolic-shape machinery and sympy on first use: a second of start-up)."""
+
+    def run_node(self, n: fx.Node) -> object:
+        out = super().run_node(n)
+        if isinstance(out, torch.Tensor):
+            n.meta["shape"] = tuple(out.shape)
+        return out
 
 
 class RowStreamer:
@@ -383,12 +544,28 @@ class RowStreamer:
         except Exception as e:  # tracing errors come in many types
             raise NotStreamable(f"model: cannot read its graph ({' '.join(str(e).split())})") from None
         self._graph = gm
-        self._build()  # fail now, not on the first image, if a layer cannot be streamed
+        self._onednn = ONEDNN and not bf16  # oneDNN's fused kernels do not follow bf16 autocast
+        side = self.plan.padded(2 * self.factor)
+        example = torch.zeros(1, model.bands, side, side).contiguous(memory_format=torch.channels_last)
+        try:
+            with torch.inference_mode():
+                _Shapes(gm).run(example)  # every node's output shape, in node.meta["shape"]
+        except Exception as e:  # a layer the tracer accepted but that fails on a small input
+            raise NotStreamable(f"model: cannot run its graph on a {side}x{side} input ({' '.join(str(e).split())})"
+                                ) from None
+        self._build(_Fusion(True))  # fail now, not on the first image, if a layer cannot be streamed
+        self._finite_weights = all(bool(torch.isfinite(t).all()) for t in gm.state_dict().values()
+                                   if t.is_floating_point())
+        self._bytes_per_pixel = 4 * max(
+            math.prod(node.meta["shape"][1:]) / (side * side) for node in self._graph.graph.nodes
+            if node.op in ("call_module", "call_function") and node not in self._concats and "shape" in node.meta)
 
-    def _build(self) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
-        """Fresh ops (empty row buffers) for every node of the graph, in execution order."""
+    def _build(self, fusion: _Fusion) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
+        """Fresh ops (empty row buffers) for every node of the graph, in execution order; their ReLUs fused into
+        convolutions as ``fusion`` allows."""
         modules = dict(self._graph.named_modules())
         fused = self._fusable_relus(modules)
+        self._concats = self._fusable_concats(modules)
         nodes = []
         for node in self._graph.graph.nodes:
             ins = list(node.all_input_nodes)
@@ -396,12 +573,19 @@ class RowStreamer:
                 self._input = node
             elif node.op == "output":
                 self._output = ins[0]
+            elif node in self._concats:
+                continue  # done by the convolution after it
             else:
                 copy = len(ins) == 1 and len(ins[0].users) > 1
                 if node in fused.values():
                     op = _Pointwise(lambda x: x, False)  # done by the convolution before it
+                elif node.op == "call_module" and ins and ins[0] in self._concats:
+                    ins = list(ins[0].args[0])
+                    op = self._concat_conv(modules[str(node.target)], ins, relu=node in fused, fusion=fusion)
                 elif node.op == "call_module":
-                    op = _module_op(modules[str(node.target)], str(node.target), copy, relu=node in fused)
+                    op = _module_op(modules[str(node.target)], str(node.target), copy, relu=node in fused,
+                                    onednn=self._onednn, last=all(u.op == "output" for u in node.users),
+                                    fusion=fusion)
                 elif node.op == "call_function":
                     op = _function_op(node, len(ins), copy)
                 else:
@@ -410,9 +594,9 @@ class RowStreamer:
         return nodes
 
     def _fusable_relus(self, modules: dict[str, nn.Module]) -> dict[fx.Node, fx.Node]:
-        """Convolutions whose output goes only (through identities) to a ReLU, mapped to that ReLU. Not under
-        bf16 autocast, which the fused kernel does not follow."""
-        if self.bf16 or not FUSED_RELU:
+        """Convolutions whose output goes only (through identities) to a ReLU, mapped to that ReLU (when oneDNN
+        runs the convolutions)."""
+        if not self._onednn:
             return {}
         found = {}
         for node in self._graph.graph.nodes:
@@ -427,64 +611,143 @@ class RowStreamer:
                 found[src] = node
         return found
 
-    def band_rows(self, width: int) -> int:
-        """Input rows per band for an image ``width`` pixels wide: about BAND_PIXELS, a multiple of the factor."""
-        return max(self.factor, BAND_PIXELS // max(width, 1) // self.factor * self.factor)
+    def _fusable_concats(self, modules: dict[str, nn.Module]) -> set[fx.Node]:
+        """Channel concatenations read only by one ungrouped convolution (when oneDNN runs the convolutions)."""
+        if not self._onednn:
+            return set()
+        found = set()
+        for node in self._graph.graph.nodes:
+            if node.op != "call_function" or node.target is not torch.cat or len(node.users) != 1 or \
+                    not all(isinstance(part, fx.Node) for part in node.args[0]):
+                continue
+            dim = node.kwargs.get("dim", node.args[1] if len(node.args) > 1 else 0)
+            user = next(iter(node.users))
+            conv = modules.get(str(user.target)) if user.op == "call_module" else None
+            if dim in (1, -3) and isinstance(conv, nn.Conv2d) and conv.groups == 1 and \
+                    conv.padding_mode == "zeros" and not isinstance(conv.padding, str):
+                found.add(node)
+        return found
 
-    def _push(self, nodes: list[tuple[fx.Node, _Op, list[fx.Node]]], x: torch.Tensor,
-              last: bool) -> torch.Tensor | None:
-        """Feed the next band of input rows through every node; the output rows completed by it."""
-        out: dict[fx.Node, Rows] = {self._input: [x]}
-        with torch.inference_mode(), torch.autocast("cpu", torch.bfloat16, enabled=self.bf16):
-            for node, op, ins in nodes:
-                out[node] = op.step([out[i] for i in ins], last)
-        y = out[self._output]
-        return torch.cat(y, dim=2).float() if y else None
+    def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool, fusion: _Fusion) -> _Window:
+        """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`; its ReLU fused as
+        ``fusion`` allows)."""
+        (k, _), (s, sw), (d, dw), (p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.dilation), _pair(m.padding)
+        widths = [int(part.meta["shape"][1]) for part in parts]
+        weights = [w.contiguous() for w in torch.split(m.weight.detach(), widths, dim=1)]
+        bias = None if m.bias is None else m.bias.detach()
+
+        def fn(xs: list[torch.Tensor]) -> torch.Tensor:
+            if relu and not fusion.ok:
+                return F.relu(concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), False))
+            return concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), relu)
+        return _Window(fn, k, s, d, p, 0.0, inputs=len(parts))
+
+    def band_rows(self, width: int) -> int:
+        """Input rows per band for an image ``width`` pixels wide: as many as keep the band's largest feature map
+        within BAND_BYTES, or make BAND_PIXELS within BAND_BYTES_MAX; a multiple of the factor."""
+        row = self._bytes_per_pixel * max(width, 1)
+        rows = max(BAND_BYTES / row, min(BAND_PIXELS / max(width, 1), BAND_BYTES_MAX / row))
+        return max(self.factor, int(rows) // self.factor * self.factor)
+
+    def _normalisation(self) -> tuple[np.ndarray, np.ndarray]:
+        """The model's per-band mean and std as float32 arrays (its one-line error when it has none)."""
+        if self.model.mean is None or self.model.std is None:
+            self.model.normalise(torch.zeros(1))  # raises the model's own message
+        return (self.model.mean.flatten().numpy().astype(np.float32),
+                self.model.std.flatten().numpy().astype(np.float32))
 
     def stream(self, raster: Raster, *, logits: bool = False, rows: int | None = None, progress: bool = False,
-               desc: str = "rows") -> Iterator[tuple[int, torch.Tensor]]:
+               desc: str = "rows", post: Callable[[int, torch.Tensor], Any] | None = None
+               ) -> Iterator[tuple[int, Any]]:
         """Class probabilities (the model's, calibrated) or ``logits`` of ``raster``, top to bottom, as (first
-        row, C×h×W float32)."""
+        row, C×h×W float32), or as (first row, ``post(first row, band)``) when ``post`` is given: a band's last
+        step, run by the workers too. The graph's steps run on :func:`workers` threads
+        (:mod:`fcnkit.inference.bandflow`)."""
         from tqdm import tqdm
 
         height, width, bands = raster.shape
         p = self.plan
         rows = rows or self.band_rows(width)
         left, right, bottom = p.before, p.after(width), p.after(height)
+        mean, std = self._normalisation()
+        # one value per band of a row: a row vector the width of the image, so numpy's loops run over whole
+        # rows (broadcasting over the last axis of B values runs about 14x slower)
+        mean, std = np.tile(mean, width), np.tile(std, width)
+        starts = list(range(0, height, rows))
 
-        def load(y0: int) -> torch.Tensor:
-            """Input rows y0..y0+rows, normalised and padded by the plan (the top padding before the first band,
-            the bottom padding after the last)."""
-            y1 = min(y0 + rows, height)
-            x = torch.from_numpy(raster.read(y0, y1, 0, width).astype("float32", copy=False))
-            x = self.model.normalise(x.permute(2, 0, 1)[None])
+        def load(_: list, b: int) -> Rows:
+            """Band b's input rows, normalised and padded by the plan (the top padding before the first band, the
+            bottom padding after the last). Done with numpy: torch would start another team of threads here."""
+            y0, y1 = starts[b], min(starts[b] + rows, height)
+            a = raster.read(y0, y1, 0, width).astype(np.float32)  # a copy: the reader's array is not ours
+            flat = a.reshape(y1 - y0, width * bands)
+            np.subtract(flat, mean, out=flat)
+            np.divide(flat, std, out=flat)
+            if fusion.ok and not np.isfinite(flat).all():
+                fusion.ok = False  # NaN must reach the scores as in a whole-image pass (see _Fusion)
             top = p.before if y0 == 0 else 0
             if left or right or top or (y1 == height and bottom):
-                x = F.pad(x, (left, right, top, bottom if y1 == height else 0), mode="replicate")
-            return x.contiguous(memory_format=torch.channels_last)
+                a = np.pad(a, ((top, bottom if y1 == height else 0), (left, right), (0, 0)), mode="edge")
+            # H×W×B memory is channels-last already; viewed as 1×H×W×B first so that even the batch stride says so
+            # (torch reads a batch stride of B as plain NCHW layout and the net's maps follow: several times slower)
+            return [torch.from_numpy(a).view(1, *a.shape).permute(0, 3, 1, 2)]
 
-        nodes = self._build()
-        starts = list(range(0, height, rows))
-        skip, done, t0 = p.crop, 0, time.perf_counter()  # output rows before the crop; rows handed on
+        state = {"skip": p.crop, "done": 0}  # output rows still to drop before the crop; rows handed on
+
+        def emit(args: list, b: int) -> tuple[int, int, Any] | None:
+            """The band's finished output rows, cropped to the image, as probabilities or logits (or ``post`` of
+            them): (first row, rows, value)."""
+            if not args[0]:
+                return None
+            y = (args[0][0] if len(args[0]) == 1 else torch.cat(args[0], dim=2)).float()
+            cut = min(state["skip"], y.shape[2])
+            y, state["skip"] = y[:, :, cut:], state["skip"] - cut
+            y = y[:, :, :height - state["done"], p.crop:p.crop + width].contiguous()
+            if not y.shape[2]:
+                return None
+            y = y if logits else self.model.probabilities(y)
+            y0, state["done"] = state["done"], state["done"] + y.shape[2]
+            return y0, y.shape[2], y[0] if post is None else post(y0, y[0])
+
+        fusion = _Fusion(self._finite_weights)
+        nodes = self._build(fusion)
+        index = {self._input: 0} | {node: j + 1 for j, (node, _, _) in enumerate(nodes)}
+        steps: list[Callable[[list, int], object]] = [load]
+        deps: list[list[int]] = [[]]
+        for _, op, ins in nodes:
+            steps.append(lambda args, b, op=op: op.step(args, b + 1 == len(starts)))
+            deps.append([index[i] for i in ins])
+        steps.append(emit)
+        deps.append([index[self._output]])
+
+        n = workers()
+        bf16 = self.bf16
+
+        @contextlib.contextmanager
+        def setup() -> Iterator[None]:
+            with contextlib.ExitStack() as stack:
+                if n > 1:
+                    stack.enter_context(one_thread_per_worker())
+                stack.enter_context(torch.inference_mode())
+                stack.enter_context(torch.autocast("cpu", torch.bfloat16, enabled=bf16))
+                yield
+
+        t0 = time.perf_counter()
         bar = tqdm(total=height, unit="row", desc=desc, disable=not progress, leave=False)
-        with ThreadPoolExecutor(1) as pool, bar:
-            nxt = pool.submit(load, starts[0])
-            for k in range(len(starts)):
-                x = nxt.result()
-                if k + 1 < len(starts):
-                    nxt = pool.submit(load, starts[k + 1])
-                y = self._push(nodes, x, k + 1 == len(starts))
-                if y is None:
+        with bar:
+            for out in run_bands(steps, deps, len(starts), workers=n, window=BANDS_IN_FLIGHT, setup=setup):
+                if out is None:
                     continue
-                cut = min(skip, y.shape[2])
-                y, skip = y[:, :, cut:], skip - cut
-                y = y[:, :, :height - done, p.crop:p.crop + width].contiguous()
-                if not y.shape[2]:
-                    continue
-                y = y if logits else self.model.probabilities(y)
-                yield done, y[0]
-                done += y.shape[2]
-                bar.update(y.shape[2])
-                bar.set_postfix_str(pixel_rate(done * width, time.perf_counter() - t0))
-        if done != height:
-            raise RuntimeError(f"row streaming produced {done} of {height} rows")
+                yield out[0], out[2]
+                bar.update(out[1])
+                bar.set_postfix_str(pixel_rate(state["done"] * width, time.perf_counter() - t0))
+        if state["done"] != height:
+            raise RuntimeError(f"row streaming produced {state['done']} of {height} rows")
+
+
+def workers() -> int:
+    """Worker threads for row streaming: torch's thread count, each worker running its operations on one
+    thread, where this process can pin them (:func:`~fcnkit.inference.bandflow.can_pin_threads`); else one
+    worker whose operations use all of torch's threads."""
+    n = torch.get_num_threads()
+    return n if n > 1 and can_pin_threads() else 1

@@ -19,7 +19,7 @@ import tempfile
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
@@ -37,6 +37,7 @@ if TYPE_CHECKING:
 SCANS = ("auto", "rows", "whole", "tiles")
 SCORES_IN_MEMORY_BYTES = 256 << 20  # predict_scores returns larger results as a memory map on a file
 WHOLE_BAND = 256  # rows per band handed on by the whole-image scan
+POST_ROWS = 64  # rows per call of a band post-processing step outside row streaming
 
 
 @dataclass(frozen=True)
@@ -131,8 +132,8 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
                   overlap: int | None = None, batch: int | None = None, window: str | None = None,
                   exact: bool = False, tta: bool = False, logits: bool = False, bf16: bool = False,
                   engine: str | Engine = "torch", progress: bool = False, desc: str = "mapping",
-                  echo: Callable[[str], None] | None = None,
-                  note: Callable[[str], None] | None = None) -> Iterator[tuple[int, torch.Tensor]]:
+                  echo: Callable[[str], None] | None = None, note: Callable[[str], None] | None = None,
+                  post: Callable[[torch.Tensor], Any] | None = None) -> Iterator[tuple[int, Any]]:
     """Choose the scan (:func:`choose_scan`) and stream the class probabilities (the model's calibrated ones,
     or ``logits``) of ``raster`` as (first row, C×h×W float32) bands from top to bottom. The checks run at once,
     before the first band is asked for; ``echo`` receives the one-line note of an automatic choice. Tile
@@ -141,6 +142,8 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     Every region read is checked against the model's training range (:mod:`fcnkit.inputrange`: ``note``, or a
     RangeWarning, when outside; DataError when far outside), and every band of scores must be finite: a NaN or
     inf anywhere in the net ends the scan with a DataError on every scan alike, never a plausible-looking map.
+    ``post``, when given, turns each band into what is streamed instead (first row, ``post(band)``), after that
+    check: in the row streaming workers, in parallel, or here on bands of at most POST_ROWS rows.
     """
     from fcnkit.memory import check_forward_memory
     from fcnkit.nets import layer_graph
@@ -160,11 +163,11 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     if choice.scan == "rows":
         streamer = _streamer(model, bf16)
         check_forward_memory(graph, streamer.band_rows(width), width, 1, bands, factor=factor)  # type: ignore[arg-type]
-        return _finite(streamer.stream(raster, logits=logits, progress=progress, desc=desc), where)
+        return streamer.stream(raster, logits=logits, progress=progress, desc=desc, post=_checked(post, where))
     run = engine if callable(engine) else make_engine(engine, model, bf16)
     if choice.scan == "whole":
         _say(echo, choice)
-        return _finite(_whole(run, raster, model, logits), where)
+        return _posted(_whole(run, raster, model, logits), post, where)
     plan = plan_tiles(model.geometry, height, width, tile=tile or DEFAULT_TILE, overlap=overlap,
                       window=window or "hann", exact=choice.exact)
     batch = batch or auto_batch(plan)
@@ -172,20 +175,36 @@ def stream_scores(model: Model, raster: Raster, *, scan: str = "auto", tile: int
     check_forward_memory(graph, rows, cols, min(batch, len(plan.rows) * len(plan.cols)), bands,  # type: ignore[arg-type]
                          factor=factor)
     _say(echo, choice)
-    return _finite(stream_tiles(run, raster, plan, batch=batch, tta=tta,
+    return _posted(stream_tiles(run, raster, plan, batch=batch, tta=tta,
                                 probabilities=None if logits else model.probabilities, progress=progress, desc=desc),
-                   where)
+                   post, where)
 
 
-def _finite(bands: Iterator[tuple[int, torch.Tensor]], where: str) -> Iterator[tuple[int, torch.Tensor]]:
-    """The bands of scores, each checked to be finite."""
-    for y0, band in bands:
-        if not bool(torch.isfinite(band).all()):
+def _checked(post: Callable[[torch.Tensor], Any] | None, where: str) -> Callable[[int, torch.Tensor], Any]:
+    """A band's last step: the band (first row ``y0``), checked to be finite, then ``post`` of it (or itself)."""
+    def run(y0: int, band: torch.Tensor) -> Any:
+        # a sum is finite when every value is (and is faster to take than testing each); when it is not (or
+        # merely overflowed), look for the culprit
+        if not bool(torch.isfinite(band.sum())) and not bool(torch.isfinite(band).all()):
             bad = torch.nonzero(~torch.isfinite(band))[0].tolist()
             raise DataError(f"{where}: the model's class scores are NaN or infinite at row {y0 + bad[1]}, column "
                             f"{bad[2]} (its activations overflowed: pixel values far outside what it was trained "
                             "on, or a damaged model)")
-        yield y0, band
+        return band if post is None else post(band)
+    return run
+
+
+def _posted(bands: Iterator[tuple[int, torch.Tensor]], post: Callable[[torch.Tensor], Any] | None,
+            where: str) -> Iterator[tuple[int, Any]]:
+    """Each band checked to be finite, then ``post`` of it in pieces of at most POST_ROWS rows (its temporaries
+    stay small), or the band itself."""
+    step = _checked(post, where)
+    for y0, band in bands:
+        if post is None:
+            yield y0, step(y0, band)
+        else:
+            for k in range(0, band.shape[1], POST_ROWS):
+                yield y0 + k, step(y0 + k, band[:, k:k + POST_ROWS])
 
 
 def _say(echo: Callable[[str], None] | None, choice: ScanChoice) -> None:

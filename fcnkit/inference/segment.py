@@ -21,7 +21,9 @@ from fcnkit.inference.scan import stream_scores
 from fcnkit.model import Model
 
 if TYPE_CHECKING:
-    from fcnkit.outputs import OutputOptions
+    import torch
+
+    from fcnkit.outputs import Maps, OutputOptions
 
 IN_MEMORY_PIXELS = 4_000_000  # segment keeps the 8-bit maps of smaller images in memory, of larger ones on disk
 
@@ -89,7 +91,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     import tempfile
 
     from fcnkit.data.raster import alpha_hint, open_raster
-    from fcnkit.outputs import write_outputs
+    from fcnkit.outputs import class_maps, write_outputs
 
     if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
         raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
@@ -104,16 +106,22 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         if bands != model.bands:
             raise DataError(f"{image_path}: has {bands} bands but the model expects {model.bands}" + alpha_hint(raster))
         raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean: neutral inputs
-        scores = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
-                               exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
-                               desc=image_path.name, echo=note, note=note)
+        classes = model.classes or ClassTable.generic(model.num_classes)
+
+        def maps(probs: torch.Tensor) -> Maps:
+            if probs.shape[0] != classes.num_classes:
+                raise ConfigError(f"model: gives {probs.shape[0]} class scores but its class table has "
+                                  f"{classes.num_classes} classes")
+            return class_maps(probs)
+
+        bands = stream_scores(model, raster, scan=scan, tile=tile, overlap=overlap, batch=batch, window=window,
+                              exact=exact, tta=tta, bf16=bf16, engine=engine, progress=progress,
+                              desc=image_path.name, echo=note, note=note, post=maps)
         done = work / "done"
         done.mkdir()
         large = height * width > IN_MEMORY_PIXELS
-        classes = model.classes or ClassTable.generic(model.num_classes)
-        written = write_outputs(((y0, band.numpy()) for y0, band in scores), raster, classes, done,
-                                image_path.stem, work=work if large else None, pixel_size=pixel_size,
-                                preview=preview, options=outputs)
+        written = write_outputs(bands, raster, classes, done, image_path.stem, work=work if large else None,
+                                pixel_size=pixel_size, preview=preview, options=outputs)
         final = {k: out_dir / p.name for k, p in written.paths.items()}
         mode = default_mode()
         for k, p in written.paths.items():  # renames within one file system: each is atomic, all follow at once
