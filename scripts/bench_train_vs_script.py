@@ -166,11 +166,11 @@ def main() -> None:
     ap.add_argument("--size", type=int, default=192, help="image side in pixels (a multiple of 8)")
     args = ap.parse_args()
     torch.set_num_threads(args.threads)
-    cfg = replace_section(load_config(args.config), "model", bands=3, classes=len(CLASSES))
+    cfg = replace_section(load_config(args.config), "model", bands=3, num_classes=len(CLASSES))
     changes = {k: tomllib.loads(f"v = {v}")["v"] for k, v in (item.split("=", 1) for item in args.set)}
     if changes:
         cfg = replace_section(cfg, "train", **changes)
-    print(f"fcnkit config {args.config} (model.bands = 3, model.classes = {len(CLASSES)}"
+    print(f"fcnkit config {args.config} (model.bands = 3, model.num_classes = {len(CLASSES)}"
           + "".join(f", train.{k} = {v!r}" for k, v in changes.items()) + f"); torch threads {args.threads}; "
           f"{args.train_images} training and {args.val_images} held-out images of {args.size}² px; "
           f"load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
