@@ -276,7 +276,15 @@ def transposed_by_phases(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tens
         out = out.view(n, qn * sh, pn * sw, c).permute(0, 3, 1, 2)
     else:
         out = torch.empty(n, c, qn, sh, pn, sw, dtype=y.dtype)
-        out.copy_(y.reshape(n, qn, pn, c, sh, sw).permute(0, 3, 1, 4, 2, 5))
+        src = y.reshape(n, qn, pn, c, sh, sw).permute(0, 3, 1, 4, 2, 5)
+        # A pixel's sw column phases lie side by side in both layouts: for sw = 2 or 4 they move as one 8- or
+        # 16-byte element (the bits unchanged), 3.7-4.6x faster than float by float (2x up-sampling, 5 classes)
+        wide = {2: torch.float64, 4: torch.complex128}.get(sw) if y.dtype == torch.float32 else None
+        if wide is not None and src.stride(-1) == 1 and src.storage_offset() % sw == 0 and \
+                all(st % sw == 0 for st in src.stride()[:-1]):  # else not viewable (e.g. a one-row map's strides)
+            out.view(wide).copy_(src.view(wide))
+        else:
+            out.copy_(src)
         out = out.view(n, c, qn * sh, pn * sw)
     r, k = rows[0] - q0 * sh, cols[0] - p0 * sw
     return out[:, :, r:r + rows[1] - rows[0], k:k + cols[1] - cols[0]]
