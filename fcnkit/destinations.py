@@ -21,6 +21,9 @@ from pathlib import Path
 from fcnkit.atomic import partial_path
 from fcnkit.errors import FcnkitError
 
+# The files of a training run folder (fcnkit.runstate writes them; named here so the guard needs no torch)
+MODEL_FILE, RESUME_FILE, METRICS_FILE = "model.safetensors", "resume.pt", "metrics.csv"
+
 PathLike = str | Path
 
 
@@ -60,8 +63,6 @@ def _is_checkpoint(path: Path) -> bool:
 
 def protected(path: Path) -> str | None:
     """What an existing file holds that no command may overwrite, or None."""
-    from fcnkit.runstate import METRICS_FILE, RESUME_FILE
-
     if not path.is_file():
         return None
     if _is_safetensors(path):

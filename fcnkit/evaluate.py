@@ -16,7 +16,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from fcnkit.atomic import ESCAPES, atomic_output
+from fcnkit.atomic import ESCAPES, atomic_output, write_text_atomic
 from fcnkit.calibration import ReliabilityAccumulator, scaled_softmax
 from fcnkit.data.classes import ClassTable
 from fcnkit.data.dataset import Sample, find_samples, sample_mask
@@ -70,16 +70,21 @@ class Evaluation:
     curves: Path | None = None  # the training run's metrics CSV, when known
     kept_epoch: int | None = None  # the training epoch whose weights the model holds
 
-    def write_report(self, path: str | Path, *, assessment: dict[str, Any] | None = None) -> Path:
+    def render_report(self, *, assessment: dict[str, Any] | None = None) -> str:
         """The HTML report of this evaluation (fcnkit.report), with an area and accuracy ``assessment`` from a
-        reference sample when given (fcnkit.assessment.assessment_table); written atomically."""
-        from fcnkit.report import write_report
+        reference sample when given (fcnkit.assessment.assessment_table)."""
+        from fcnkit.report import render_report
 
-        self.paths["report"] = write_report(
-            path, self.scores, self.confusion, self.classes, facts=self.facts, curves=self.curves,
+        return render_report(
+            self.scores, self.confusion, self.classes, facts=self.facts, curves=self.curves,
             title=f"Evaluation on {self.data_dir.name}", examples=self.examples, description=self.description,
             images=[asdict(s) for s in self.images], interval=self.interval, calibration=self.calibration,
             kept_epoch=self.kept_epoch, assessment=assessment)
+
+    def write_report(self, path: str | Path, *, assessment: dict[str, Any] | None = None) -> Path:
+        """:meth:`render_report`, written atomically to ``path``."""
+        write_text_atomic(path, self.render_report(assessment=assessment))
+        self.paths["report"] = Path(path)
         return self.paths["report"]
 
     def to_dict(self) -> dict[str, Any]:
@@ -248,7 +253,8 @@ def evaluate(model: str | Path | Model, data_dir: str | Path, *, json_path: str 
             tmp = stack.enter_context(atomic_output(json_path))
             tmp.write_bytes((json.dumps(result.to_dict(), indent=1) + "\n").encode("utf-8", ESCAPES))
         if report is not None:
-            result.write_report(stack.enter_context(atomic_output(report)))
+            tmp = stack.enter_context(atomic_output(report))
+            tmp.write_bytes(result.render_report().encode("utf-8", ESCAPES))
     if json_path is not None:
         result.paths["json"] = Path(json_path)
     if report is not None:

@@ -40,8 +40,9 @@ def training_stats(images: Sequence[np.ndarray]) -> dict[str, Any]:
     bands = images[0].shape[2]
     total = sum(x.shape[0] * x.shape[1] for x in images)
     step = max(1, total // _SAMPLE)
-    lo = np.min([x.reshape(-1, bands).min(0) for x in images], axis=0).astype(np.float64)
-    hi = np.max([x.reshape(-1, bands).max(0) for x in images], axis=0).astype(np.float64)
+    extremes = [band_extremes(x.reshape(-1, bands)) for x in images]
+    lo = np.min([e[0] for e in extremes], axis=0)
+    hi = np.max([e[1] for e in extremes], axis=0)
     sample = np.concatenate([x.reshape(-1, bands)[::step] for x in images]).astype(np.float64)
     p01, p99 = np.percentile(sample, [1, 99], axis=0)
     dtypes = sorted({str(x.dtype) for x in images})

@@ -102,16 +102,14 @@ def class_maps(probs: np.ndarray | torch.Tensor) -> tuple[np.ndarray, np.ndarray
     3x faster than numpy's argmax and sums over the first axis (and torch's own, slower still); segmenting
     runs it in the inference workers (:func:`fcnkit.inference.scan.stream_scores`)."""
     p = torch.as_tensor(probs)
-    top, labels = p[0], torch.zeros(p.shape[1:], dtype=torch.uint8)
+    plogp = p.clamp(1e-12, 1.0)
+    plogp = plogp.log().mul_(plogp)
+    top, labels, total = p[0], torch.zeros(p.shape[1:], dtype=torch.uint8), plogp[0].clone()
     for c in range(1, p.shape[0]):
         # c where p[c] beats every class before it (strictly: the first maximum on ties, as numpy's argmax);
         # arithmetic, since torch's masked writes are 20x slower than these
         labels = torch.maximum(labels, (p[c] > top).to(torch.uint8) * c)
         top = torch.maximum(top, p[c])
-    plogp = p.clamp(1e-12, 1.0)
-    plogp = plogp.log().mul_(plogp)
-    total = plogp[0].clone()
-    for c in range(1, p.shape[0]):
         total += plogp[c]
     return labels.numpy(), _byte(top).numpy(), _byte(total.neg_().div_(math.log(p.shape[0]))).numpy()
 

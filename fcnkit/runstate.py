@@ -24,6 +24,7 @@ import numpy as np
 import torch
 
 from fcnkit.atomic import write_bytes_atomic, write_text_atomic
+from fcnkit.destinations import METRICS_FILE, MODEL_FILE, RESUME_FILE
 from fcnkit.errors import ModelFileError
 
 try:
@@ -32,7 +33,6 @@ except ImportError:  # not POSIX
     fcntl = None  # type: ignore[assignment]
 
 FORMAT = "fcnkit-resume/1"
-MODEL_FILE, RESUME_FILE, METRICS_FILE = "model.safetensors", "resume.pt", "metrics.csv"
 # settings that change speed but not the numbers a run produces, so a run may resume with other values
 _FREE_KEYS = ("threads", "workers")
 

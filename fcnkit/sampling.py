@@ -42,6 +42,7 @@ from fcnkit.destinations import check_outputs
 from fcnkit.errors import DataError
 
 SAMPLE_FIELDS = ("point_id", "row", "col", "x", "y", "map_id", "map_class", "reference")
+CHIP_PREFIX = "point_"  # chips are CHIP_PREFIX + the five-digit point id + .png
 VECTOR_SUFFIXES = {".gpkg": "GPKG", ".geojson": "GeoJSON"}
 SAMPLE_SUFFIXES = (*VECTOR_SUFFIXES, ".csv")
 LAYER = "sample"
@@ -241,7 +242,8 @@ def _pick(raster: Raster, strata: _Strata, ranks: list[np.ndarray]) -> tuple[np.
     return r[order], c[order], i[order]
 
 
-def _check_outputs(out: str | Path | Sequence[str | Path]) -> list[Path]:
+def _sample_paths(out: str | Path | Sequence[str | Path]) -> list[Path]:
+    """The sample file names of ``out``, each of a supported type."""
     paths = [Path(out)] if isinstance(out, (str, Path)) else [Path(p) for p in out]
     if not paths:
         raise DataError("no output file given for the sample (expected a .gpkg, .geojson or .csv name)")
@@ -270,10 +272,10 @@ def draw_sample(labels: str | Path, out: str | Path | Sequence[str | Path], *, c
     pixels of ``image`` (the mapped image, same grid) around it.
     """
     labels = Path(labels)
-    paths = _check_outputs(out)
+    paths = _sample_paths(out)
     if chips is not None and image is None:
         raise DataError("image chips need the mapped image (the image the label map was made from)")
-    check_outputs(paths, inputs=[labels, image], folders=[(chips, "point_*.png")] if chips is not None else [],
+    check_outputs(paths, inputs=[labels, image], folders=[(chips, f"{CHIP_PREFIX}*.png")] if chips is not None else [],
                   overwrite=overwrite, error=DataError)
     if total is not None and total < 1:
         raise DataError(f"sample size {total} points (expected at least 1)")
@@ -387,7 +389,7 @@ def write_chips(sample: Sample, image: str | Path, folder: str | Path, size: int
             ring = np.ones((zoom + 2, zoom + 2), bool)
             ring[1:-1, 1:-1] = False
             rgb[box][ring] = (255, 255, 0)
-            with atomic_output(folder / f"point_{pid:05d}.png") as tmp:
+            with atomic_output(folder / f"{CHIP_PREFIX}{pid:05d}.png") as tmp:
                 Image.fromarray(rgb).save(tmp, format="PNG")
     finally:
         raster.close()

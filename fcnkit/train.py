@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import functools
 import json
 import math
 import random
@@ -34,7 +35,7 @@ from torch.utils.data import DataLoader
 from tqdm import tqdm
 
 from fcnkit import parallel, runstate
-from fcnkit.budget import TimeBudget
+from fcnkit.budget import SAVE_SECONDS, TimeBudget
 from fcnkit.config import TrainConfig, config_from_dict
 from fcnkit.cores import CoreWatch
 from fcnkit.data.classes import ClassTable
@@ -146,8 +147,13 @@ class _Run:
     data_id: str
     p: dict[str, Any]
     best_state: dict[str, torch.Tensor]
-    best_sample: tuple[int, _PixelSample] | None = None  # the best epoch's calibration pixels (this session's)
+    best_sample: _PixelSample | None = None  # the best epoch's calibration pixels (when it ran in this session)
     cores: CoreWatch | None = None  # chooses the thread count when train.threads = 0
+
+    @functools.cached_property
+    def val_labelled(self) -> int:
+        """Labelled validation pixels of this process (the masks do not change during a run)."""
+        return sum(int((m != self.model.classes.ignore).sum()) for m in self.val_masks)
 
 
 def _prepare(model: Model, t: TrainConfig, data: str | Path | Sequence[np.ndarray],
@@ -305,7 +311,7 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool, budget: TimeBudget) -> 
     ignore, total_steps = run.model.classes.ignore, t.epochs * run.steps_per_epoch
     fmt = torch.channels_last if t.channels_last else torch.contiguous_format
     val_pixels = sum(m.size for m in run.val_masks)
-    if budget.active and t.calibrate and run.has_val:
+    if budget.active and t.calibrate and run.has_val and "calibration" not in p:  # not fitted yet
         budget.calibration = _calibration_seconds(run)
     if run.cores is not None:  # one thread until the cores others leave free have been measured
         torch.set_num_threads(run.cores.choice)
@@ -417,7 +423,7 @@ def _end_epoch(run: _Run, lr: float, train_seconds: float) -> None:
     if p["best_epoch"] == 0 or miou > p["best_mean_iou"] or not run.has_val:  # without validation: keep the latest
         p.update(best_mean_iou=miou, best_epoch=p["epoch"], bad_epochs=0)
         run.best_state = _copy_state(model)
-        run.best_sample = None if sample is None else (p["epoch"], sample)
+        run.best_sample = sample
         model.extra = {**model.extra, "epoch": p["epoch"], "val_mean_iou": scores["mean_iou"]}
         if g.main:
             model.save(run.run_dir / runstate.MODEL_FILE)
@@ -496,8 +502,7 @@ class _PixelSample:
 
     def __init__(self, run: _Run) -> None:
         self.ignore = run.model.classes.ignore
-        labelled = sum(int((m != self.ignore).sum()) for m in run.val_masks)
-        self.keep = min(1.0, CALIBRATION_PIXELS / max(labelled, 1))
+        self.keep = min(1.0, CALIBRATION_PIXELS / max(run.val_labelled, 1))
         self.rng = np.random.default_rng(run.t.seed + run.group.rank)
         self.x: list[np.ndarray] = []
         self.y: list[np.ndarray] = []
@@ -558,11 +563,8 @@ def _calibration_seconds(run: _Run) -> float:
     """Seconds the calibration after training will take on this machine: ``_fit_calibration`` timed on up to
     CALIBRATION_PROBE random stand-in pixels (its iterations do not depend on the values) and scaled to the pixels
     the real fit will use, plus saving the model file and the resume point."""
-    from fcnkit.budget import SAVE_SECONDS
-
-    ignore, k = run.model.classes.ignore, run.model.num_classes
-    labelled = sum(int((m != ignore).sum()) for m in run.val_masks)
-    pixels = min(labelled, CALIBRATION_PIXELS) * run.group.world
+    k = run.model.num_classes
+    pixels = min(run.val_labelled, CALIBRATION_PIXELS) * run.group.world
     probe = min(pixels, CALIBRATION_PROBE)
     if not probe:
         return 2 * SAVE_SECONDS
@@ -580,14 +582,12 @@ def _validation_pixels(run: _Run) -> tuple[np.ndarray, np.ndarray]:
     process, a seeded random choice, pooled over every process (ignored pixels labelled −1): the sample the
     best epoch's validation kept, or, when that epoch ran in an earlier session, the same pixels scored again."""
     model, g = run.model, run.group
-    kept = run.best_sample
-    if kept is None or kept[0] != run.p["best_epoch"]:
+    sample = run.best_sample
+    if sample is None:  # the best epoch ran in an earlier session
         sample = _PixelSample(run)
         for logits, target in _scored_blocks(model, run.val_images, run.val_masks, margin=run.margin,
                                              channels_last=run.t.channels_last):
             sample(logits, target)
-        kept = (run.p["best_epoch"], sample)
-    sample = kept[1]
     k = model.num_classes
     x = np.concatenate(sample.x) if sample.x else np.zeros((0, k), np.float32)
     y = np.concatenate(sample.y) if sample.y else np.zeros(0, np.int64)

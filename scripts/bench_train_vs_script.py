@@ -51,8 +51,9 @@ from PIL import Image
 from scipy import ndimage
 
 from fcnkit import Model, load_config
-from fcnkit.config import config_to_dict, replace_section
+from fcnkit.config import replace_section
 from fcnkit.data.classes import ClassInfo, ClassTable, write_classes
+from fcnkit.metrics import confusion_matrix, segmentation_scores
 
 CLASSES = ("stripes", "spots", "grain", "smooth")
 IGNORE = 255
@@ -129,12 +130,8 @@ def write_dataset(folder: Path, images: list[np.ndarray], masks: list[np.ndarray
 
 def mean_iou(predict, images: list[np.ndarray], masks: list[np.ndarray], k: int = len(CLASSES)) -> float:
     """Mean over classes of TP / (TP + FP + FN) from one confusion matrix over all images' pixels."""
-    cm = np.zeros((k, k), np.int64)
-    for image, mask in zip(images, masks, strict=True):
-        cm += np.bincount(mask.ravel().astype(np.int64) * k + predict(image).ravel(), minlength=k * k).reshape(k, k)
-    tp = np.diag(cm)
-    with np.errstate(invalid="ignore"):
-        return float(np.nanmean(tp / (cm.sum(0) + cm.sum(1) - tp)))
+    cm = sum(confusion_matrix(mask, predict(image), k, ignore=None) for image, mask in zip(images, masks, strict=True))
+    return float(segmentation_scores(cm)["mean_iou"])
 
 
 def run_baseline(images, masks, val_images, val_masks, seconds: float, seed: int, patch: int) -> tuple[float, float]:
@@ -146,7 +143,7 @@ def run_baseline(images, masks, val_images, val_masks, seconds: float, seed: int
 
 def run_fcnkit(cfg, data: Path, out: Path, val_images, val_masks) -> tuple[float, float, int]:
     tic = time.perf_counter()
-    model = Model.build(cfg).fit(data, out_dir=out, progress=False, **config_to_dict(cfg)["train"])
+    model = Model.build(cfg).fit(data, out_dir=out, progress=False)  # cfg's [train] table as it is
     wall = time.perf_counter() - tic
     return mean_iou(model.predict, val_images, val_masks), wall, model.last_run.epochs
 

@@ -64,6 +64,7 @@ def test_a_run_with_threads_left_to_fcnkit_restores_torchs_count(tmp_path):
     from fcnkit.data.scenes import make_scenes
 
     data = make_scenes(tmp_path / "scenes", count=2, size=40, seed=3)
+    torch.set_num_threads(2)  # the run starts on one thread of two, so the count must really be put back
     before = torch.get_num_threads()
     result = fit(tiny(train={"threads": 0, "epochs": 1, "calibrate": False}), data, tmp_path / "run", progress=False)
     assert result.epochs == 1 and torch.get_num_threads() == before

@@ -27,8 +27,8 @@ from fcnkit.runstate import write_metrics
 
 pytestmark = pytest.mark.usefixtures("torch_one_thread")
 
-NET = {"model": {"bands": 3, "classes": 3, "widths": [4, 8], "blocks": [1, 1], "head": [8], "fusion": "sum",
-                 "min_size": 8}}
+NET = {"model": {"bands": 3, "num_classes": 3, "widths": [4, 8], "blocks": [1, 1], "head": [8],
+                 "fusion": "sum", "min_size": 8}}
 
 
 def _net() -> Model:

@@ -91,7 +91,8 @@ def test_streaming_survives_torch_fx_tracing_in_another_thread():
     # when the caller traced a net (e.g. to read a model's geometry) between two bands.
     from torch import fx
 
-    cfg = config_from_dict({"model": {"bands": 1, "classes": 2, "widths": [4, 4], "min_size": 8, "norm": "batch"}})
+    cfg = config_from_dict({"model": {"bands": 1, "num_classes": 2, "widths": [4, 4], "min_size": 8,
+                                  "norm": "batch"}})
     net = as_model(randomise_statistics(build_model(cfg), 0))
     other = nn.Sequential(*[nn.Sequential(nn.Conv2d(2, 2, 1), nn.ReLU()) for _ in range(20)])
     img = np.random.default_rng(0).random((600, 32, 1)).astype(np.float32)

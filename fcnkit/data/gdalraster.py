@@ -14,6 +14,7 @@ reader used by ``check``, training and mapping must not guess.
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import threading
 import warnings
@@ -36,14 +37,12 @@ MAX_BANDS = 2048
 # of tiles of a wide image, all that streaming reads need again. Set once per process unless the user has set
 # GDAL_CACHEMAX.
 READ_CACHE_BYTES = 128 << 20
-_CACHE_SET: list[bool] = []
 
 
+@functools.cache
 def _bound_block_cache() -> None:
-    if not _CACHE_SET:
-        _CACHE_SET.append(True)
-        if "GDAL_CACHEMAX" not in os.environ:
-            rasterio.env.set_gdal_config("GDAL_CACHEMAX", READ_CACHE_BYTES)  # an int: bytes
+    if "GDAL_CACHEMAX" not in os.environ:
+        rasterio.env.set_gdal_config("GDAL_CACHEMAX", READ_CACHE_BYTES)  # an int: bytes
 
 
 def _gdal() -> contextlib.AbstractContextManager:

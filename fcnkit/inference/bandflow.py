@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
+import functools
 import heapq
 import threading
 from collections.abc import Callable, Iterator, Sequence
@@ -23,9 +24,11 @@ import torch
 Step = Callable[[list[Any], int], Any]  # (results of the steps it reads, band index) → its result for the band
 
 
+@functools.cache
 def _openmp() -> Any | None:
     """The OpenMP runtime torch's CPU kernels use (torch's own copy, found among the libraries this process has
-    loaded), or None where there is none to find (another platform, another threading library)."""
+    loaded), or None where there is none to find (another platform, another threading library). Looked up once."""
+    torch.get_num_threads()  # torch loads and sets up its threading library on first use
     try:
         with open("/proc/self/maps") as f:
             paths = {line.split()[-1] for line in f if "/" in line}
@@ -43,15 +46,10 @@ def _openmp() -> Any | None:
     return None
 
 
-_OPENMP: list[Any] = []  # the runtime, looked up once
-
-
 def can_pin_threads() -> bool:
     """Whether this process can give a worker thread's torch operations one thread of their own (without
     changing the thread count of any other thread)."""
-    if not _OPENMP:
-        _OPENMP.append(_openmp() if torch.get_num_threads() > 0 else None)
-    return _OPENMP[0] is not None
+    return _openmp() is not None
 
 
 @contextlib.contextmanager
@@ -59,8 +57,8 @@ def one_thread_per_worker() -> Iterator[None]:
     """In the calling (worker) thread only, run torch's CPU operations on that thread alone. OpenMP keeps the
     thread count per thread; torch.set_num_threads would change it for the whole process."""
     torch.get_num_threads()  # torch sets this thread's OpenMP count from its global one on first use: do that first
-    if can_pin_threads():
-        _OPENMP[0].omp_set_num_threads(1)
+    if (runtime := _openmp()) is not None:
+        runtime.omp_set_num_threads(1)
     yield
 
 
@@ -103,12 +101,12 @@ class _Run:
             self.pending[b][1] = value
         elif self.users[j]:
             self.results[b, j] = value
-            self.unread[b, j] = len(set(self.users[j]))
+            self.unread[b, j] = len(self.users[j])
         for i in set(self.deps[j]):
             self.unread[b, i] -= 1
             if not self.unread[b, i]:
                 del self.results[b, i], self.unread[b, i]
-        for k in [*set(self.users[j]), None]:
+        for k in [*self.users[j], None]:
             key = (b + 1, j) if k is None else (b, k)
             if key in self.left:
                 self.left[key] -= 1

@@ -557,6 +557,9 @@ class RowStreamer:
         except Exception as e:  # a layer the tracer accepted but that fails on a small input
             raise NotStreamable(f"model: cannot run its graph on a {side}x{side} input ({' '.join(str(e).split())})"
                                 ) from None
+        self._modules = dict(gm.named_modules())
+        self._fused = self._fusable_relus(self._modules)  # convolution → the ReLU it applies
+        self._concats = self._fusable_concats(self._modules)
         self._build(_Fusion(True))  # fail now, not on the first image, if a layer cannot be streamed
         self._finite_weights = all(bool(torch.isfinite(t).all()) for t in gm.state_dict().values()
                                    if t.is_floating_point())
@@ -567,9 +570,7 @@ class RowStreamer:
     def _build(self, fusion: _Fusion) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
         """Fresh ops (empty row buffers) for every node of the graph, in execution order; their ReLUs fused into
         convolutions as ``fusion`` allows."""
-        modules = dict(self._graph.named_modules())
-        fused = self._fusable_relus(modules)
-        self._concats = self._fusable_concats(modules)
+        modules, fused, relus = self._modules, self._fused, set(self._fused.values())
         nodes = []
         for node in self._graph.graph.nodes:
             ins = list(node.all_input_nodes)
@@ -581,7 +582,7 @@ class RowStreamer:
                 continue  # done by the convolution after it
             else:
                 copy = len(ins) == 1 and len(ins[0].users) > 1
-                if node in fused.values():
+                if node in relus:
                     op = _Pointwise(lambda x: x, False)  # done by the convolution before it
                 elif node.op == "call_module" and ins and ins[0] in self._concats:
                     ins = list(ins[0].args[0])
