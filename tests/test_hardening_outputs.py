@@ -188,6 +188,21 @@ def test_a_full_disk_is_reported_naming_the_file(tmp_path, monkeypatch):
                                              "some space or write elsewhere)"]
 
 
+def test_a_full_disk_while_writing_a_report_names_the_report(tmp_path, monkeypatch):
+    # Bug fix: evaluate wrote the report atomically inside its own atomic write, so a full disk named the
+    # hidden temporary file instead of the report.
+    def full(fd: int) -> None:
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    model = write_model(tmp_path / "m.safetensors")
+    data = write_dataset(tmp_path / "data")
+    monkeypatch.setattr(atomic.os, "fsync", full)
+    code, _, err = run_cli(["evaluate", model, "--data", data, "--report", tmp_path / "r.html", "--quiet"])
+    assert code == 2 and len(err.splitlines()) == 1, err
+    assert f"{tmp_path / 'r.html'}: No space left on device" in err and ".partial" not in err
+    assert not (tmp_path / "r.html").exists()
+
+
 @pytest.mark.parametrize("umask", [0o022, 0o077, 0o002])
 def test_written_files_get_the_umask_s_mode(tmp_path, umask):
     # Reference: POSIX open(2) creates files with mode 0666 & ~umask.
