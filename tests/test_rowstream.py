@@ -85,6 +85,36 @@ def test_bands_leave_before_the_image_is_read_and_memory_follows_width():
     assert sum(b.shape[1] for _, b in stream) + first.shape[1] == 4000
 
 
+def test_wide_band_maps_stay_below_the_size_malloc_maps_afresh():
+    # Bug fix: bands were sized so that their largest map filled glibc's mmap threshold (MMAP_BYTES), and the
+    # rows carried over pushed the U-Net config's last up-sampling past it (139 rows for a band of 128 at 2048
+    # wide): every band's map was then fresh pages from the kernel. Every map a layer hands on must stay below.
+    from pathlib import Path
+
+    from fcnkit.allocator import MMAP_BYTES
+    from fcnkit.config import load_config
+
+    cfg = load_config(Path(__file__).parents[1] / "fcnkit" / "configs" / "unet.toml")
+    streamer = RowStreamer(as_model(build_model(cfg)).eval())
+    largest, build = [0], streamer._build
+
+    def measured(fusion):
+        nodes = build(fusion)
+        for _, op, _ in nodes:
+            def step(new, last, inner=op.step):
+                out = inner(new, last)
+                largest[0] = max([largest[0], *(p.numel() * p.element_size() for p in out)])
+                return out
+            op.step = step
+        return nodes
+
+    streamer._build = measured
+    rows = streamer.band_rows(2048)
+    img = np.zeros((2 * rows + 8, 2048, cfg.model.bands), np.float32)
+    assert sum(b.shape[1] for _, b in streamer.stream(ArrayRaster(img), logits=True)) == img.shape[0]
+    assert MMAP_BYTES // 2 < largest[0] < MMAP_BYTES  # wide bands still, yet below the threshold
+
+
 def test_streaming_survives_torch_fx_tracing_in_another_thread():
     # Bug fix: torch.fx patches every module call of the process while it traces; worker threads that called
     # point-wise modules (batch norm, activations) then failed with "module is not installed as a submodule"
