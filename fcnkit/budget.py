@@ -4,9 +4,10 @@ The budget covers the whole ``train`` call, set-up included, plus the training a
 sessions of a resumed run. Training stops after the last step that still leaves time for the closing: the
 last validation and save (measured at each epoch's end, estimated before the first) and the temperature fit
 after training (``calibration``, estimated by the trainer), so the run ends within the budget with its best
-model kept and calibrated. The learning-rate schedule runs on whichever is further
-along, steps or time: ``schedule_step`` maps the share of the budget used onto the run's planned steps, so
-a cosine reaches zero as the budget runs out.
+model kept and calibrated. With a budget, the budget alone sets the run's length (``epochs`` does not
+end it: on a fast machine a run of the config's epochs left up to 40 % of a 40 s budget unused, measured) and
+the learning-rate schedule runs on time: ``schedule_step`` maps the share of the budget used onto the run's
+planned steps (``epochs`` of them, warm-up included), so a cosine reaches zero as the budget runs out.
 """
 
 from __future__ import annotations
@@ -58,9 +59,9 @@ class TimeBudget:
         return self.active and self.used() + step + self.closing_estimate(val_pixels) > self.seconds
 
     def schedule_step(self, step: int, total_steps: int, val_pixels: int) -> float:
-        """The (fractional) step the learning-rate schedule should take: ``step``, or further when the share
-        of the training time used, used / (budget − closing), is further along the ``total_steps`` plan."""
+        """The (fractional) step the learning-rate schedule should take: ``step`` without a budget; with one, the
+        share of the training time used, used / (budget − closing), of the ``total_steps`` plan."""
         if not self.active:
             return float(step)
         share = self.used() / max(self.seconds - self.closing_estimate(val_pixels), 1e-9)
-        return max(float(step), min(share, 1.0) * total_steps)
+        return min(share, 1.0) * total_steps

@@ -317,20 +317,21 @@ def _loop(run: _Run, stop: _StopRequest, progress: bool, budget: TimeBudget) -> 
         torch.set_num_threads(run.cores.choice)
     chosen = time.perf_counter()
     first_step = p["step"]  # weights are still the ones this run started from until an optimiser step
-    while p["epoch"] < t.epochs and not p["stopped_early"] and not p.get("out_of_time"):
+    while (budget.active or p["epoch"] < t.epochs) and not p["stopped_early"] and not p.get("out_of_time"):
         if budget.active and p["epoch"] and not p["batch"] and parallel.any_rank(g, budget.must_stop(val_pixels))[0]:
             p["out_of_time"] = True  # the last epoch's end left no time for another step and the closing
             break
         epoch, tic, lr = p["epoch"], time.perf_counter() - p["epoch_seconds"], 0.0
-        bar = tqdm(total=run.steps_per_epoch, initial=p["batch"], desc=f"epoch {epoch + 1}/{t.epochs}",
-                   unit="batch", disable=not (progress and g.main), dynamic_ncols=True)
+        of = "" if budget.active else f"/{t.epochs}"  # with a budget, time decides the number of epochs
+        bar = tqdm(total=run.steps_per_epoch, initial=p["batch"], desc=f"epoch {epoch + 1}{of}", unit="batch",
+                   disable=not (progress and g.main), dynamic_ncols=True)
         run.net.train()
         step_tic = time.perf_counter()
         for x, y in _batches(run, epoch, p["batch"]):
             if run.cores is not None and step_tic - chosen > THREAD_WINDOW:  # other programs come and go
                 torch.set_num_threads(run.cores.threads())
                 chosen = step_tic
-            at = budget.schedule_step(p["step"], total_steps, val_pixels)  # steps, or time when further along
+            at = budget.schedule_step(p["step"], total_steps, val_pixels)  # steps, or time with a budget
             lr = t.lr * lr_factor(at, total_steps, t.warmup * run.steps_per_epoch, t.schedule)
             for group in run.opt.param_groups:
                 group["lr"] = lr

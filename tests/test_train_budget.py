@@ -79,7 +79,8 @@ def test_schedule_follows_time_and_the_cosine_ends_with_the_budget(monkeypatch):
     b = TimeBudget(22.0, start=-1.0, closing=2.0)  # 20 s of training, 2 s of closing; started 1 s before reading 0
     # reading 0: 1/20 of the training time used, so 1/20 of the 400 planned steps, ahead of the 3 taken
     assert b.schedule_step(3, 400, 100) == pytest.approx(20.0)
-    assert b.schedule_step(300, 400, 100) == 300.0  # reading 1: steps further along than time
+    # reading 1: time alone, however many steps were taken (the budget, not epochs, sets the run's length)
+    assert b.schedule_step(300, 400, 100) == pytest.approx(40.0)
     for _ in range(30):
         b.used()
     total, warmup = 400, 40
@@ -106,6 +107,18 @@ def test_budget_stops_the_run_and_keeps_the_best_model(scenes, tmp_path, monkeyp
     assert kept.extra["calibration"]["fitted"]  # calibrated within the budget
     again = fit(cfg, scenes, tmp_path / "run", resume=True, progress=False)  # a spent budget stays spent
     assert again.out_of_time and again.epochs == result.epochs
+
+
+def test_budget_trains_past_the_configs_epochs_until_it_runs_out(scenes, tmp_path, monkeypatch):
+    # Bug fix: a run with a budget stopped at the config's epochs, leaving up to 40 % of a 40 s budget unused on
+    # a fast machine. With a budget the budget alone sets the length, and the schedule still ends with it.
+    cfg = tiny(train={"epochs": 1, "seconds": 20.0, "schedule": "cosine", "warmup": 0})
+    _fake_clock(monkeypatch, 0.01)
+    result = fit(cfg, scenes, tmp_path / "run", progress=False)
+    assert result.out_of_time and result.epochs > 1
+    rows = list(csv.DictReader((tmp_path / "run" / "metrics.csv").open()))
+    assert float(rows[0]["lr"]) > 0.5 * cfg["train"]["lr"]  # one planned epoch stretched over the budget
+    assert float(rows[-1]["lr"]) < 0.05 * cfg["train"]["lr"]
 
 
 def test_budget_shorter_than_set_up_still_trains_one_step_and_saves(scenes, tmp_path, monkeypatch):
