@@ -10,7 +10,9 @@ synthetic uint8 image, each round times, interleaved so a change in the machine'
   by ONNX Runtime on the whole image at once, from a float32 NCHW array made beforehand to logits: with
   fcnkit's session options (idle threads sleep) and with ONNX Runtime's defaults (idle threads spin); the faster
   of the two in each round is the baseline;
-* ``torch-cl``: the model (batch norms folded) run by torch on the whole image, channels_last, inference mode.
+* ``torch-cl``: the model (batch norms folded) run by torch on the whole image, channels_last, inference mode;
+* ``fcnkit bf16`` (on CPUs with bfloat16 units, AVX-512 BF16 or AMX, or with ``--bf16``): the default path with
+  ``bf16=True``, the opt-in bfloat16 forward pass, with the share of its labels equal to the float32 pass's.
 
 Every figure is a ratio of two timings taken in the same round (>1: fcnkit faster); the script prints the
 median and the spread (min–max) over the rounds. The main figure compares like with like (logits from the
@@ -88,7 +90,12 @@ def ort_sessions(model: Model, threads: int) -> dict[str, object]:
     return sessions
 
 
-def bench(name: str, side: int, rounds: int, threads: int) -> dict:
+def has_bf16_units() -> bool:
+    """Whether this CPU computes in bfloat16 natively (AVX-512 BF16 or AMX), as torch sees it."""
+    return any(getattr(torch.cpu, f, lambda: False)() for f in ("_is_avx512_bf16_supported", "_is_amx_tile_supported"))
+
+
+def bench(name: str, side: int, rounds: int, threads: int, bf16: bool) -> dict:
     model = random_model(name)
     img = np.random.default_rng(0).integers(0, 256, (side, side, model.bands), dtype=np.uint8)
     raw = np.ascontiguousarray(img.transpose(2, 0, 1)[None].astype(np.float32))
@@ -96,12 +103,14 @@ def bench(name: str, side: int, rounds: int, threads: int) -> dict:
     sessions = ort_sessions(model, threads)
     cl = TorchEngine(model)
 
-    def fcnkit(logits: bool) -> None:
-        for _ in stream_scores(model, ArrayRaster(img), logits=logits):
+    def fcnkit(logits: bool, bf16: bool = False) -> None:
+        for _ in stream_scores(model, ArrayRaster(img), logits=logits, bf16=bf16):
             pass
 
     fns: dict[str, Callable[[], object]] = {"fcnkit": lambda: fcnkit(True), "fcnkit-probs": lambda: fcnkit(False),
                                             "torch-cl": lambda: cl(x_cl)}
+    if bf16:
+        fns["fcnkit-bf16"] = lambda: fcnkit(True, bf16=True)
     for k, s in sessions.items():
         fns[k] = lambda s=s: s.run(None, {"image": raw})
     for fn in fns.values():  # warm-up: kernels chosen, model prepared
@@ -123,8 +132,13 @@ def bench(name: str, side: int, rounds: int, threads: int) -> dict:
     def ratio(base: list[float], ours: str = "fcnkit") -> list[float]:
         return [b / f for b, f in zip(base, times[ours], strict=True)]
 
+    bf16_labels = None
+    if bf16:
+        low = torch.cat([b for _, b in stream_scores(model, ArrayRaster(img), logits=True, bf16=True)], dim=1)
+        bf16_labels = float((low.argmax(0) == ref.argmax(0)).float().mean())
     mp = side * side / 1e6
     return {
+        "bf16_over_ort": ratio(ort_best, "fcnkit-bf16") if bf16 else None, "bf16_labels": bf16_labels,
         "config": name, "mp": mp,
         "mp_s": {k: mp / min(v) for k, v in times.items()},
         "over_ort": ratio(ort_best), "probs_over_ort": ratio(ort_best, "fcnkit-probs"),
@@ -144,7 +158,10 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=5)
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--configs", nargs="+", default=list(CONFIGS), choices=CONFIGS)
+    ap.add_argument("--bf16", action="store_true", help="time the bfloat16 path even without bfloat16 units "
+                    "(8-11x slower than float32 on an AVX2 CPU)")
     a = ap.parse_args()
+    bf16 = a.bf16 or has_bf16_units()
     torch.set_num_threads(a.threads)
     import onnxruntime
 
@@ -152,12 +169,14 @@ def main() -> None:
           f"{a.side}x{a.side} image, {a.rounds} interleaved rounds; ratios: median (min–max) over rounds, "
           ">1 means fcnkit is faster")
     print(f"{'config':8s} {'fcnkit/ORT':>18s} {'probs/ORT':>18s} {'fcnkit/torch-cl':>18s} "
-          f"{'max|dlogit|':>11s} {'labels':>8s}  MP/s (best round)")
+          f"{'max|dlogit|':>11s} {'labels':>8s}" + (f" {'bf16/ORT':>18s} {'bf16 labels':>11s}" if bf16 else "")
+          + "  MP/s (best round)")
     for name in a.configs:
-        r = bench(name, a.side, a.rounds, a.threads)
+        r = bench(name, a.side, a.rounds, a.threads, bf16)
         speeds = " ".join(f"{k} {v:.2f}" for k, v in r["mp_s"].items())
+        low = f" {spread(r['bf16_over_ort']):>18s} {r['bf16_labels']:11.4%}" if bf16 else ""
         print(f"{name:8s} {spread(r['over_ort']):>18s} {spread(r['probs_over_ort']):>18s} "
-              f"{spread(r['over_torch_cl']):>18s} {r['max_diff']:11.1e} {r['labels']:8.4%}  {speeds}", flush=True)
+              f"{spread(r['over_torch_cl']):>18s} {r['max_diff']:11.1e} {r['labels']:8.4%}{low}  {speeds}", flush=True)
 
 
 if __name__ == "__main__":
