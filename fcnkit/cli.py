@@ -170,8 +170,8 @@ def _add_train(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--init", metavar="MODEL", help="start from this model file (its net replaces [model])")
     p.add_argument("--epochs", type=int, metavar="N", help="override train.epochs")
     p.add_argument("--seconds", type=float, metavar="S",
-                   help="override train.seconds: wall-time budget; stops in time to validate, keep the best model "
-                        "and calibrate it")
+                   help="override train.seconds: wall-time budget that sets the run's length in place of the "
+                        "epochs; stops in time to validate, keep the best model and calibrate it")
     p.add_argument("--threads", type=int, metavar="N",
                    help="override train.threads (0 = as many as other programs leave cores free, up to torch's "
                         "default)")
