@@ -1,5 +1,5 @@
 """``python -m fcnkit`` runs the command-line interface."""
 
-from fcnkit.cli import main
+from fcnkit.cli import run
 
-raise SystemExit(main())
+run()

@@ -12,6 +12,7 @@ still work, with a one-line note.
 from __future__ import annotations
 
 import argparse
+import atexit
 import contextlib
 import json
 import os
@@ -20,6 +21,7 @@ import sys
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
+from typing import NoReturn
 
 from fcnkit.errors import FcnkitError, Interrupted
 
@@ -552,6 +554,28 @@ def _signals() -> Iterator[None]:
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+
+
+def run() -> NoReturn:
+    """The ``fcnkit`` program: :func:`main`, then the exit. Python's teardown (freeing every module and object,
+    then torch's libraries' own) took 0.3 s of a 3 s ``segment`` once torch was loaded (measured on 2 cores),
+    and frees nothing the operating system does not free anyway. So when nothing else is running (no other
+    thread that is not a daemon, no child process), the exit handlers run, the standard streams are flushed and
+    the process ends at once; otherwise it exits as usual. Every output is closed and in place by then."""
+    code = main()
+    children = "multiprocessing" in sys.modules and sys.modules["multiprocessing"].active_children()
+    others = [t for t in threading.enumerate() if t is not threading.main_thread() and not t.daemon]
+    if children or others:
+        raise SystemExit(code)
+    atexit._run_exitfuncs()  # registered clean-ups (temporary folders' finalizers, logging) still run
+    for stream in (sys.stdout, sys.stderr):
+        with contextlib.suppress(Exception):  # a closed or broken stream cannot take the exit's last bytes
+            stream.flush()
+    with contextlib.suppress(Exception):  # and what C libraries wrote into the C library's own buffers
+        import ctypes
+
+        ctypes.CDLL(None).fflush(None)
+    os._exit(code)
 
 
 def main(argv: Sequence[str] | None = None) -> int:
