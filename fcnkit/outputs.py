@@ -29,6 +29,7 @@ import csv
 import io
 import json
 import math
+import threading
 from collections.abc import Iterable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -263,7 +264,7 @@ def write_outputs(maps: Iterable[tuple[int, Maps]], raster: Raster, classes: Cla
                 jobs.append(pool.submit(_write_png, paths[kind], store.whole(),
                                         classes.palette() if kind == "labels" else None))
 
-        step = max(1, math.ceil(max(height, width) / preview))
+        step = preview_step(raster.shape, preview)
         rgb, small, small_valid = _preview(raster, stores["labels"], valid_store if nodata else None, step)
         picture = overlay(rgb, small, classes.colors)
         if small_valid is not None:
@@ -368,6 +369,51 @@ def strided_rgb(raster: Raster, step: int, offset: int = 0) -> np.ndarray:
     return _strided(raster, step, (offset, offset))[0]
 
 
+def preview_step(shape: tuple[int, ...], preview: int) -> int:
+    """Pixels between the preview's samples along each axis: its longer side at most ``preview`` pixels."""
+    return max(1, math.ceil(max(shape[0], shape[1]) / preview))
+
+
+class SampledReads:
+    """A region reader (:class:`~fcnkit.data.raster.Raster`) that keeps, of every region read through it, the
+    pixels of the preview's grid (every ``step``-th from :func:`_offsets`). Mapping reads every pixel, so the
+    preview then needs no second pass over the image (0.2 s of a 3 s ``segment`` of 9 MP, measured on 2 cores).
+    Regions may be read by several threads at once."""
+
+    def __init__(self, raster: Raster, step: int) -> None:
+        self._raster, self.step = raster, step
+        self._origin = _offsets(raster.shape, step)
+        height, width = raster.shape[:2]
+        self._size = len(range(self._origin[0], height, step)), len(range(self._origin[1], width, step))
+        self._grid: np.ndarray | None = None
+        self._seen = np.zeros(self._size, bool)
+        self._lock = threading.Lock()
+
+    def __getattr__(self, name: str) -> Any:  # shape, geo, valid, masked, close…: the wrapped reader's
+        return getattr(self._raster, name)
+
+    def _indices(self, lo: int, hi: int, axis: int) -> tuple[int, int]:
+        """The grid's samples along ``axis`` that lie in pixels lo..hi."""
+        first = max(0, -(-(lo - self._origin[axis]) // self.step))
+        return first, max(first, min(self._size[axis], -(-(hi - self._origin[axis]) // self.step)))
+
+    def read(self, y0: int, y1: int, x0: int, x1: int) -> np.ndarray:
+        region = self._raster.read(y0, y1, x0, x1)
+        (i0, i1), (j0, j1) = self._indices(y0, y1, 0), self._indices(x0, x1, 1)
+        if i1 > i0 and j1 > j0:
+            with self._lock:
+                if self._grid is None:
+                    self._grid = np.zeros((*self._size, region.shape[2]), region.dtype)
+            s, (oy, ox) = self.step, self._origin
+            self._grid[i0:i1, j0:j1] = region[oy + i0 * s - y0::s, ox + j0 * s - x0::s][:i1 - i0, :j1 - j0]
+            self._seen[i0:i1, j0:j1] = True
+        return region
+
+    def samples(self) -> np.ndarray | None:
+        """The grid's pixels (rows × columns × bands), once every one of them has been read; else None."""
+        return self._grid if self._grid is not None and self._seen.all() else None
+
+
 def _offsets(shape: tuple[int, ...], step: int) -> tuple[int, int]:
     """The first sample of each axis: mid-cell (``step // 2``), but inside an axis shorter than that (a 1×100000
     strip has one row to sample, not none)."""
@@ -403,5 +449,6 @@ def _preview(raster: Raster, labels: RowStore, valid: RowStore | None, step: int
                                                                                                    ox::step])
                                for y0 in range(0, store.shape[0], band)])
 
-    rgb, _ = _strided(raster, step, off)
+    grid = raster.samples() if isinstance(raster, SampledReads) and raster.step == step else None
+    rgb = display_rgb(grid) if grid is not None and not raster.masked else _strided(raster, step, off)[0]
     return rgb, strided(labels), None if valid is None else strided(valid) > 0

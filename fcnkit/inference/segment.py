@@ -91,7 +91,7 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
     import tempfile
 
     from fcnkit.data.raster import alpha_hint, open_raster
-    from fcnkit.outputs import class_maps, write_outputs
+    from fcnkit.outputs import SampledReads, class_maps, preview_step, write_outputs
 
     if pixel_size is not None and not all(math.isfinite(v) and v > 0 for v in np.atleast_1d(pixel_size)):
         raise ConfigError(f"pixel_size: {pixel_size!r} is not a positive number of metres")
@@ -106,6 +106,8 @@ def segment_image(model_or_path: Model | str | Path, image_path: str | Path, out
         if bands != model.bands:
             raise DataError(f"{image_path}: has {bands} bands but the model expects {model.bands}" + alpha_hint(raster))
         raster.fill = model.normalisation[0]  # nodata pixels reach the net as the training mean: neutral inputs
+        if not raster.masked:  # the preview's pixels, kept as mapping reads them (nodata images sample masks too)
+            raster = SampledReads(raster, preview_step(raster.shape, preview))
         classes = model.classes or ClassTable.generic(model.num_classes)
 
         def maps(probs: torch.Tensor) -> Maps:
