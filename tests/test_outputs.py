@@ -5,10 +5,12 @@ import io
 import math
 
 import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy.stats import entropy
 
 from fcnkit.data.classes import ClassInfo, ClassTable
-from fcnkit.outputs import area_rows, areas_csv, class_maps, normalised_entropy, overlay, to_byte
+from fcnkit.outputs import area_rows, areas_csv, class_maps, normalised_entropy, overlay, percentiles, to_byte
 
 CLASSES = ClassTable((ClassInfo(0, "open ground", (200, 180, 120)), ClassInfo(1, "water", (40, 100, 200)),
                       ClassInfo(2, "roof", (210, 60, 50))))
@@ -85,3 +87,16 @@ def test_preview_keeps_only_its_samples_in_memory():
     tracemalloc.stop()
     assert rgb.shape == (2048, 256, 3) and small.shape == (2048, 256) and valid is None
     assert peak < 20 * 2**20, peak  # one band (2 MB), the samples and display temporaries, not the 32 MB image
+
+
+@settings(max_examples=80, deadline=None)
+@given(n=st.integers(1, 3000), top=st.integers(1, 65535), signed=st.booleans(), seed=st.integers(0, 10**6),
+       qs=st.lists(st.floats(0, 100), min_size=1, max_size=3))
+def test_percentiles_of_integers_equal_numpys(n, top, signed, seed, qs):
+    # Reference: numpy.percentile (linear method, Hyndman & Fan's 7th) on the same values as float32.
+    rng = np.random.default_rng(seed)
+    dtype = np.int16 if signed else (np.uint8 if top < 256 else np.uint16)
+    lo = -min(top, 32768) if signed else 0
+    values = rng.integers(lo, min(top, np.iinfo(dtype).max) + 1, n).astype(dtype)
+    np.testing.assert_allclose(percentiles(values, qs), np.percentile(values.astype(np.float32), qs),
+                               rtol=1e-6, atol=1e-6)
