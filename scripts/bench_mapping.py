@@ -126,24 +126,28 @@ def bench(name: str, side: int, rounds: int, threads: int, bf16: bool) -> dict:
     # Exactness against the float32 whole-image forward pass of the model as built (no folding, NCHW).
     with torch.no_grad():
         ref = model(torch.from_numpy(raw))[0]
-    got = torch.cat([b for _, b in stream_scores(model, ArrayRaster(img), logits=True)], dim=1)
+
+    def logits(bf16: bool = False) -> torch.Tensor:  # fcnkit's logits of the whole image, its bands joined
+        return torch.cat([b for _, b in stream_scores(model, ArrayRaster(img), logits=True, bf16=bf16)], dim=1)
+
+    def same_labels(y: torch.Tensor) -> float:  # share of labels equal to the float32 whole-image pass's
+        return float((y.argmax(0) == ref.argmax(0)).float().mean())
+
+    got = logits()
     ort_logits = torch.from_numpy(sessions["ort-nospin"].run(None, {"image": raw})[0][0])
 
     def ratio(base: list[float], ours: str = "fcnkit") -> list[float]:
         return [b / f for b, f in zip(base, times[ours], strict=True)]
 
-    bf16_labels = None
-    if bf16:
-        low = torch.cat([b for _, b in stream_scores(model, ArrayRaster(img), logits=True, bf16=True)], dim=1)
-        bf16_labels = float((low.argmax(0) == ref.argmax(0)).float().mean())
     mp = side * side / 1e6
     return {
-        "bf16_over_ort": ratio(ort_best, "fcnkit-bf16") if bf16 else None, "bf16_labels": bf16_labels,
+        "bf16_over_ort": ratio(ort_best, "fcnkit-bf16") if bf16 else None,
+        "bf16_labels": same_labels(logits(True)) if bf16 else None,
         "config": name, "mp": mp,
         "mp_s": {k: mp / min(v) for k, v in times.items()},
         "over_ort": ratio(ort_best), "probs_over_ort": ratio(ort_best, "fcnkit-probs"),
         "over_torch_cl": ratio(times["torch-cl"]),
-        "max_diff": float((got - ref).abs().max()), "labels": float((got.argmax(0) == ref.argmax(0)).float().mean()),
+        "max_diff": float((got - ref).abs().max()), "labels": same_labels(got),
         "ort_max_diff": float((ort_logits - ref).abs().max()),
     }
 
