@@ -10,7 +10,10 @@ with the image's width, never its height. Bands of a few hundred thousand pixels
 CPU's caches, which whole-image inference cannot.
 
 Supported layers: convolutions (zero padding), max pooling, transposed convolutions, bilinear interpolation by
-an integer factor, additions and concatenations, and point-wise layers. Nets with anything else (e.g. group
+an integer factor, additions and concatenations, and point-wise layers. A concatenation read only by a
+convolution is never written (each part is convolved with its slice of the weights), nor is a bilinear
+up-sampling read only by such a concatenation (that part of the convolution runs on the map before
+up-sampling, by phases: :mod:`fcnkit.inference.phases`). Nets with anything else (e.g. group
 norm, global pooling) raise :class:`NotStreamable`; tiled inference handles those.
 """
 
@@ -32,6 +35,8 @@ from fcnkit.allocator import MMAP_BYTES
 from fcnkit.data.raster import Raster
 from fcnkit.errors import ConfigError
 from fcnkit.inference.bandflow import can_pin_threads, one_thread_per_worker, run_bands
+from fcnkit.inference.onednn import ONEDNN, concat_conv, onednn_conv, onednn_conv_add
+from fcnkit.inference.phases import bilinear_conv_by_phases, bilinear_conv_weight, phase_weight, transposed_by_phases
 from fcnkit.units import pixel_rate
 
 if TYPE_CHECKING:
@@ -238,63 +243,6 @@ class _Window(_Local):
         return self.fn(xs)
 
 
-def phase_weight(weight: torch.Tensor, stride: tuple[int, int], channels_last: bool) -> torch.Tensor:
-    """The convolution weight that computes a transposed convolution (weight C_in×C_out×kh×kw, stride sh×sw, no
-    groups) one output phase per channel: with J = ⌈k/s⌉ taps, output row s·q + r is Σ_j x[q − j]·w[s·j + r]
-    (j < J, w zero past k), a correlation over rows q − J + 1 … q. Channels are ordered (c, rh, rw) for NCHW
-    output, (rh, rw, c) for channels-last output, so :func:`transposed_by_phases` moves whole runs of memory."""
-    cin, cout, kh, kw = weight.shape
-    (sh, sw), jh, jw = stride, -(-kh // stride[0]), -(-kw // stride[1])
-    w = weight.new_zeros(cin, cout, jh * sh, jw * sw)
-    w[:, :, :kh, :kw] = weight
-    w = w.view(cin, cout, jh, sh, jw, sw).flip(2, 4)  # ci, co, uh, rh, uw, rw (u: tap of the correlation)
-    order = (3, 5, 1, 0, 2, 4) if channels_last else (1, 3, 5, 0, 2, 4)
-    return w.permute(order).reshape(cout * sh * sw, cin, jh, jw).contiguous()
-
-
-def transposed_by_phases(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int],
-                         kernel: tuple[int, int], rows: tuple[int, int], cols: tuple[int, int],
-                         channels_last: bool) -> torch.Tensor:
-    """Rows ``rows`` and columns ``cols`` of ``F.conv_transpose2d(x, w, bias, stride)`` (no padding: crop for
-    it) from ``weight`` = :func:`phase_weight` of w: one convolution at the input's resolution, every output
-    phase a channel, then the phases interleaved into rows and columns (sub-pixel convolution). Equal to the
-    transposed convolution up to the order of float32 sums, and 1.3–2.4× faster than torch's on channels-last
-    FCN up-sampling (measured for kernel 2s, stride 2 to 32, 3–5 classes). Output NCHW or channels-last."""
-    (sh, sw), (kh, kw) = stride, kernel
-    jh, jw = -(-kh // sh), -(-kw // sw)
-    n, _, h, w = x.shape
-    c = weight.shape[0] // (sh * sw)
-    q0, q1 = rows[0] // sh, -(-rows[1] // sh)  # correlation rows covering the output rows asked for
-    p0, p1 = cols[0] // sw, -(-cols[1] // sw)
-    # input rows q0 − J + 1 … q1 − 1, zero outside the input: the correlation's padding
-    pad = [max(0, jh - 1 - q0), max(0, q1 - h)]
-    x = x[:, :, max(0, q0 - jh + 1):min(h, q1)]
-    if any(pad):
-        x = F.pad(x, (0, 0, *pad)).contiguous(memory_format=torch.channels_last)
-    bias = None if bias is None else bias.repeat(sh * sw) if channels_last else bias.repeat_interleave(sh * sw)
-    y = onednn_conv(x, weight, bias, (1, 1), (0, jw - 1), (1, 1), 1, False)
-    y = y[:, :, :, p0:p1].permute(0, 2, 3, 1)  # n, q, p, phases (a view of channels-last memory)
-    qn, pn = q1 - q0, p1 - p0
-    if channels_last:
-        out = torch.empty(n, qn, sh, pn, sw, c, dtype=y.dtype)
-        out.copy_(y.reshape(n, qn, pn, sh, sw, c).permute(0, 1, 3, 2, 4, 5))
-        out = out.view(n, qn * sh, pn * sw, c).permute(0, 3, 1, 2)
-    else:
-        out = torch.empty(n, c, qn, sh, pn, sw, dtype=y.dtype)
-        src = y.reshape(n, qn, pn, c, sh, sw).permute(0, 3, 1, 4, 2, 5)
-        # A pixel's sw column phases lie side by side in both layouts: for sw = 2 or 4 they move as one 8- or
-        # 16-byte element (the bits unchanged), 3.7-4.6x faster than float by float (2x up-sampling, 5 classes)
-        wide = {2: torch.float64, 4: torch.complex128}.get(sw) if y.dtype == torch.float32 else None
-        if wide is not None and src.stride(-1) == 1 and src.storage_offset() % sw == 0 and \
-                all(st % sw == 0 for st in src.stride()[:-1]):  # else not viewable (e.g. a one-row map's strides)
-            out.view(wide).copy_(src.view(wide))
-        else:
-            out.copy_(src)
-        out = out.view(n, c, qn * sh, pn * sw)
-    r, k = rows[0] - q0 * sh, cols[0] - p0 * sw
-    return out[:, :, r:r + rows[1] - rows[0], k:k + cols[1] - cols[0]]
-
-
 class _Transposed(_Local):
     """Transposed convolution (kernel k ≥ stride s, padding p along rows), computed in float32 by phases
     (:func:`transposed_by_phases`): output row o receives input rows ⌈(o + p − k + 1)/s⌉ … ⌊(o + p)/s⌋. Its
@@ -366,6 +314,41 @@ class _Interpolate(_Local):
         return y[:, :, o0 - a * self.f:o1 - a * self.f]
 
 
+class _BilinearConv(_Local):
+    """The part of a convolution (odd kernel k, "same" padding, stride 1) that reads a map up-sampled bilinearly
+    by an integer factor f, with the convolution's bias, computed from the map before up-sampling
+    (:func:`~fcnkit.inference.phases.bilinear_conv_by_phases`): the up-sampled map, the widest of a U-Net decoder,
+    is never written. Output row o reads input rows ⌊o/f⌋ − r − 1 … ⌊o/f⌋ + r + 1, r the phases' reach. Its output
+    is the accumulator the rest of the convolution adds into (:meth:`RowStreamer._concat_conv`)."""
+
+    MIN_ROWS = 1 << 62  # one call per band, as for transposed convolutions: its input is at the lower resolution
+
+    def __init__(self, weight: torch.Tensor, bias: torch.Tensor | None, f: int) -> None:
+        super().__init__()
+        self.weight, self.bias, self.f = weight, bias, f
+        self.phased, self.r = bilinear_conv_weight(weight, f)
+        self.phased_bias = None if bias is None else bias.repeat(f * f)
+        self.height: int | None = None  # the input's height, once its last rows have come
+
+    def receive(self, new, last):
+        super().receive(new, last)
+        if last:
+            self.height = self.inputs[0].end
+
+    def stop(self, end, last):
+        return self.f * end if last else max(0, self.f * (end - self.r - 1))
+
+    def need(self, o0, o1, end):
+        return max(0, o0 // self.f - self.r - 1), min(end, -(-o1 // self.f) + self.r + 1)
+
+    def inside(self, a, b, end, last):
+        return (0 if a == 0 else self.f * (a + self.r + 1)), self.stop(b, last and b == end)
+
+    def compute(self, xs, a, o0, o1):
+        return bilinear_conv_by_phases(xs[0], a, self.height, (o0, o1), self.weight, self.bias, self.phased,
+                                       self.phased_bias, self.f, self.r)
+
+
 class _Merge(_Op):
     """Addition or channel concatenation of several inputs: emits the rows every input has reached, in pieces
     cut where any input's pieces are cut (views, no copies)."""
@@ -402,39 +385,6 @@ def _pointwise(m: nn.Module) -> Callable[[torch.Tensor], torch.Tensor]:
     if isinstance(m, (nn.Dropout, nn.Dropout2d, nn.Identity)):
         return lambda x: x
     return type(m).forward.__get__(m)  # activations: their settings are plain attributes, found without lookups
-
-
-ONEDNN = hasattr(torch.ops.mkldnn, "_convolution_pointwise") and torch.backends.mkldnn.is_available()
-
-
-def onednn_conv(x: torch.Tensor, weight: torch.Tensor, bias: torch.Tensor | None, stride: tuple[int, int],
-                padding: tuple[int, int], dilation: tuple[int, int], groups: int, relu: bool) -> torch.Tensor:
-    """Convolution, and the ReLU after it when ``relu``, in one oneDNN pass (the fused kernel torch's own
-    compiler uses on CPUs); equal to conv2d (then relu). Used for every convolution: for the 1×1 score layers of a
-    few classes torch's own dispatch picks an im2col kernel about 2× slower (measured on 5 classes)."""
-    return torch.ops.mkldnn._convolution_pointwise(x, weight, bias, list(padding), list(stride), list(dilation),
-                                                   groups, "relu" if relu else "none", [None] if relu else [], "")
-
-
-def onednn_conv_add(out: torch.Tensor, x: torch.Tensor, weight: torch.Tensor, stride: tuple[int, int],
-                    padding: tuple[int, int], dilation: tuple[int, int], relu: bool) -> torch.Tensor:
-    """``out`` += conv2d(x, weight) (no bias), then ReLU when ``relu``, in place in one oneDNN pass."""
-    return torch.ops.mkldnn._convolution_pointwise_.binary(out, x, weight, None, list(padding), list(stride),
-                                                           list(dilation), 1, "add", 1.0,
-                                                           "relu" if relu else None, [], "")
-
-
-def concat_conv(xs: Sequence[torch.Tensor], weights: Sequence[torch.Tensor], bias: torch.Tensor | None,
-                stride: tuple[int, int], padding: tuple[int, int], dilation: tuple[int, int],
-                relu: bool) -> torch.Tensor:
-    """conv2d(cat(xs, channels), weight) (then ReLU) without the concatenation: one convolution per part with its
-    slice of the weights (``weights``), each added into the output in place. Saves writing and reading the
-    concatenated map: a U-Net decoder's widest maps."""
-    n = len(xs)
-    y = onednn_conv(xs[0], weights[0], bias, stride, padding, dilation, 1, relu and n == 1)
-    for i in range(1, n):
-        y = onednn_conv_add(y, xs[i], weights[i], stride, padding, dilation, relu and i == n - 1)
-    return y
 
 
 def block_max(x: torch.Tensor, k: int) -> torch.Tensor:
@@ -496,15 +446,28 @@ def _module_op(m: nn.Module, name: str, copy: bool, relu: bool = False, onednn: 
         return _Window(lambda xs: F.max_pool2d(xs[0], (k, kw), (s, sw), (0, pw), (d, dw)), k, s, d, p, -math.inf)
     if isinstance(m, nn.ConvTranspose2d):
         return _Transposed(m, nchw=last)
-    if isinstance(m, nn.Upsample) and m.mode == "bilinear" and not m.align_corners and m.scale_factor is not None:
-        f = m.scale_factor
-        if isinstance(f, (int, float)) and float(f).is_integer():
-            return _Interpolate(int(f))
+    if isinstance(m, nn.Upsample) and (f := _bilinear(m.mode, m.align_corners, m.scale_factor)):
+        return _Interpolate(f)
     if isinstance(m, nn.BatchNorm2d) and m.running_mean is None:
         raise NotStreamable(f"{name}: batch norm without running statistics normalises by the whole image")
     if isinstance(m, _POINTWISE):
         return _Pointwise(_pointwise(m), copy)
     raise NotStreamable(f"{name}: layer type {type(m).__name__} cannot be streamed in rows")
+
+
+def _bilinear(mode: str | None, align_corners: bool | None, f: object) -> int | None:
+    """The factor of a bilinear up-sampling (align_corners=False) by an integer factor; None for any other."""
+    ok = mode == "bilinear" and not align_corners and isinstance(f, (int, float)) and float(f).is_integer()
+    return int(f) if ok else None
+
+
+def _bilinear_factor(node: fx.Node, modules: dict[str, nn.Module]) -> int | None:
+    """The factor of a node that up-samples its one input bilinearly by an integer factor; None for any other."""
+    if node.op == "call_function" and node.target is F.interpolate and len(node.args) == 1:
+        kw = node.kwargs
+        return _bilinear(kw.get("mode"), kw.get("align_corners"), kw.get("scale_factor"))
+    m = modules.get(str(node.target)) if node.op == "call_module" else None
+    return _bilinear(m.mode, m.align_corners, m.scale_factor) if isinstance(m, nn.Upsample) else None
 
 
 def _function_op(node: fx.Node, inputs: int, copy: bool) -> _Op:
@@ -513,11 +476,8 @@ def _function_op(node: fx.Node, inputs: int, copy: bool) -> _Op:
         return _Merge(2, lambda xs: xs[0] + xs[1])
     if t is torch.cat and node.kwargs.get("dim", node.args[1] if len(node.args) > 1 else 0) in (1, -3):
         return _Merge(inputs, lambda xs: torch.cat(xs, dim=1))
-    if t is F.interpolate:
-        f, kw = node.kwargs.get("scale_factor"), node.kwargs
-        if (kw.get("mode") == "bilinear" and not kw.get("align_corners") and isinstance(f, (int, float))
-                and float(f).is_integer() and len(node.args) == 1):
-            return _Interpolate(int(f))
+    if f := _bilinear_factor(node, {}):
+        return _Interpolate(f)
     if t in (F.relu, torch.relu) and inputs == 1:
         return _Pointwise(F.relu, copy)
     raise NotStreamable(f"{node.name}: operation {getattr(t, '__name__', t)} cannot be streamed in rows")
@@ -565,12 +525,14 @@ class RowStreamer:
         self._modules = dict(gm.named_modules())
         self._fused = self._fusable_relus(self._modules)  # convolution → the ReLU it applies
         self._concats = self._fusable_concats(self._modules)
+        self._folds = self._foldable_upsamplings(self._modules)  # up-sampling → the concatenation reading it
         self._build(_Fusion(True))  # fail now, not on the first image, if a layer cannot be streamed
         self._finite_weights = all(bool(torch.isfinite(t).all()) for t in gm.state_dict().values()
                                    if t.is_floating_point())
         self._bytes_per_pixel = 4 * max(
             math.prod(node.meta["shape"][1:]) / (side * side) for node in self._graph.graph.nodes
-            if node.op in ("call_module", "call_function") and node not in self._concats and "shape" in node.meta)
+            if node.op in ("call_module", "call_function") and node not in self._concats and node not in self._folds
+            and "shape" in node.meta)  # maps never written: concatenations, up-samplings folded into convolutions
 
     def _build(self, fusion: _Fusion) -> list[tuple[fx.Node, _Op, list[fx.Node]]]:
         """Fresh ops (empty row buffers) for every node of the graph, in execution order; their ReLUs fused into
@@ -589,9 +551,11 @@ class RowStreamer:
                 copy = len(ins) == 1 and len(ins[0].users) > 1
                 if node in relus:
                     op = _Pointwise(lambda x: x, False)  # done by the convolution before it
+                elif node in self._folds:
+                    op = self._bilinear_conv(node)
                 elif node.op == "call_module" and ins and ins[0] in self._concats:
-                    ins = list(ins[0].args[0])
-                    op = self._concat_conv(modules[str(node.target)], ins, relu=node in fused, fusion=fusion)
+                    op, ins = self._concat_conv(modules[str(node.target)], list(ins[0].args[0]), relu=node in fused,
+                                                fusion=fusion)
                 elif node.op == "call_module":
                     op = _module_op(modules[str(node.target)], str(node.target), copy, relu=node in fused,
                                     onednn=self._onednn, last=all(u.op == "output" for u in node.users),
@@ -638,19 +602,62 @@ class RowStreamer:
                 found.add(node)
         return found
 
-    def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool, fusion: _Fusion) -> _Window:
-        """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`; its ReLU fused as
-        ``fusion`` allows)."""
-        (k, _), (s, sw), (d, dw), (p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.dilation), _pair(m.padding)
-        widths = [int(part.meta["shape"][1]) for part in parts]
-        weights = [w.contiguous() for w in torch.split(m.weight.detach(), widths, dim=1)]
-        bias = None if m.bias is None else m.bias.detach()
+    def _foldable_upsamplings(self, modules: dict[str, nn.Module]) -> dict[fx.Node, fx.Node]:
+        """Bilinear up-samplings by an integer factor read only by a fusable concatenation (with other parts) that
+        a convolution of odd kernel, "same" padding, stride 1 and no dilation reads, mapped to that
+        concatenation: that convolution's part for them runs on the map before up-sampling (:class:`_BilinearConv`).
+        One per concatenation."""
+        found = {}
+        for cat in self._concats:
+            conv = modules[str(next(iter(cat.users)).target)]
+            (k, kw), parts = _pair(conv.kernel_size), list(cat.args[0])
+            if k != kw or k % 2 == 0 or _pair(conv.padding) != (k // 2, k // 2) or _pair(conv.stride) != (1, 1) \
+                    or _pair(conv.dilation) != (1, 1) or len(parts) < 2:
+                continue
+            up = next((part for part in parts if (_bilinear_factor(part, modules) or 1) > 1 and len(part.users) == 1
+                       and parts.count(part) == 1), None)
+            if up is not None:
+                found[up] = cat
+        return found
 
-        def fn(xs: list[torch.Tensor]) -> torch.Tensor:
-            if relu and not fusion.ok:
-                return F.relu(concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), False))
-            return concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), relu)
-        return _Window(fn, k, s, d, p, 0.0, inputs=len(parts))
+    @staticmethod
+    def _part_weights(m: nn.Conv2d, parts: list[fx.Node]) -> list[torch.Tensor]:
+        """A convolution's weights split by the parts of the channel concatenation it reads."""
+        widths = [int(part.meta["shape"][1]) for part in parts]
+        return [w.contiguous() for w in torch.split(m.weight.detach(), widths, dim=1)]
+
+    def _bilinear_conv(self, up: fx.Node) -> _BilinearConv:
+        """The op of a folded up-sampling (:meth:`_foldable_upsamplings`): its convolution's part for it."""
+        cat = self._folds[up]
+        conv, parts = self._modules[str(next(iter(cat.users)).target)], list(cat.args[0])
+        weight = self._part_weights(conv, parts)[parts.index(up)]
+        return _BilinearConv(weight, None if conv.bias is None else conv.bias.detach(),
+                             _bilinear_factor(up, self._modules) or 1)
+
+    def _concat_conv(self, m: nn.Conv2d, parts: list[fx.Node], relu: bool, fusion: _Fusion
+                     ) -> tuple[_Window, list[fx.Node]]:
+        """The op of a convolution of a channel concatenation of ``parts`` (:func:`concat_conv`; its ReLU fused as
+        ``fusion`` allows), and the nodes it reads. A folded up-sampling's part (:class:`_BilinearConv`, bias
+        included) comes first: the other parts' convolutions are added into its rows in place."""
+        (k, _), (s, sw), (d, dw), (p, pw) = _pair(m.kernel_size), _pair(m.stride), _pair(m.dilation), _pair(m.padding)
+        weights = self._part_weights(m, parts)
+        up = next((part for part in parts if part in self._folds), None)
+        if up is None:
+            bias = None if m.bias is None else m.bias.detach()
+
+            def fn(xs: list[torch.Tensor]) -> torch.Tensor:
+                if relu and not fusion.ok:
+                    return F.relu(concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), False))
+                return concat_conv(xs, weights, bias, (s, sw), (0, pw), (d, dw), relu)
+            return _Window(fn, k, s, d, p, 0.0, inputs=len(parts)), parts
+        rest = [(part, w) for part, w in zip(parts, weights, strict=True) if part is not up]
+
+        def add(xs: list[torch.Tensor]) -> torch.Tensor:
+            y = xs[0][:, :, p:xs[0].shape[2] - p]  # the folded part's rows: no padding rows read
+            for i, (x, (_, w)) in enumerate(zip(xs[1:], rest, strict=True)):
+                y = onednn_conv_add(y, x, w, (1, 1), (0, pw), (1, 1), relu and fusion.ok and i == len(rest) - 1)
+            return F.relu(y) if relu and not fusion.ok else y
+        return _Window(add, k, 1, 1, p, 0.0, inputs=len(parts)), [up] + [part for part, _ in rest]
 
     def band_rows(self, width: int) -> int:
         """Input rows per band for an image ``width`` pixels wide: as many as keep the band's largest feature map
