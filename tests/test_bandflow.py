@@ -115,3 +115,24 @@ def test_worker_threads_run_torch_on_one_thread_without_changing_others():
     t.join()
     assert seen == [1]
     assert torch.get_num_threads() == before
+
+
+def test_a_last_step_nothing_can_run_beside_gets_every_workers_thread():
+    # The last band's final step, with every band admitted and the other worker waiting, runs on both workers'
+    # threads; a step run while the other worker is busy, or while another step is ready, keeps one.
+    if not can_pin_threads():
+        pytest.skip("this process's OpenMP runtime cannot be reached")
+    seen = {}
+
+    def step(j):
+        def run(args, b):
+            if (b, j) == (0, 1):
+                time.sleep(0.2)  # band 1's first step runs meanwhile on the other worker, which then waits
+            seen[b, j] = torch.get_num_threads()
+            return b
+        return run
+
+    out = list(run_bands([step(0), step(1)], [[], [0]], 2, workers=2, window=2, setup=one_thread_per_worker))
+    assert out == [0, 1]
+    assert seen[0, 1] == 1 and seen[1, 0] == 1
+    assert seen[1, 1] == 2

@@ -78,6 +78,7 @@ class _Run:
         self.outputs: dict[int, Any] = {}  # the last step's result of each band all of whose steps have run
         self.pending: dict[int, list] = {}  # band → [steps not yet run, the last step's result]
         self.admitted = 0  # bands 0..admitted-1 have their steps counted
+        self.waiting = 0  # workers waiting for a step
         self.error: BaseException | None = None
         self.closed = False
 
@@ -118,19 +119,35 @@ class _Run:
         if not self.pending[b][0]:
             self.outputs[b] = self.pending.pop(b)[1]
 
-    def work(self, steps: Sequence[Step], setup: Callable[[], contextlib.AbstractContextManager]) -> None:
-        """A worker: take the oldest ready step, run it, record it; until the run ends or fails."""
+    def work(self, steps: Sequence[Step], setup: Callable[[], contextlib.AbstractContextManager],
+             workers: int) -> None:
+        """A worker: take the oldest ready step, run it, record it; until the run ends or fails. A step of the
+        last bands that no other step can run beside (the others wait; every band admitted) runs on the
+        threads of all ``workers``: the layers of the last band, which carry the rows every layer held back,
+        otherwise run on one thread at the end of every image."""
+        runtime = _openmp()
         try:
             with setup():
                 while True:
                     with self.cond:
+                        self.waiting += 1
                         while not self.ready and not self.closed and self.error is None:
                             self.cond.wait()
+                        self.waiting -= 1
                         if self.closed or self.error is not None:
                             return
                         b, j = heapq.heappop(self.ready)
                         args = [self.results[b, i] for i in self.deps[j]]
-                    value = steps[j](args, b)
+                        alone = runtime is not None and not self.ready and self.waiting == workers - 1 and \
+                            self.admitted == self.bands
+                    if alone:
+                        runtime.omp_set_num_threads(workers)
+                        try:
+                            value = steps[j](args, b)
+                        finally:
+                            runtime.omp_set_num_threads(1)
+                    else:
+                        value = steps[j](args, b)
                     with self.cond:
                         self.finish(b, j, value)
                         self.cond.notify_all()
@@ -146,8 +163,9 @@ def run_bands(steps: Sequence[Step], deps: Sequence[Sequence[int]], bands: int, 
     """Run ``steps`` (in an order where each step reads only earlier ones, ``deps[j]`` the steps step j reads) on
     bands 0..bands-1 and yield the last step's result of each band, in band order. Step j of band b runs after
     step j of band b − 1 and after the steps it reads have run on band b. With ``workers`` > 1 the steps run on
-    that many threads, each inside ``setup()``, with at most ``window`` bands not yet handed on; with one, in
-    order on the calling thread (inside ``setup()`` too)."""
+    that many threads, each inside ``setup()``, which must give the thread's torch operations one thread of their
+    own (:func:`one_thread_per_worker`), with at most ``window`` bands not yet handed on; with one, in order on
+    the calling thread (inside ``setup()`` too)."""
     if workers <= 1:
         for b in range(bands):
             results: list[Any] = []
@@ -159,7 +177,7 @@ def run_bands(steps: Sequence[Step], deps: Sequence[Sequence[int]], bands: int, 
     run = _Run(deps, bands, window)
     with run.cond:
         run.admit(window)
-    threads = [threading.Thread(target=run.work, args=(steps, setup), daemon=True, name=f"fcnkit-band-{i}")
+    threads = [threading.Thread(target=run.work, args=(steps, setup, workers), daemon=True, name=f"fcnkit-band-{i}")
                for i in range(workers)]
     for t in threads:
         t.start()
